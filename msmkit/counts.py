@@ -1,0 +1,177 @@
+"""Transition counting at a lag time, and strongly connected sets of states.
+
+References
+----------
+Prinz et al., J. Chem. Phys. 134, 174105 (2011): sliding-window counting, connectivity.
+"""
+from __future__ import annotations
+
+import numpy as np
+import scipy.sparse as sp
+from scipy.sparse import csgraph
+
+from ._checks import as_label_trajectories, check_int, check_lag
+from .errors import InputError
+
+__all__ = ["count_transitions", "connected_sets", "largest_connected_set", "run_count_rows"]
+
+
+def _pair_codes(run: np.ndarray, lag: int, n_states: int, sliding: bool) -> np.ndarray:
+    """Flat codes ``i * n_states + j`` of the counted pairs (i at t, j at t + lag) of one run.
+
+    Pairs with either end labelled -1 are left out. Returns an intp array.
+    """
+    if run.size <= lag:
+        return np.empty(0, dtype=np.intp)
+    step = 1 if sliding else lag
+    start = run[:-lag:step]
+    end = run[lag::step]
+    codes = start.astype(np.intp)
+    codes *= n_states
+    codes += end
+    if run.min() < 0:
+        codes = codes[(start >= 0) & (end >= 0)]
+    return codes
+
+
+def _prepare(labels, lag, n_states):
+    runs = as_label_trajectories(labels)
+    lag = check_lag(lag)
+    longest = max(r.size for r in runs)
+    if lag >= longest:
+        raise InputError(f"lag must be shorter than the longest trajectory ({longest} frames), but got "
+                         f"{lag}; choose a smaller lag or supply longer trajectories")
+    largest = max((int(r.max()) for r in runs if r.size), default=-1)
+    if largest < 0:
+        raise InputError("labels hold no assigned frame: every label is -1")
+    if n_states is None:
+        n_states = largest + 1
+    else:
+        n_states = check_int(n_states, "n_states", minimum=1)
+        if n_states <= largest:
+            raise InputError(f"n_states must exceed the largest label ({largest}), but got {n_states}; "
+                             f"leave n_states=None to infer it")
+    return runs, lag, n_states
+
+
+def count_transitions(labels, lag, *, n_states=None, sliding=True) -> sp.csr_matrix:
+    """Count transitions between states at a lag time.
+
+    Parameters
+    ----------
+    labels : array_like of int, or list of them
+        One label trajectory (1-D, one state label per frame) or several runs of any length.
+        Labels are 0..n-1; -1 marks an unassigned frame, and a pair with either end -1 is not
+        counted.
+    lag : int
+        Lag time in frames (>= 1). Runs no longer than the lag contribute nothing.
+    n_states : int, optional
+        Size of the count matrix; default is the largest label + 1.
+    sliding : bool, default True
+        Count every pair (t, t + lag) (sliding window); otherwise only t = 0, lag, 2 lag, ...
+        (strided, statistically independent counts for a Markov chain).
+
+    Returns
+    -------
+    scipy.sparse.csr_matrix of int64, shape (n_states, n_states)
+        ``C[i, j]`` is the number of observed transitions from state i to state j within
+        ``lag`` frames.
+
+    Examples
+    --------
+    >>> import msmkit as mk
+    >>> mk.count_transitions([0, 0, 1, 1, 0], lag=1).toarray()
+    array([[1, 1],
+           [1, 1]])
+    """
+    runs, lag, n_states = _prepare(labels, lag, n_states)
+    flat = _count_flat(runs, lag, n_states, sliding)
+    return _flat_to_csr(flat, n_states)
+
+
+def _count_flat(runs, lag, n_states, sliding) -> np.ndarray:
+    """Counts of all runs as one flat vector of length n_states**2 (dense bincount)."""
+    codes = [_pair_codes(r, lag, n_states, sliding) for r in runs]
+    codes = codes[0] if len(codes) == 1 else np.concatenate(codes)
+    return np.bincount(codes, minlength=n_states * n_states)
+
+
+def _flat_to_csr(flat: np.ndarray, n_states: int) -> sp.csr_matrix:
+    dense = flat.reshape(n_states, n_states).astype(np.int64, copy=False)
+    return sp.csr_matrix(dense)
+
+
+def run_count_rows(labels, lag, *, n_states=None, sliding=True, blocks_per_run=1):
+    """Per-run (or per-block) count matrices, stacked as rows of one sparse matrix.
+
+    Row r holds the flattened (n_states * n_states) count matrix of run r, so that a
+    weighted sum of runs -- a bootstrap sample -- is one sparse product ``w @ rows``.
+    With ``blocks_per_run > 1`` each run is cut into contiguous blocks by the start frame
+    of each pair; the blocks' counts add up exactly to the run's counts.
+
+    Returns
+    -------
+    rows : scipy.sparse.csr_matrix of int64, shape (n_runs * blocks_per_run, n_states**2)
+    n_states : int
+    """
+    runs, lag, n_states = _prepare(labels, lag, n_states)
+    blocks_per_run = check_int(blocks_per_run, "blocks_per_run", minimum=1)
+    data, indices, indptr = [], [], [0]
+    for run in runs:
+        n_pairs = max(run.size - lag, 0)
+        edges = np.linspace(0, n_pairs, blocks_per_run + 1).astype(np.intp)
+        for b in range(blocks_per_run):
+            start = int(edges[b])
+            if not sliding:  # stay on the strided grid t = 0, lag, 2 lag, ... of the whole run
+                start = -(-start // lag) * lag
+            piece = run[start: edges[b + 1] + lag] if edges[b + 1] > start else run[:0]
+            codes = _pair_codes(piece, lag, n_states, sliding)
+            u, c = np.unique(codes, return_counts=True)
+            indices.append(u)
+            data.append(c)
+            indptr.append(indptr[-1] + u.size)
+    rows = sp.csr_matrix((np.concatenate(data).astype(np.int64), np.concatenate(indices), np.asarray(indptr)),
+                         shape=(len(indptr) - 1, n_states * n_states))
+    return rows, n_states
+
+
+def connected_sets(counts) -> list[np.ndarray]:
+    """Strongly connected sets of the count graph, largest number of counts first.
+
+    States with no counts at all are left out. Ties in counts go to the set holding the
+    lowest label.
+
+    Parameters
+    ----------
+    counts : scipy.sparse matrix or ndarray, shape (n, n)
+
+    Returns
+    -------
+    list of ndarray of int
+        The states (indices of ``counts``) of each set, sorted ascending.
+    """
+    C = sp.csr_matrix(counts)
+    n = C.shape[0]
+    n_comp, comp = csgraph.connected_components(C, directed=True, connection="strong")
+    weight = np.asarray(C.sum(axis=1)).ravel() + np.asarray(C.sum(axis=0)).ravel()
+    visited = weight > 0
+    count_in = np.zeros(n_comp)
+    # counts inside each component: C[i, j] with comp[i] == comp[j]
+    coo = C.tocoo()
+    same = comp[coo.row] == comp[coo.col]
+    np.add.at(count_in, comp[coo.row[same]], coo.data[same])
+    lowest = np.full(n_comp, n, dtype=np.int64)
+    np.minimum.at(lowest, comp, np.arange(n))
+    has_states = np.bincount(comp[visited], minlength=n_comp) > 0
+    order = sorted(np.flatnonzero(has_states), key=lambda k: (-count_in[k], lowest[k]))
+    members = np.argsort(comp, kind="stable")
+    bounds = np.searchsorted(comp[members], np.arange(n_comp + 1))
+    return [members[bounds[k]:bounds[k + 1]] for k in order]
+
+
+def largest_connected_set(counts) -> np.ndarray:
+    """The strongly connected set holding the most transition counts (ties: lowest label)."""
+    sets = connected_sets(counts)
+    if not sets:
+        raise InputError("counts hold no transitions: there is no connected set of states")
+    return sets[0]

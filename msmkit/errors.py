@@ -1,0 +1,14 @@
+"""Exceptions and warnings raised by msmkit."""
+
+
+class InputError(ValueError):
+    """Bad input from the user: the message names the argument, the rule, the value and the fix."""
+
+
+class ModelFileError(ValueError):
+    """A model file that cannot be trusted: wrong format, missing keys, broken invariants."""
+
+
+class DiagnosticWarning(UserWarning):
+    """A finding about the data or the model that is not an error but may mislead
+    (a periodic chain, discarded counts, a timescale shorter than the lag, ...)."""

@@ -1,0 +1,349 @@
+"""Implied timescales across lag times, with bootstrap uncertainty and a suggested lag.
+
+References
+----------
+Swope, Pitera & Suits, J. Phys. Chem. B 108, 6571 (2004): implied timescales vs lag.
+Efron, Ann. Stat. 7, 1 (1979): the bootstrap.
+Prinz et al., J. Chem. Phys. 134, 174105 (2011): choosing the lag where timescales level off.
+"""
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.sparse as sp
+
+from ._checks import as_label_trajectories, check_dt, check_int, check_probability, check_unit
+from .counts import largest_connected_set, run_count_rows
+from .errors import DiagnosticWarning, InputError
+from .estimate import estimate_transition_matrix
+from .model import MarkovModel, fingerprint, model_from_counts, _now, _version
+from .spectral import eigen_decomposition, implied_timescales
+
+__all__ = ["LagScan", "lag_scan", "suggest_lag"]
+
+#: with fewer runs than this, the bootstrap resamples contiguous blocks instead of whole runs
+MIN_RUNS_FOR_RUN_BOOTSTRAP = 5
+#: target number of resampling units when blocks are used
+BLOCK_UNITS = 20
+
+
+@dataclass(eq=False)
+class LagScan:
+    """Implied timescales at several lag times.
+
+    Attributes
+    ----------
+    lags : ndarray of int, shape (L,)
+        Scanned lags in frames, ascending.
+    timescales : ndarray, shape (L, k)
+        The k slowest implied timescales at each lag (full data), in :attr:`unit`.
+    lower, upper : ndarray, shape (L, k)
+        Percentile bootstrap interval (NaN when ``n_samples == 0``).
+    samples : ndarray, shape (L, n_samples, k)
+        Bootstrap timescales (NaN where a sample had fewer processes).
+    dt : float
+    unit : str
+    confidence : float
+    n_samples : int
+    suggested_lag : int or None
+    reason : str
+        Why that lag was suggested, or why none was.
+    notes : list of str
+        How the uncertainty was obtained, and findings at the scanned lags.
+    """
+
+    lags: np.ndarray
+    timescales: np.ndarray
+    lower: np.ndarray
+    upper: np.ndarray
+    samples: np.ndarray
+    dt: float
+    unit: str
+    confidence: float
+    n_samples: int
+    suggested_lag: int | None
+    reason: str
+    notes: list = field(default_factory=list)
+    models: dict = field(default_factory=dict, repr=False)
+
+    @property
+    def lag_times(self) -> np.ndarray:
+        """The scanned lags in physical time (``lags * dt``, in :attr:`unit`)."""
+        return self.lags * self.dt
+
+    def model(self, lag) -> MarkovModel:
+        """The full-data :class:`MarkovModel` at one scanned lag (frames)."""
+        lag = check_int(lag, "lag", minimum=1)
+        if lag not in self.models:
+            raise InputError(f"lag {lag} was not scanned; choose one of {self.lags.tolist()}")
+        return self.models[lag]
+
+    def table(self):
+        """One row per (lag, process): timescale and interval in :attr:`unit`.
+
+        Columns: ``lag`` (frames), ``lag_time``, ``process`` (1 = slowest), ``timescale``,
+        ``lower``, ``upper``, ``resolved`` (timescale above the lag time). Time columns are in
+        ``df.attrs['unit']``.
+        """
+        import pandas as pd
+        L, k = self.timescales.shape
+        df = pd.DataFrame({
+            "lag": np.repeat(self.lags, k),
+            "lag_time": np.repeat(self.lag_times, k),
+            "process": np.tile(np.arange(1, k + 1), L),
+            "timescale": self.timescales.ravel(),
+            "lower": self.lower.ravel(),
+            "upper": self.upper.ravel(),
+        })
+        df["resolved"] = df["timescale"] > df["lag_time"]
+        df.attrs["unit"] = self.unit
+        return df
+
+
+def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_timescales: int = 5,
+             reversible: bool = True, n_samples: int = 0, seed=None, confidence: float = 0.95,
+             sliding: bool = True, n_states: int | None = None, n_slow: int = 2, rtol: float = 0.05,
+             progress: bool = False) -> LagScan:
+    """Estimate models at several lags and report their implied timescales with uncertainty.
+
+    Parameters
+    ----------
+    labels : array_like of int, or list of them
+        Label trajectories, one per run.
+    lags : sequence of int
+        Lags in frames.
+    dt : float
+        Physical time between frames, in ``unit``.
+    unit : str
+    n_timescales : int, default 5
+        How many of the slowest processes to follow.
+    reversible : bool, default True
+    n_samples : int, default 0
+        Bootstrap samples. Whole runs are resampled with replacement; with fewer than 5 runs,
+        contiguous blocks of the runs are resampled instead (said in ``notes``). 0: no interval.
+    seed : int, optional
+        Seeds the resampling; the same seed gives the same intervals.
+    confidence : float, default 0.95
+        Coverage of the percentile interval.
+    sliding : bool, default True
+        Sliding-window counting.
+    n_states : int, optional
+    n_slow : int, default 2
+        How many of the slowest timescales must level off for a lag to be suggested (only those
+        resolved at that lag count; the slowest always does).
+    rtol : float, default 0.05
+        Relative change below which two timescales count as equal even when their intervals do
+        not overlap (and the only criterion when ``n_samples == 0``).
+    progress : bool
+        Show a progress bar.
+
+    Returns
+    -------
+    LagScan
+
+    Notes
+    -----
+    Work is shared: counts are computed once per lag and per run, and every bootstrap sample is
+    a weighted sum of those per-run count matrices (one sparse product); each sample's reversible
+    estimate starts from the full-data stationary vector. The same resampled runs are used at
+    every lag, so the intervals at neighbouring lags are comparable.
+    """
+    runs = as_label_trajectories(labels)
+    dt, unit = check_dt(dt), check_unit(unit)
+    lags = _check_lags(lags, runs)
+    n_timescales = check_int(n_timescales, "n_timescales", minimum=1)
+    n_samples = check_int(n_samples, "n_samples", minimum=0)
+    n_slow = check_int(n_slow, "n_slow", minimum=1)
+    confidence = check_probability(confidence, "confidence")
+    rng = np.random.default_rng(seed)
+
+    notes = []
+    blocks = 1
+    if len(runs) < MIN_RUNS_FOR_RUN_BOOTSTRAP and n_samples:
+        blocks = math.ceil(BLOCK_UNITS / len(runs))
+        notes.append(f"Only {len(runs)} run(s): the bootstrap resamples {blocks} contiguous blocks per run "
+                     f"instead of whole runs; blocks of one run are correlated, so the intervals may be "
+                     f"too narrow.")
+    n_units = len(runs) * blocks
+    weights = np.stack([np.bincount(rng.integers(0, n_units, n_units), minlength=n_units)
+                        for _ in range(n_samples)]) if n_samples else np.zeros((0, n_units))
+
+    L = len(lags)
+    ts = np.full((L, n_timescales), np.nan)
+    samples = np.full((L, n_samples, n_timescales), np.nan)
+    models = {}
+    metadata = {"labels_sha256": fingerprint(runs), "frames_per_run": [int(r.size) for r in runs],
+                "package_version": _version()}
+    bar = _progress(L * (1 + n_samples), progress, "lag scan")
+    try:
+        for a, lag in enumerate(lags):
+            rows, n = run_count_rows(runs, lag, n_states=n_states, sliding=sliding, blocks_per_run=blocks)
+            full = _unflatten(np.asarray(rows.sum(axis=0)).ravel(), n)
+            meta = dict(metadata, created=_now(),
+                        parameters={"lag": int(lag), "dt": dt, "unit": unit, "reversible": bool(reversible),
+                                    "sliding": bool(sliding), "n_states": n})
+            model = model_from_counts(full, lag, dt=dt, unit=unit, reversible=reversible, metadata=meta,
+                                      warn=False)
+            models[int(lag)] = model
+            got = model.timescales(n_timescales)
+            ts[a, :got.size] = got
+            bar.update(1)
+            if n_samples:
+                initial = np.zeros(n)
+                initial[model.states] = model.stationary_distribution
+                sampled = sp.csr_matrix(weights) @ rows  # (n_samples, n*n): all samples in one product
+                for b in range(n_samples):
+                    got = _sample_timescales(sampled.getrow(b), n, lag, dt, reversible, initial, n_timescales)
+                    samples[a, b, :got.size] = got
+                    bar.update(1)
+    finally:
+        bar.close()
+
+    if n_samples:
+        lo, hi = 100 * (1 - confidence) / 2, 100 * (1 + confidence) / 2
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN slices -> NaN
+            lower = np.nanpercentile(samples, lo, axis=1)
+            upper = np.nanpercentile(samples, hi, axis=1)
+    else:
+        lower = np.full_like(ts, np.nan)
+        upper = np.full_like(ts, np.nan)
+
+    lags_arr = np.asarray(lags, dtype=np.int64)
+    suggested, reason = suggest_lag(lags_arr, ts, lower, upper, dt=dt, unit=unit, n_slow=n_slow, rtol=rtol,
+                                    confidence=confidence)
+    notes += _scan_findings(lags_arr, ts, models, dt, unit)
+    return LagScan(lags_arr, ts, lower, upper, samples, dt, unit, confidence, n_samples, suggested, reason,
+                   notes, models)
+
+
+def _check_lags(lags, runs) -> list[int]:
+    if isinstance(lags, (int, np.integer)):
+        lags = [lags]
+    try:
+        values = [check_int(x, "lags") for x in lags]
+    except TypeError:
+        raise InputError(f"lags must be a list of positive integers (frames), but got {lags!r}") from None
+    if not values:
+        raise InputError("lags is empty: give at least one lag in frames")
+    bad = [x for x in values if x < 1]
+    if bad:
+        raise InputError(f"lags must be positive integers (frames), but got {bad}")
+    longest = max(r.size for r in runs)
+    too_long = [x for x in values if x >= longest]
+    if too_long:
+        raise InputError(f"lags {too_long} are not shorter than the longest trajectory ({longest} frames); "
+                         f"remove them or supply longer trajectories")
+    return sorted(set(values))
+
+
+def _unflatten(flat, n) -> sp.csr_matrix:
+    nz = np.flatnonzero(flat)
+    return sp.csr_matrix((flat[nz], (nz // n, nz % n)), shape=(n, n))
+
+
+def _sample_timescales(row, n, lag, dt, reversible, initial, k) -> np.ndarray:
+    """Timescales of one bootstrap sample given as a flattened count row; NaN-free, may be short."""
+    row = row.tocoo()
+    C = sp.csr_matrix((row.data, (row.col // n, row.col % n)), shape=(n, n))
+    keep = largest_connected_set(C) if C.nnz else np.empty(0, dtype=np.intp)
+    if keep.size < 2:
+        return np.empty(0)
+    Ck = C[keep][:, keep]
+    init = initial[keep]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DiagnosticWarning)
+        T, info = estimate_transition_matrix(Ck, reversible=reversible, return_info=True,
+                                             initial=init if np.all(init > 0) else None)
+    w = eigen_decomposition(T, info.stationary_distribution, reversible=reversible)
+    return implied_timescales(w[1:k + 1], lag, dt)
+
+
+def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow: int = 2, rtol: float = 0.05,
+                confidence: float = 0.95):
+    """The smallest lag from which the slowest timescales stay constant, with the reason in words.
+
+    A lag qualifies when (1) the slowest timescale exceeds the lag time there, and (2) at every
+    larger scanned lag where it is still resolved, each of the ``n_slow`` slowest timescales
+    resolved at the candidate lag agrees with its value at the candidate: the bootstrap
+    intervals overlap, or the values differ by at most ``rtol`` relatively. At least one larger
+    lag must confirm it.
+
+    Returns
+    -------
+    (lag or None, reason : str)
+    """
+    lags = np.asarray(lags)
+    times = lags * dt
+    has_ci = np.any(np.isfinite(lower))
+    how = (f"their {100 * confidence:g}% intervals overlap or they differ by at most {100 * rtol:g}%"
+           if has_ci else f"they differ by at most {100 * rtol:g}% (no bootstrap intervals were computed)")
+    if timescales.shape[0] < 2:
+        return None, ("Only one lag was scanned: a lag can only be suggested where the timescales are seen "
+                      "to level off across several lags.")
+    never_resolved = True
+    for a in range(len(lags)):
+        t0 = timescales[a]
+        if not (np.isfinite(t0[0]) and t0[0] > times[a]):
+            continue
+        never_resolved = False
+        procs = [p for p in range(min(n_slow, t0.size)) if np.isfinite(t0[p]) and t0[p] > times[a]]
+        later = [b for b in range(a + 1, len(lags)) if timescales[b, 0] > times[b]]
+        if not later:
+            continue
+        ok = True
+        for b in later:
+            for p in procs:
+                tb = timescales[b, p]
+                if p > 0 and not tb > times[b]:
+                    continue  # a faster process that the larger lag no longer resolves
+                if not _agree(t0[p], tb, lower[a, p], upper[a, p], lower[b, p], upper[b, p], rtol):
+                    ok = False
+                    break
+            if not ok:
+                break
+        if ok:
+            names = "slowest timescale" if len(procs) == 1 else f"{len(procs)} slowest timescales"
+            confirm = ", ".join(str(int(lags[b])) for b in later)
+            return int(lags[a]), (
+                f"Lag {int(lags[a])} frames ({times[a]:g} {unit}) is the smallest scanned lag from which the "
+                f"{names} stay constant at every larger scanned lag where they are resolved ({confirm} frames): "
+                f"{how}. The slowest timescale there, {t0[0]:.4g} {unit}, is above the lag time.")
+    if never_resolved:
+        return None, (f"No scanned lag is shorter than the slowest implied timescale: nothing is resolved. "
+                      f"Scan shorter lags, or the data hold no process slower than {times[0]:g} {unit}.")
+    return None, (f"The slowest timescales keep changing with the lag across the scanned range "
+                  f"({int(lags[0])}-{int(lags[-1])} frames; two values count as equal when {how}). "
+                  f"Scan longer lags, refine the state definition, or collect more data.")
+
+
+def _agree(ta, tb, la, ua, lb, ub, rtol) -> bool:
+    if not (np.isfinite(ta) and np.isfinite(tb)):
+        return False
+    if abs(tb - ta) <= rtol * abs(ta):
+        return True
+    if np.all(np.isfinite([la, ua, lb, ub])):
+        return not (ub < la or lb > ua)
+    return False
+
+
+def _scan_findings(lags, ts, models, dt, unit) -> list[str]:
+    found = []
+    unresolved = [int(l) for l, t in zip(lags, ts[:, 0]) if np.isfinite(t) and t <= l * dt]
+    if unresolved:
+        found.append(f"At lag(s) {unresolved} frames the slowest timescale is shorter than the lag itself: "
+                     f"those models resolve no process.")
+    dropped = [(int(l), m.kept_fraction) for l, m in models.items() if m.kept_fraction < 0.99]
+    if dropped:
+        worst = min(dropped, key=lambda x: x[1])
+        found.append(f"At {len(dropped)} lag(s) more than 1% of the counts fall outside the largest connected "
+                     f"set (worst: {100 * (1 - worst[1]):.3g}% dropped at lag {worst[0]}).")
+    return found
+
+
+def _progress(total, enabled, desc):
+    from tqdm.auto import tqdm
+    return tqdm(total=total, disable=not enabled, desc=desc, leave=False)

@@ -1,0 +1,360 @@
+"""The Markov model result object and :func:`build_model`.
+
+References
+----------
+Prinz et al., J. Chem. Phys. 134, 174105 (2011): construction and analysis of Markov models.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.sparse as sp
+
+from ._checks import as_label_trajectories, as_state_set, check_dt, check_int, check_lag, check_unit
+from .counts import _count_flat, _flat_to_csr, _prepare, largest_connected_set
+from .errors import DiagnosticWarning, InputError
+from .estimate import EstimationInfo, estimate_transition_matrix
+from .spectral import chain_diagnostics, eigen_decomposition, implied_timescales, is_reversible, stationary_distribution
+
+__all__ = ["MarkovModel", "build_model", "GAS_CONSTANT_KJ"]
+
+#: molar gas constant in kJ mol^-1 K^-1 (CODATA 2018, exact)
+GAS_CONSTANT_KJ = 8.314462618e-3
+#: how many of the slowest processes the diagnostics look at (negative, complex, shorter than the lag)
+REPORTED = 5
+
+
+def _version() -> str:
+    from . import __version__
+    return __version__
+
+
+@dataclass(eq=False)
+class MarkovModel:
+    """A Markov state model at one lag time.
+
+    Rows and columns of every matrix follow :attr:`states`, the original labels of the kept
+    (largest strongly connected) set; every public input and output names states by those
+    labels.
+
+    Attributes
+    ----------
+    transition_matrix : ndarray, shape (n, n)
+        Row-stochastic; entry (i, j) is the probability to be in ``states[j]`` one lag after
+        being in ``states[i]``.
+    stationary_distribution : ndarray, shape (n,)
+        Equilibrium probabilities, summing to 1.
+    states : ndarray of int, shape (n,)
+        Original label of each row/column.
+    lag : int
+        Lag time in frames.
+    dt : float
+        Physical time between frames, in ``unit``.
+    unit : str
+        Time unit of ``dt`` and of every time the model reports.
+    reversible : bool
+        Whether the estimate enforced detailed balance.
+    count_matrix : scipy.sparse.csr_matrix or None
+        Transition counts among the kept states at this lag (None for a model built from a
+        matrix).
+    kept_fraction : float
+        Fraction of all counted transitions that lie inside the kept set.
+    dropped_states : ndarray of int
+        Visited labels outside the kept set.
+    diagnostics : list of str
+        Plain-language findings (periodicity, dropped data, unresolved timescales, ...).
+    metadata : dict
+        Provenance: parameters, package version, creation time, label fingerprint, frames.
+    estimation : EstimationInfo or None
+    extras : dict
+        Optional arrays saved with the model: ``centers``, ``tica_mean``, ``tica_components``,
+        ``memberships``.
+    """
+
+    transition_matrix: np.ndarray
+    stationary_distribution: np.ndarray
+    states: np.ndarray
+    lag: int
+    dt: float
+    unit: str
+    reversible: bool
+    count_matrix: sp.csr_matrix | None = None
+    kept_fraction: float = 1.0
+    dropped_states: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))
+    diagnostics: list = field(default_factory=list)
+    metadata: dict = field(default_factory=dict)
+    estimation: EstimationInfo | None = None
+    extras: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        self._spectrum = None
+
+    # ----------------------------------------------------------------- basic facts
+    @property
+    def n_states(self) -> int:
+        """Number of kept states."""
+        return self.transition_matrix.shape[0]
+
+    @property
+    def lag_time(self) -> float:
+        """The lag in physical time (``lag * dt``, in :attr:`unit`)."""
+        return self.lag * self.dt
+
+    def __repr__(self) -> str:
+        ts = self.timescales(1)
+        slow = f", slowest timescale {ts[0]:.4g} {self.unit}" if ts.size else ""
+        return (f"MarkovModel({self.n_states} states, lag {self.lag} frames = {self.lag_time:g} {self.unit}, "
+                f"{'reversible' if self.reversible else 'non-reversible'}{slow}, "
+                f"{len(self.diagnostics)} diagnostic(s))")
+
+    def index_of(self, labels, name: str = "states") -> np.ndarray:
+        """Positions in the kept set of the given original labels (InputError for unknown ones)."""
+        wanted = as_state_set(labels, name, self.states)
+        order = np.argsort(self.states)
+        return order[np.searchsorted(self.states, wanted, sorter=order)]
+
+    # ----------------------------------------------------------------- spectrum
+    def _decomposition(self):
+        if self._spectrum is None:
+            self._spectrum = eigen_decomposition(self.transition_matrix, self.stationary_distribution,
+                                                 reversible=self.reversible, vectors=True)
+        return self._spectrum
+
+    def eigenvalues(self, k: int | None = None) -> np.ndarray:
+        """The ``k`` largest-magnitude eigenvalues (all by default); the first is 1.
+
+        Real for a reversible model; may be complex for a non-reversible one.
+        """
+        w = self._decomposition()[0]
+        return w if k is None else w[:check_int(k, "k", minimum=1)]
+
+    def eigenvectors(self, k: int | None = None) -> np.ndarray:
+        """Right eigenvectors (columns) belonging to :meth:`eigenvalues`; for a reversible model
+        normalised so that sum_i pi_i r_i^2 = 1."""
+        v = self._decomposition()[1]
+        return v if k is None else v[:, :check_int(k, "k", minimum=1)]
+
+    def timescales(self, k: int | None = None) -> np.ndarray:
+        """The ``k`` slowest implied timescales -lag*dt/ln|lambda_i|, in :attr:`unit`
+        (the stationary eigenvalue is left out)."""
+        w = self.eigenvalues()[1:]
+        if k is not None:
+            w = w[:check_int(k, "k", minimum=1)]
+        return implied_timescales(w, self.lag, self.dt)
+
+    # ----------------------------------------------------------------- populations
+    def populations(self, temperature: float | None = None):
+        """Stationary populations and free energies of the kept states.
+
+        Parameters
+        ----------
+        temperature : float, optional
+            In kelvin; adds free energies in kJ/mol (F = -RT ln p, R = 8.314462618 J/mol/K,
+            CODATA 2018).
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns ``state`` (original label), ``population`` (probability), ``free_energy_kT``
+            (-ln p relative to the most populated state, in units of kT), ``free_energy_kJ_per_mol``
+            (with ``temperature``), and ``transitions_out`` (counts at this lag, when known).
+        """
+        import pandas as pd
+        p = self.stationary_distribution
+        with np.errstate(divide="ignore"):
+            f = np.log(p.max()) - np.log(p)
+        table = {"state": self.states, "population": p, "free_energy_kT": f}
+        if temperature is not None:
+            if isinstance(temperature, bool) or not isinstance(temperature, (int, float, np.number)) \
+                    or not np.isfinite(temperature) or temperature <= 0:
+                raise InputError(f"temperature must be a positive number in kelvin, but got {temperature!r}")
+            table["free_energy_kJ_per_mol"] = f * GAS_CONSTANT_KJ * float(temperature)
+        if self.count_matrix is not None:
+            table["transitions_out"] = np.asarray(self.count_matrix.sum(axis=1)).ravel().astype(np.int64)
+        return pd.DataFrame(table)
+
+    # ----------------------------------------------------------------- persistence
+    def save(self, path, *, overwrite: bool = True, **extra_arrays):
+        """Write the model to a ``.npz`` file (atomic; plain arrays only).
+
+        ``extra_arrays`` may hold the optional keys of the file format: ``centers``,
+        ``tica_mean``, ``tica_components``, ``memberships``. See :mod:`msmkit.modelfile`.
+        """
+        from .modelfile import save_model
+        return save_model(self, path, overwrite=overwrite, **extra_arrays)
+
+    # ----------------------------------------------------------------- constructors
+    @classmethod
+    def from_transition_matrix(cls, transition_matrix, *, dt: float = 1.0, unit: str = "step",
+                               states=None, reversible: bool | None = None) -> "MarkovModel":
+        """A model from a transition matrix you already have; its one step (lag 1) spans ``dt``.
+
+        Parameters
+        ----------
+        transition_matrix : array_like, shape (n, n)
+            Row-stochastic, non-negative, irreducible.
+        dt : float
+            Physical time of one step, in ``unit``.
+        unit : str
+        states : array_like of int, optional
+            Labels of the rows (default 0..n-1).
+        reversible : bool, optional
+            Default: detected from detailed balance.
+        """
+        T = _check_transition_matrix(transition_matrix)
+        dt, unit = check_dt(dt), check_unit(unit)
+        n = T.shape[0]
+        labels = np.arange(n) if states is None else np.asarray(states)
+        if labels.shape != (n,) or labels.dtype.kind not in "iu" or np.unique(labels).size != n:
+            raise InputError(f"states must be {n} distinct integer labels, one per row of transition_matrix")
+        pi = stationary_distribution(T)
+        if reversible is None:
+            reversible = is_reversible(T, pi)
+        model = cls(T, pi, labels.astype(np.int64), 1, dt, unit, bool(reversible),
+                    metadata={"source": "transition matrix", "package_version": _version(),
+                              "created": _now()})
+        model.diagnostics = chain_diagnostics(model.eigenvalues(), lag=1, dt=dt, unit=unit,
+                                              n_reported=min(REPORTED, n - 1))
+        return model
+
+
+def _now() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+def _check_transition_matrix(T) -> np.ndarray:
+    from scipy.sparse import csgraph
+    T = np.asarray(T.toarray() if sp.issparse(T) else T)
+    if T.dtype.kind not in "iuf":
+        raise InputError(f"transition_matrix must be numeric, but has dtype {T.dtype}")
+    T = T.astype(float)
+    if T.ndim != 2 or T.shape[0] != T.shape[1] or T.shape[0] == 0:
+        raise InputError(f"transition_matrix must be a square matrix, but has shape {T.shape}")
+    if not np.all(np.isfinite(T)) or T.min() < 0:
+        raise InputError("transition_matrix must be finite and non-negative")
+    worst = np.max(np.abs(T.sum(axis=1) - 1))
+    if worst > 1e-8:
+        raise InputError(f"transition_matrix rows must sum to 1, but one is off by {worst:.3g}")
+    n_comp, _ = csgraph.connected_components(sp.csr_matrix(T > 0), directed=True, connection="strong")
+    if n_comp > 1:
+        raise InputError(f"transition_matrix must be irreducible (every state reachable from every other), "
+                         f"but it splits into {n_comp} strongly connected sets")
+    return T
+
+
+def fingerprint(runs) -> str:
+    """SHA-256 of label trajectories (int32 bytes and run lengths), for provenance."""
+    h = hashlib.sha256()
+    for r in runs:
+        h.update(np.int64(r.size).tobytes())
+        h.update(np.ascontiguousarray(r, dtype=np.int32).tobytes())
+    return h.hexdigest()
+
+
+def build_model(labels, lag, *, dt: float = 1.0, unit: str = "step", reversible: bool = True,
+                sliding: bool = True, n_states: int | None = None) -> MarkovModel:
+    """Estimate a Markov model from label trajectories at one lag time.
+
+    Counts transitions at ``lag`` (sliding window by default), keeps the largest strongly
+    connected set of states (reporting what was dropped), estimates the maximum-likelihood
+    transition matrix (reversible by default), and checks the result. Every finding that could
+    mislead is issued as a :class:`~msmkit.errors.DiagnosticWarning` and kept in
+    ``model.diagnostics``.
+
+    Parameters
+    ----------
+    labels : array_like of int, or list of them
+        Label trajectories, one per run; -1 marks unassigned frames.
+    lag : int
+        Lag time in frames.
+    dt : float, default 1.0
+        Physical time between frames, in ``unit``.
+    unit : str, default "step"
+        Time unit, e.g. "ns".
+    reversible : bool, default True
+    sliding : bool, default True
+        Sliding-window counting (see :func:`count_transitions`).
+    n_states : int, optional
+        Number of microstates (default: largest label + 1).
+
+    Returns
+    -------
+    MarkovModel
+
+    Examples
+    --------
+    >>> import numpy as np, msmkit as mk
+    >>> labels = [np.array([0, 0, 1, 1, 1, 0, 0, 1])]
+    >>> model = mk.build_model(labels, lag=1, dt=0.1, unit="ns")
+    >>> model.stationary_distribution.round(3)
+    array([0.5, 0.5])
+    """
+    runs, lag, n = _prepare(labels, lag, n_states)
+    dt, unit = check_dt(dt), check_unit(unit)
+    flat = _count_flat(runs, lag, n, sliding)
+    metadata = {
+        "parameters": {"lag": lag, "dt": dt, "unit": unit, "reversible": bool(reversible),
+                       "sliding": bool(sliding), "n_states": n},
+        "package_version": _version(),
+        "created": _now(),
+        "labels_sha256": fingerprint(runs),
+        "frames_per_run": [int(r.size) for r in runs],
+    }
+    return model_from_counts(_flat_to_csr(flat, n), lag, dt=dt, unit=unit, reversible=reversible,
+                             metadata=metadata)
+
+
+def model_from_counts(counts: sp.csr_matrix, lag: int, *, dt: float, unit: str, reversible: bool,
+                      metadata: dict | None = None, initial=None, warn: bool = True,
+                      spectrum: bool = True) -> MarkovModel:
+    """The model behind :func:`build_model`, from a full count matrix (rows = all labels).
+
+    ``initial`` (a stationary vector over all labels) warm-starts the reversible estimate;
+    ``warn=False`` keeps diagnostics in the model without issuing warnings (bootstrap samples).
+    """
+    C = sp.csr_matrix(counts)
+    total = C.sum()
+    if total == 0:
+        raise InputError(f"no transitions were counted at lag {lag}: every run is shorter than the lag "
+                         f"or the frames are unassigned; choose a smaller lag")
+    visited = np.flatnonzero(np.asarray(C.sum(axis=1)).ravel() + np.asarray(C.sum(axis=0)).ravel())
+    if visited.size < 2:
+        raise InputError(f"labels visit a single state ({int(visited[0])}); a Markov model needs at least "
+                         f"two states with transitions between them")
+    keep = largest_connected_set(C)
+    if keep.size < 2:
+        raise InputError(f"no two states exchange at lag {lag}: the largest strongly connected set is the "
+                         f"single state {int(keep[0])}; use a smaller lag, fewer states or more data")
+    Ck = C[keep][:, keep]
+    kept_fraction = float(Ck.sum() / total)
+    init = None if initial is None else np.asarray(initial)[keep]
+    if init is not None and not np.all(init > 0):
+        init = None
+    with warnings.catch_warnings():
+        if not warn:
+            warnings.simplefilter("ignore", DiagnosticWarning)
+        T, info = estimate_transition_matrix(Ck, reversible=reversible, initial=init, return_info=True)
+    dropped = np.setdiff1d(visited, keep)
+    model = MarkovModel(T, info.stationary_distribution, keep.astype(np.int64), int(lag), float(dt), unit,
+                        bool(reversible), count_matrix=sp.csr_matrix(Ck, dtype=np.int64),
+                        kept_fraction=kept_fraction, dropped_states=dropped.astype(np.int64),
+                        metadata=dict(metadata or {}), estimation=info)
+    model.metadata["kept_fraction"] = kept_fraction
+    model.metadata["n_dropped_states"] = int(dropped.size)
+    if not info.converged:
+        model.diagnostics.append(f"The reversible estimate stopped after {info.iterations} iterations without "
+                                 "converging; the matrix is reversible but not exactly the maximum-likelihood one.")
+    if spectrum:
+        row_counts = np.asarray(Ck.sum(axis=1)).ravel()
+        model.diagnostics += chain_diagnostics(model.eigenvalues(), lag=lag, dt=dt, unit=unit,
+                                               row_counts=row_counts, states=model.states,
+                                               dropped_states=dropped, kept_fraction=kept_fraction,
+                                               n_reported=min(REPORTED, model.n_states - 1))
+    if warn:
+        for line in model.diagnostics:
+            warnings.warn(line, DiagnosticWarning, stacklevel=3)
+    return model

@@ -1,0 +1,201 @@
+"""Eigen-analysis of transition matrices: spectra, stationary distribution, implied
+timescales, and plain-language diagnostics of the chain.
+
+References
+----------
+Swope, Pitera & Suits, J. Phys. Chem. B 108, 6571 (2004): implied timescales t_i = -tau / ln|lambda_i|.
+Prinz et al., J. Chem. Phys. 134, 174105 (2011): spectral analysis of reversible models.
+"""
+from __future__ import annotations
+
+import numpy as np
+import scipy.linalg as la
+
+__all__ = [
+    "chain_diagnostics",
+    "eigen_decomposition",
+    "implied_timescales",
+    "is_reversible",
+    "stationary_distribution",
+]
+
+#: an eigenvalue this close to the unit circle counts as "on" it
+UNIT_CIRCLE_TOL = 1e-9
+#: states whose row holds fewer transitions than this are flagged as poorly sampled
+FEW_COUNTS = 10
+
+
+def stationary_distribution(T: np.ndarray) -> np.ndarray:
+    """Stationary distribution pi of an irreducible row-stochastic matrix: pi T = pi, sum pi = 1.
+
+    Solved as a linear system (T^T - I) pi = 0 with one equation replaced by the normalisation,
+    which is exact for irreducible chains and does not depend on eigenvector phases.
+    """
+    T = np.asarray(T, dtype=float)
+    n = T.shape[0]
+    if n == 1:
+        return np.ones(1)
+    A = T.T - np.eye(n)
+    A[-1, :] = 1.0
+    b = np.zeros(n)
+    b[-1] = 1.0
+    pi = la.solve(A, b)
+    pi = np.clip(pi, 0.0, None)
+    return pi / pi.sum()
+
+
+def is_reversible(T: np.ndarray, pi: np.ndarray, rtol: float = 1e-8) -> bool:
+    """True when pi_i T_ij = pi_j T_ji to ``rtol`` relative to the largest flow."""
+    X = pi[:, None] * T
+    return bool(np.max(np.abs(X - X.T)) <= rtol * max(np.max(X), 1e-300))
+
+
+def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int | None = None,
+                        reversible: bool | None = None, vectors: bool = False):
+    """Eigenvalues (and right eigenvectors) of T sorted by magnitude, largest first.
+
+    For a reversible T (detailed balance with ``pi``) the matrix is symmetrised as
+    D^1/2 T D^-1/2 with D = diag(pi) and solved with a symmetric solver: the spectrum is real
+    and the solve stable. Otherwise a general solver is used and complex eigenvalues may appear.
+
+    Parameters
+    ----------
+    T : ndarray, shape (n, n)
+    pi : ndarray, optional
+        Stationary distribution; computed when missing.
+    k : int, optional
+        How many eigenvalues to return (default all).
+    reversible : bool, optional
+        Use the symmetric path; default: test detailed balance.
+    vectors : bool
+        Also return right eigenvectors (columns), normalised so that sum_i pi_i r_i^2 = 1 in the
+        reversible case.
+
+    Returns
+    -------
+    eigenvalues : ndarray (float, or complex for a non-reversible T with a complex spectrum)
+    right_vectors : ndarray, shape (n, k), only with ``vectors=True``
+    """
+    T = np.asarray(T, dtype=float)
+    n = T.shape[0]
+    k = n if k is None else min(int(k), n)
+    if pi is None:
+        pi = stationary_distribution(T)
+    if reversible is None:
+        reversible = is_reversible(T, pi)
+    if reversible:
+        s = np.sqrt(pi)
+        A = s[:, None] * T / s[None, :]
+        A = 0.5 * (A + A.T)
+        if vectors:
+            w, v = la.eigh(A)
+        else:
+            w, v = la.eigvalsh(A), None
+        order = np.argsort(-np.abs(w), kind="stable")[:k]
+        if not vectors:
+            return w[order]
+        right = v[:, order] / s[:, None]
+        return w[order], right
+    if vectors:
+        w, v = la.eig(T)
+    else:
+        w, v = la.eigvals(T), None
+    order = np.argsort(-np.abs(w), kind="stable")[:k]
+    w = w[order]
+    if np.all(np.abs(w.imag) <= 1e-12 * np.maximum(np.abs(w), 1.0)):
+        w = w.real
+    if not vectors:
+        return w
+    v = v[:, order]
+    if np.isrealobj(w):
+        v = v.real
+    return w, v
+
+
+def implied_timescales(eigenvalues, lag: int, dt: float = 1.0) -> np.ndarray:
+    """Implied timescales t_i = -lag * dt / ln|lambda_i| in physical units (Swope et al. 2004).
+
+    |lambda| >= 1 gives inf (a stationary or undecayed process); lambda = 0 gives 0.
+    """
+    mag = np.abs(np.asarray(eigenvalues))
+    with np.errstate(divide="ignore"):
+        logs = np.log(np.clip(mag, 0.0, 1.0))
+        out = np.where(logs < 0, -lag * dt / np.where(logs < 0, logs, -1.0), np.inf)
+    return np.where(mag == 0, 0.0, out)
+
+
+def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, row_counts=None, states=None,
+                      dropped_states=None, kept_fraction=None, n_reported: int | None = None) -> list[str]:
+    """Plain-language findings about a model that a user must not miss.
+
+    Parameters
+    ----------
+    eigenvalues : ndarray
+        Eigenvalues sorted by magnitude (the first is the stationary 1).
+    lag, dt, unit
+        Lag in frames, frame time and its unit, for the timescale checks.
+    row_counts : ndarray, optional
+        Transitions counted out of each kept state.
+    states : ndarray, optional
+        Original labels of the kept states, used to name them.
+    dropped_states : ndarray, optional
+        Labels of visited states outside the kept set.
+    kept_fraction : float, optional
+        Fraction of transition counts inside the kept set.
+    n_reported : int, optional
+        How many eigenvalues after the first are reported to the user (negative and complex
+        values are flagged among those); default all.
+
+    Returns
+    -------
+    list of str
+    """
+    w = np.asarray(eigenvalues)
+    found = []
+    rest = w[1:] if n_reported is None else w[1:1 + n_reported]
+    tau = lag * dt
+    on_circle = np.abs(np.abs(w[1:]) - 1.0) < UNIT_CIRCLE_TOL
+    if np.any(on_circle):
+        others = w[1:][on_circle]
+        if np.any(np.abs(others.real - 1.0) < UNIT_CIRCLE_TOL) and np.all(np.abs(np.imag(others)) < UNIT_CIRCLE_TOL) \
+                and np.all(others.real > 0):
+            found.append("More than one eigenvalue equals 1: the kept states split into parts that never "
+                         "exchange at this lag, so there is no unique equilibrium; check connectivity.")
+        else:
+            found.append("Periodic chain: an eigenvalue lies on the unit circle away from 1 "
+                         f"({_fmt(others[0])}), so T^n does not settle to equilibrium. Timescales and "
+                         "populations of such a model are not meaningful; counting at a different lag or "
+                         "with more data usually removes the period.")
+    negative = np.real(rest) < 0
+    complex_ = np.abs(np.imag(rest)) > 0
+    if np.any(complex_):
+        found.append(f"{int(np.sum(complex_))} of the reported eigenvalues are complex (e.g. {_fmt(rest[complex_][0])}): "
+                     "the estimate is not reversible; their timescales use |lambda| and oscillate.")
+    if np.any(negative & ~complex_):
+        found.append(f"{int(np.sum(negative & ~complex_))} of the reported eigenvalues are negative "
+                     f"(e.g. {_fmt(rest[negative & ~complex_][0])}): no physical relaxation gives a negative "
+                     "eigenvalue; those timescales come from statistical noise.")
+    ts = implied_timescales(rest, lag, dt)
+    short = np.isfinite(ts) & (ts < tau)
+    if np.any(short):
+        found.append(f"{int(np.sum(short))} reported timescale(s) are shorter than the lag time "
+                     f"({tau:g} {unit}); they cannot be resolved at this lag and are not physical.")
+    if row_counts is not None:
+        few = np.flatnonzero(np.asarray(row_counts) < FEW_COUNTS)
+        if few.size:
+            names = few if states is None else np.asarray(states)[few]
+            shown = ", ".join(str(int(s)) for s in names[:8]) + (" ..." if few.size > 8 else "")
+            found.append(f"{few.size} state(s) have fewer than {FEW_COUNTS} transitions out of them "
+                         f"(states {shown}); their probabilities are poorly determined. More sampling, "
+                         "fewer microstates or a shorter lag help.")
+    if dropped_states is not None and len(dropped_states):
+        shown = ", ".join(str(int(s)) for s in np.asarray(dropped_states)[:8]) + (" ..." if len(dropped_states) > 8 else "")
+        frac = "" if kept_fraction is None else f", holding {100 * (1 - kept_fraction):.3g}% of the transition counts"
+        found.append(f"Data not fully connected: {len(dropped_states)} visited state(s) lie outside the largest "
+                     f"strongly connected set and were dropped (states {shown}{frac}).")
+    return found
+
+
+def _fmt(z) -> str:
+    z = complex(z)
+    return f"{z.real:.4g}" if z.imag == 0 else f"{z.real:.4g}{z.imag:+.4g}i"
