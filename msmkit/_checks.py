@@ -111,8 +111,11 @@ def as_label_trajectories(labels, name: str = "labels") -> list[np.ndarray]:
         raise InputError(f"{name} must hold integer state labels, but got a string {_short(labels)}")
     elif isinstance(labels, Sequence) or hasattr(labels, "__iter__"):
         runs = list(labels)
-        if runs and all(isinstance(x, (numbers.Number, np.generic)) for x in runs):
-            runs = [np.asarray(runs)]  # a flat list of labels is one run
+        # a flat list of labels is one run (strings and other scalars too, so that their dtype
+        # is reported below rather than a confusing "shape ()" per element)
+        if runs and all(isinstance(x, (numbers.Number, np.generic, str, bytes)) or not hasattr(x, "__len__")
+                        for x in runs):
+            runs = [np.asarray(runs)]
     else:
         raise InputError(f"{name} must be a 1-D integer array or a list of them, "
                          f"but got {type(labels).__name__}")
@@ -127,7 +130,7 @@ def as_label_trajectories(labels, name: str = "labels") -> list[np.ndarray]:
             raise InputError(f"{where} must be a 1-D array of state labels, but has shape {arr.shape}")
         if arr.dtype.kind in "USO" and arr.size:
             raise InputError(f"{where} must hold integer state labels, but holds {arr.dtype} values "
-                             f"such as {_short(arr[0])}; map them to integers 0..n-1 first")
+                             f"such as {_short(arr[0].item() if isinstance(arr[0], np.generic) else arr[0])}; map them to integers 0..n-1 first")
         if arr.dtype.kind == "b":
             raise InputError(f"{where} must hold integer state labels, but holds booleans")
         if arr.dtype.kind == "f":
@@ -181,7 +184,7 @@ def as_state_set(states, name: str, valid_labels: np.ndarray) -> np.ndarray:
 # Float trajectories (frames x features)
 # ---------------------------------------------------------------------------------------------
 
-#: Bytes of frame data handled at once when no chunk size is given (16 MiB).
+#: Bytes of float64 frame data handled at once when no chunk size is given (16 MiB).
 DEFAULT_CHUNK_BYTES = 1 << 24
 
 

@@ -1,0 +1,841 @@
+"""Reading trajectory files into runs of frames x features.
+
+:func:`load_trajectories` turns a path, a glob pattern, a list of paths, an array or a list
+of arrays into a :class:`TrajectorySet`: a sequence of runs (one per simulation) sharing one
+list of feature names.
+
+Formats
+-------
+``.npy``
+    One run per file, read lazily: a :class:`LazyRun` that reads frames with plain file reads
+    at an offset (no long-lived memory map), so streaming through it keeps memory bounded.
+``.npz``
+    Each array is one run (loaded into memory). An array named ``feature_names`` (strings)
+    gives the feature names instead of being a run.
+``.csv`` / ``.tsv``
+    One run per file; a header line gives the feature names (no header: ``x0, x1, ...``).
+``.h5`` / ``.hdf5`` / ``.hdf``
+    Needs the optional extra ``hdf5`` (h5py). Every 2-D numeric dataset is one run (sorted by
+    path; ``key=`` picks datasets), read lazily in chunks. Feature names come from a
+    ``feature_names`` attribute of the dataset or of the file.
+MD formats (``.xtc``, ``.dcd``, ``.trr``, ``.pdb``, ``.nc``, ``.gro``, ...)
+    Needs the optional extra ``md`` (mdtraj). Features computed while reading: sine and cosine
+    of backbone torsions (``torsions=``) and distances between atom pairs in nm (``atom_pairs=``,
+    minimum image under periodic boundaries). Files without a topology need ``topology=``.
+
+Checks
+------
+Missing files, globs matching nothing, unreadable, empty or truncated files, unknown file
+types, runs with differing numbers of features and NaN/infinite values all raise
+:class:`~msmkit.errors.InputError` naming the file. Files held in memory (npz, csv/tsv, MD
+formats) are checked for NaN/infinity when loaded; lazy runs (npy, HDF5) are checked as each
+chunk is read, so the error names the file and the first bad frame at the first read that
+meets it (``TrajectorySet.check_values()`` reads everything once to check up front).
+"""
+from __future__ import annotations
+
+import glob as _glob
+import os
+from collections.abc import Sequence
+from pathlib import Path
+
+import numpy as np
+
+from ._checks import (
+    _as_float_run,
+    _short,
+    as_float_trajectories,
+    check_chunk_size,
+    check_dt,
+    check_finite_frames,
+    check_unit,
+    feature_names_of,
+    is_lazy_run,
+    require_optional,
+)
+from .errors import InputError
+
+__all__ = ["LazyRun", "TrajectorySet", "iter_chunks", "load_trajectories"]
+
+NPY_SUFFIXES = (".npy",)
+NPZ_SUFFIXES = (".npz",)
+TEXT_SUFFIXES = {".csv": ",", ".tsv": "\t"}
+HDF5_SUFFIXES = (".h5", ".hdf5", ".hdf")
+MD_SUFFIXES = (".xtc", ".trr", ".dcd", ".pdb", ".nc", ".netcdf", ".gro", ".xyz", ".lammpstrj",
+               ".binpos", ".mdcrd", ".crd", ".arc", ".dtr", ".lh5")
+_GLOB_CHARS = set("*?[")
+_MD_TORSIONS = ("phi", "psi", "omega", "chi1", "chi2", "chi3", "chi4")
+
+
+def _supported() -> str:
+    return ", ".join(NPY_SUFFIXES + NPZ_SUFFIXES + tuple(TEXT_SUFFIXES) + HDF5_SUFFIXES
+                     + MD_SUFFIXES)
+
+
+# ---------------------------------------------------------------------------------------------
+# Chunked access shared by every consumer (TICA, Microstates, the dask back end)
+# ---------------------------------------------------------------------------------------------
+
+def iter_chunks(run, chunk_size: int | None = None):
+    """Yield consecutive blocks of frames of one run.
+
+    Works alike for an in-memory 2-D array (the blocks are views, nothing is copied) and for a
+    :class:`LazyRun` (each block is read from disk when needed and owned by the caller).
+
+    Parameters
+    ----------
+    run : ndarray or LazyRun
+        Frames x features.
+    chunk_size : int, optional
+        Frames per block; by default about 16 MiB of float64 frames.
+
+    Yields
+    ------
+    ndarray
+        ``(m, n_features)`` blocks with ``m <= chunk_size``, in frame order, covering the run.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> [b.shape for b in iter_chunks(np.zeros((5, 2)), 2)]
+    [(2, 2), (2, 2), (1, 2)]
+    """
+    if is_lazy_run(run):
+        yield from run.iter_chunks(chunk_size)
+        return
+    arr = np.asarray(run)
+    size = check_chunk_size(chunk_size, arr.shape[1] if arr.ndim == 2 else 1)
+    for start in range(0, len(arr), size):
+        yield arr[start:start + size]
+
+
+# ---------------------------------------------------------------------------------------------
+# Lazy runs
+# ---------------------------------------------------------------------------------------------
+
+class LazyRun:
+    """A run of frames stored in a file and read on demand.
+
+    Behaves like a read-only 2-D array: ``shape``, ``len()``, slicing (``run[a:b]``,
+    ``run[::10]``, ``run[i]``) and ``np.asarray(run)`` (which reads the whole run) work;
+    :meth:`iter_chunks` streams it block by block. Values come back as floats (integer data is
+    converted to float64) and are checked for NaN/infinity as they are read.
+    """
+
+    def __init__(self, source: str, shape: tuple[int, int], dtype):
+        self.source = source
+        self._shape = (int(shape[0]), int(shape[1]))
+        self._dtype = np.dtype(dtype)
+
+    # -- array-like metadata -----------------------------------------------------------------
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self._shape
+
+    @property
+    def ndim(self) -> int:
+        return 2
+
+    @property
+    def dtype(self) -> np.dtype:
+        """dtype of the arrays this run reads into (float32 or float64)."""
+        return self._dtype.newbyteorder("=") if self._dtype.kind == "f" else np.dtype(np.float64)
+
+    @property
+    def n_frames(self) -> int:
+        return self._shape[0]
+
+    @property
+    def n_features(self) -> int:
+        return self._shape[1]
+
+    def __len__(self) -> int:
+        return self._shape[0]
+
+    def __repr__(self) -> str:
+        return (f"<{type(self).__name__} {self.source!r}: {self._shape[0]} frames x "
+                f"{self._shape[1]} features, {self.dtype}, read on demand>")
+
+    # -- reading -----------------------------------------------------------------------------
+    def _read(self, start: int, stop: int) -> np.ndarray:  # pragma: no cover - abstract
+        raise NotImplementedError
+
+    def read(self, start: int = 0, stop: int | None = None) -> np.ndarray:
+        """Frames ``start:stop`` (clipped to the run) as a new float array."""
+        n = self._shape[0]
+        start, stop, _ = slice(start, stop).indices(n)
+        if stop <= start:
+            return np.empty((0, self._shape[1]), dtype=self.dtype)
+        block = self._read(start, stop)
+        if block.shape != (stop - start, self._shape[1]):
+            raise InputError(f"{self.source}: expected frames {start}..{stop - 1} with "
+                             f"{self._shape[1]} features but read shape {block.shape}; "
+                             f"the file may have changed or be truncated")
+        if not block.dtype.isnative:
+            block = block.astype(block.dtype.newbyteorder("="))
+        if block.dtype != self.dtype:
+            block = block.astype(self.dtype)
+        check_finite_frames(block, self.source, start)
+        return block
+
+    def iter_chunks(self, chunk_size: int | None = None):
+        """Yield the run in consecutive blocks of at most ``chunk_size`` frames."""
+        size = check_chunk_size(chunk_size, self._shape[1])
+        for start in range(0, self._shape[0], size):
+            yield self.read(start, start + size)
+
+    def __array__(self, dtype=None, copy=None):
+        arr = self.read(0, self._shape[0])
+        return arr if dtype is None else arr.astype(dtype, copy=False)
+
+    def __getitem__(self, key):
+        if isinstance(key, tuple):
+            if not key:
+                return self[:]
+            rows = self[key[0]]
+            rest = key[1:]
+            return rows[rest] if rows.ndim == 1 else rows[(slice(None),) + rest]
+        if isinstance(key, (int, np.integer)) and not isinstance(key, bool):
+            i = int(key)
+            if not -self._shape[0] <= i < self._shape[0]:
+                raise IndexError(f"frame {i} out of range for a run of {self._shape[0]} frames")
+            i %= self._shape[0]
+            return self.read(i, i + 1)[0]
+        if isinstance(key, slice):
+            start, stop, step = key.indices(self._shape[0])
+            if step == 1:
+                return self.read(start, stop)
+            if step < 0:
+                lo = stop + 1
+                return self[lo:start + 1][::-1][::-step] if start >= lo else self.read(0, 0)
+            return self._strided(start, stop, step)
+        if key is Ellipsis:
+            return self.read(0, self._shape[0])
+        index = np.asarray(key)
+        if index.size == 0:
+            index = index.astype(np.intp)
+        if index.dtype.kind == "b":
+            if index.shape != (self._shape[0],):
+                raise IndexError(f"boolean index of shape {index.shape} does not match "
+                                 f"{self._shape[0]} frames")
+            index = np.flatnonzero(index)
+        if index.dtype.kind not in "iu":
+            raise IndexError(f"cannot index a run with {_short(key)}")
+        return self._take(index)
+
+    def _strided(self, start: int, stop: int, step: int) -> np.ndarray:
+        """Every ``step``-th frame of ``start:stop``, reading in bounded blocks."""
+        block = check_chunk_size(None, self._shape[1])
+        if step * 8 > block:  # sparse: read the wanted frames only
+            return self._take(np.arange(start, stop, step))
+        n_out = len(range(start, stop, step))
+        out = np.empty((n_out, self._shape[1]), dtype=self.dtype)
+        block -= block % step  # whole periods per read
+        k = 0
+        for lo in range(start, stop, block):
+            part = self.read(lo, min(lo + block, stop))[::step]
+            out[k:k + len(part)] = part
+            k += len(part)
+        return out
+
+    def _take(self, index: np.ndarray) -> np.ndarray:
+        n = self._shape[0]
+        if index.size and (index.min() < -n or index.max() >= n):
+            raise IndexError(f"frame index out of range for a run of {n} frames")
+        index = np.where(index < 0, index + n, index).ravel()
+        out = np.empty((index.size, self._shape[1]), dtype=self.dtype)
+        if not index.size:
+            return out
+        order = np.argsort(index, kind="stable")
+        sorted_idx = index[order]
+        size = check_chunk_size(None, self._shape[1])
+        i = 0
+        while i < sorted_idx.size:
+            lo = int(sorted_idx[i])
+            j = int(np.searchsorted(sorted_idx, lo + size, side="left"))
+            block = self.read(lo, int(sorted_idx[j - 1]) + 1)  # up to the last wanted frame
+            out[order[i:j]] = block[sorted_idx[i:j] - lo]
+            i = j
+        return out
+
+
+class _NpyRun(LazyRun):
+    """An .npy file read with file offsets; a memory map is opened per read only for
+    Fortran-ordered files and dropped at once (a long-lived map would count every touched
+    page as resident memory)."""
+
+    def __init__(self, path: str, offset: int, shape, dtype, fortran_order: bool):
+        super().__init__(path, shape, dtype)
+        self._offset = int(offset)
+        self._fortran = bool(fortran_order)
+
+    def _read(self, start, stop):
+        d = self._shape[1]
+        if self._fortran:
+            mm = np.memmap(self.source, dtype=self._dtype, mode="r", offset=self._offset,
+                           shape=self._shape, order="F")
+            try:
+                return np.array(mm[start:stop])
+            finally:
+                del mm
+        count = (stop - start) * d
+        with open(self.source, "rb") as fh:
+            fh.seek(self._offset + start * d * self._dtype.itemsize)
+            flat = np.fromfile(fh, dtype=self._dtype, count=count)
+        if flat.size != count:
+            raise InputError(f"{self.source}: file ends before frame {stop - 1}; it is truncated "
+                             f"or was changed after loading")
+        return flat.reshape(stop - start, d)
+
+
+class _HDF5Run(LazyRun):
+    """One 2-D dataset of an HDF5 file; the file is opened per read and closed again."""
+
+    def __init__(self, path: str, key: str, shape, dtype):
+        super().__init__(f"{path}:{key}", shape, dtype)
+        self._path = path
+        self._key = key
+
+    def _read(self, start, stop):
+        h5py = require_optional("h5py", "hdf5", "Reading HDF5 files")
+        with h5py.File(self._path, "r") as fh:
+            return np.asarray(fh[self._key][start:stop])
+
+
+# ---------------------------------------------------------------------------------------------
+# The set of runs
+# ---------------------------------------------------------------------------------------------
+
+def _check_names(names, n_features: int, where: str) -> tuple[str, ...]:
+    try:
+        names = tuple(str(n) for n in names)
+    except TypeError:
+        raise InputError(f"feature_names must be a list of strings, but got {_short(names)}") from None
+    if len(names) != n_features:
+        raise InputError(f"feature_names has {len(names)} names but {where} has {n_features} "
+                         f"features; give one name per feature (column)")
+    seen = set()
+    for n in names:
+        if n in seen:
+            raise InputError(f"feature_names must be unique, but {n!r} appears twice ({where})")
+        seen.add(n)
+    return names
+
+
+def default_feature_names(n_features: int) -> tuple[str, ...]:
+    """Names used when a source carries none: ``x0, x1, ...``."""
+    return tuple(f"x{i}" for i in range(n_features))
+
+
+class TrajectorySet(Sequence):
+    """A sequence of runs (frames x features) sharing one list of feature names.
+
+    Runs are in-memory 2-D float arrays or :class:`LazyRun` objects that read themselves from
+    disk. Indexing with an integer gives a run; with a slice, a smaller TrajectorySet.
+
+    Parameters
+    ----------
+    runs : sequence of array-like or LazyRun
+        One entry per simulation run; all with the same number of features.
+    feature_names : sequence of str, optional
+        One unique name per feature; default ``x0, x1, ...``.
+    dt : float, optional
+        Time between frames, if known (physical units, see ``unit``).
+    unit : str, optional
+        Time unit of ``dt`` (e.g. ``"ns"``).
+
+    Attributes
+    ----------
+    feature_names : tuple of str
+    n_features : int
+    n_frames : ndarray of int64, frames per run
+    total_frames : int
+    sources : tuple of str or None, the file each run came from (None for in-memory arrays)
+    """
+
+    def __init__(self, runs, feature_names=None, *, dt=None, unit=None, sources=None):
+        if feature_names is None:
+            feature_names = feature_names_of(runs)
+        checked = as_float_trajectories(runs, "runs")
+        n_features = checked[0].shape[1]
+        self._runs = tuple(checked)
+        if sources is None:
+            sources = [getattr(r, "source", None) for r in checked]
+        self._sources = tuple(None if s is None else str(s) for s in sources)
+        if len(self._sources) != len(self._runs):
+            raise InputError(f"sources has {len(self._sources)} entries for {len(self._runs)} runs")
+        self.feature_names = (default_feature_names(n_features) if feature_names is None
+                              else _check_names(feature_names, n_features, "the runs"))
+        self.dt = None if dt is None else check_dt(dt)
+        self.unit = None if unit is None else check_unit(unit)
+
+    @property
+    def n_features(self) -> int:
+        return len(self.feature_names)
+
+    @property
+    def n_frames(self) -> np.ndarray:
+        return np.array([r.shape[0] for r in self._runs], dtype=np.int64)
+
+    @property
+    def total_frames(self) -> int:
+        return int(sum(r.shape[0] for r in self._runs))
+
+    @property
+    def sources(self) -> tuple:
+        return self._sources
+
+    @property
+    def runs(self) -> tuple:
+        return self._runs
+
+    def __len__(self) -> int:
+        return len(self._runs)
+
+    def __getitem__(self, index):
+        if isinstance(index, slice):
+            return TrajectorySet(self._runs[index], self.feature_names, dt=self.dt, unit=self.unit,
+                                 sources=self._sources[index])
+        return self._runs[index]
+
+    def __repr__(self) -> str:
+        lazy = sum(is_lazy_run(r) for r in self._runs)
+        where = f", {lazy} read from disk on demand" if lazy else ""
+        time = f", dt={self.dt:g} {self.unit or ''}".rstrip() if self.dt is not None else ""
+        names = ", ".join(self.feature_names[:6]) + (", ..." if self.n_features > 6 else "")
+        return (f"TrajectorySet({len(self)} runs, {self.total_frames} frames, "
+                f"{self.n_features} features [{names}]{time}{where})")
+
+    def in_memory(self) -> "TrajectorySet":
+        """The same runs with every lazy run read into memory."""
+        return TrajectorySet([np.asarray(r) for r in self._runs], self.feature_names,
+                             dt=self.dt, unit=self.unit, sources=self._sources)
+
+    def check_values(self, chunk_size: int | None = None) -> "TrajectorySet":
+        """Read every lazy run once, raising InputError at the first NaN/infinite frame."""
+        for run in self._runs:
+            if is_lazy_run(run):
+                for _ in run.iter_chunks(chunk_size):
+                    pass
+        return self
+
+
+# ---------------------------------------------------------------------------------------------
+# Readers, one per format; each returns (list of runs, feature names or None)
+# ---------------------------------------------------------------------------------------------
+
+def _open_error(path: str, err: Exception) -> InputError:
+    return InputError(f"cannot read {path}: {err}")
+
+
+def _check_not_empty(path: str) -> None:
+    try:
+        size = os.path.getsize(path)
+    except OSError as err:
+        raise _open_error(path, err) from None
+    if size == 0:
+        raise InputError(f"{path} is empty (0 bytes); remove it or regenerate it")
+
+
+def _check_shape(shape, path: str, what: str = "the array") -> None:
+    if len(shape) != 2:
+        hint = (" (one feature? save it as a column, x[:, None])" if len(shape) == 1 else
+                " (coordinates? compute features first, or reshape to frames x features)"
+                if len(shape) == 3 else "")
+        raise InputError(f"{path}: {what} must be 2-D (frames x features), but has shape "
+                         f"{tuple(shape)}{hint}")
+    if shape[0] == 0:
+        raise InputError(f"{path}: {what} holds no frames (shape {tuple(shape)})")
+    if shape[1] == 0:
+        raise InputError(f"{path}: {what} has no features (shape {tuple(shape)})")
+
+
+def _check_numeric(dtype, path: str) -> None:
+    dtype = np.dtype(dtype)
+    if dtype.kind not in "fiub" or dtype.names is not None:
+        raise InputError(f"{path}: the data must be real numbers, but have dtype {dtype}; "
+                         f"save the features as a float array")
+
+
+def _read_npy(path: str, **_):
+    _check_not_empty(path)
+    fmt = np.lib.format
+    try:
+        with open(path, "rb") as fh:
+            version = fmt.read_magic(fh)
+            if version == (1, 0):
+                shape, fortran, dtype = fmt.read_array_header_1_0(fh)
+            elif version == (2, 0):
+                shape, fortran, dtype = fmt.read_array_header_2_0(fh)
+            else:
+                raise ValueError(f"unsupported .npy format version {version}")
+            offset = fh.tell()
+    except OSError as err:
+        raise _open_error(path, err) from None
+    except ValueError as err:
+        raise InputError(f"{path} is not a readable .npy file ({err}); save arrays with "
+                         f"numpy.save") from None
+    _check_numeric(dtype, path)
+    _check_shape(shape, path)
+    needed = offset + int(np.prod(shape)) * dtype.itemsize
+    if os.path.getsize(path) < needed:
+        raise InputError(f"{path} is truncated: the header promises {shape[0]} frames x "
+                         f"{shape[1]} features ({needed} bytes) but the file has "
+                         f"{os.path.getsize(path)} bytes")
+    return [_NpyRun(path, offset, shape, dtype, fortran)], None
+
+
+def _read_npz(path: str, **_):
+    import zipfile
+
+    _check_not_empty(path)
+    if not zipfile.is_zipfile(path):
+        raise InputError(f"{path} is not a readable .npz file (not a zip archive); save runs "
+                         f"with numpy.savez")
+    runs, names = [], None
+    try:
+        with np.load(path, allow_pickle=False) as data:
+            keys = list(data.files)
+            for key in keys:
+                arr = data[key]
+                if key == "feature_names":
+                    names = [str(n) for n in np.asarray(arr).ravel()]
+                    continue
+                where = f"{path}:{key}"
+                _check_numeric(arr.dtype, where)
+                _check_shape(arr.shape, where)
+                arr = arr if arr.dtype.kind == "f" else arr.astype(np.float64)
+                check_finite_frames(arr, where, 0)
+                runs.append(arr)
+    except (zipfile.BadZipFile, OSError, EOFError) as err:
+        raise InputError(f"{path} is not a readable .npz file ({err}); save runs with "
+                         f"numpy.savez") from None
+    except ValueError as err:
+        if isinstance(err, InputError):
+            raise
+        raise InputError(f"{path} holds data that cannot be read safely ({err}); store plain "
+                         f"numeric arrays") from None
+    if not runs:
+        raise InputError(f"{path} holds no runs (no arrays besides feature_names)")
+    return runs, names
+
+
+def _looks_numeric(token: str) -> bool:
+    try:
+        float(token)
+        return True
+    except ValueError:
+        return token.strip().lower() in {"", "nan", "inf", "-inf", "+inf", "na"}
+
+
+def _read_text(path: str, **_):
+    import pandas as pd
+
+    sep = TEXT_SUFFIXES[Path(path).suffix.lower()]
+    _check_not_empty(path)
+    try:
+        with open(path, encoding="utf-8-sig") as fh:
+            first = ""
+            for line in fh:
+                if line.strip():
+                    first = line.rstrip("\r\n")
+                    break
+    except (OSError, UnicodeDecodeError) as err:
+        raise _open_error(path, err) from None
+    if not first:
+        raise InputError(f"{path} holds only blank lines")
+    tokens = first.split(sep)
+    has_header = not all(_looks_numeric(t) for t in tokens)
+    try:
+        frame = pd.read_csv(path, sep=sep, header=0 if has_header else None,
+                            skip_blank_lines=True, encoding="utf-8-sig")
+    except Exception as err:  # pandas raises several parser error types
+        raise InputError(f"cannot parse {path} as {'CSV' if sep == ',' else 'TSV'}: {err}") from None
+    if frame.shape[0] == 0:
+        raise InputError(f"{path} has a header but no frames")
+    names = [str(c).strip() for c in frame.columns] if has_header else None
+    for j, col in enumerate(frame.columns):
+        if frame[col].dtype.kind not in "fiub":
+            coerced = pd.to_numeric(frame[col], errors="coerce")
+            bad = np.flatnonzero(coerced.isna().to_numpy() & frame[col].notna().to_numpy())
+            i = int(bad[0]) if bad.size else 0
+            line = i + (2 if has_header else 1)
+            label = f"column {j} ({names[j]!r})" if names else f"column {j}"
+            raise InputError(f"{path}: frame {i} (line {line}) has {frame[col].iloc[i]!r} in "
+                             f"{label}; every value must be a number")
+    arr = frame.to_numpy(dtype=np.float64)
+    check_finite_frames(arr, path, 0, names)
+    return [arr], names
+
+
+def _read_hdf5(path: str, *, key=None, **_):
+    h5py = require_optional("h5py", "hdf5", "Reading HDF5 files")
+    _check_not_empty(path)
+    try:
+        fh = h5py.File(path, "r")
+    except OSError as err:
+        raise InputError(f"{path} is not a readable HDF5 file ({err})") from None
+    with fh:
+        if key is None:
+            keys = []
+            fh.visititems(lambda name, obj: keys.append(name)
+                          if isinstance(obj, h5py.Dataset) and obj.ndim == 2
+                          and obj.dtype.kind in "fiub" else None)
+            keys.sort()
+            if not keys:
+                raise InputError(f"{path} holds no 2-D numeric dataset; store each run as a "
+                                 f"frames x features dataset")
+        else:
+            keys = [key] if isinstance(key, str) else list(key)
+        runs, names = [], None
+        for k in keys:
+            if k not in fh or not isinstance(fh[k], h5py.Dataset):
+                raise InputError(f"key={k!r}: {path} has no dataset of that name; datasets "
+                                 f"there: {_short(sorted(_h5_datasets(fh, h5py)), 200)}")
+            ds = fh[k]
+            _check_numeric(ds.dtype, f"{path}:{k}")
+            _check_shape(ds.shape, f"{path}:{k}", "the dataset")
+            runs.append(_HDF5Run(path, k, ds.shape, ds.dtype))
+            ds_names = ds.attrs.get("feature_names", fh.attrs.get("feature_names"))
+            if ds_names is not None and names is None:
+                names = [n.decode() if isinstance(n, bytes) else str(n)
+                         for n in np.asarray(ds_names).ravel()]
+    return runs, names
+
+
+def _h5_datasets(fh, h5py) -> list[str]:
+    found = []
+    fh.visititems(lambda name, obj: found.append(name) if isinstance(obj, h5py.Dataset) else None)
+    return found
+
+
+def _residue_label(topology, atom_index: int) -> str:
+    return str(topology.atom(int(atom_index)).residue)
+
+
+def _read_md(path: str, *, topology=None, torsions=("phi", "psi"), atom_pairs=None,
+             md_chunk: int = 10_000, **_):
+    md = require_optional("mdtraj", "md", "Reading molecular-dynamics trajectory files")
+    _check_not_empty(path)
+    suffix = Path(path).suffix.lower()
+    torsions = () if torsions is None else ((torsions,) if isinstance(torsions, str)
+                                           else tuple(torsions))
+    for kind in torsions:
+        if kind not in _MD_TORSIONS:
+            raise InputError(f"torsions: unknown torsion {kind!r}; choose from {_MD_TORSIONS}")
+    if not torsions and atom_pairs is None:
+        raise InputError("torsions=() and atom_pairs=None leave no features to compute; give "
+                         "backbone torsions, atom pairs, or both")
+    kwargs = {}
+    if topology is not None:
+        kwargs["top"] = str(topology)
+    elif suffix not in (".pdb", ".gro", ".lh5", ".arc"):
+        raise InputError(f"topology is required to read {path}: {suffix} files hold coordinates "
+                         f"only; pass topology='system.pdb' (or another structure file)")
+    pairs = None
+    blocks: list[list[np.ndarray]] = []
+    names: list[str] | None = None
+    try:
+        for chunk in md.iterload(path, chunk=md_chunk, **kwargs):
+            top = chunk.topology
+            if names is None:
+                names, plan = [], []
+                for kind in torsions:
+                    indices, _ = getattr(md, f"compute_{kind}")(chunk[:1])
+                    for quad in indices:
+                        label = f"{kind} {_residue_label(top, quad[1])}"
+                        names += [f"sin({label})", f"cos({label})"]
+                    plan.append(kind)
+                if atom_pairs is not None:
+                    pairs = np.asarray(atom_pairs)
+                    if pairs.ndim != 2 or pairs.shape[1] != 2 or pairs.dtype.kind not in "iu":
+                        raise InputError(f"atom_pairs must be an (n, 2) array of atom indices, "
+                                         f"but got {_short(atom_pairs)}")
+                    if pairs.size and (pairs.min() < 0 or pairs.max() >= top.n_atoms):
+                        raise InputError(f"atom_pairs holds atom indices outside 0..{top.n_atoms - 1} "
+                                         f"(the topology has {top.n_atoms} atoms)")
+                    names += [f"d({top.atom(int(a))}, {top.atom(int(b))})" for a, b in pairs]
+                if not names:
+                    raise InputError(f"{path}: the topology has no {'/'.join(torsions)} torsions "
+                                     f"(no protein backbone?); give atom_pairs= instead")
+            cols = []
+            for kind in torsions:
+                _, angles = getattr(md, f"compute_{kind}")(chunk)
+                sc = np.empty((angles.shape[0], 2 * angles.shape[1]))
+                sc[:, 0::2] = np.sin(angles)
+                sc[:, 1::2] = np.cos(angles)
+                cols.append(sc)
+            if pairs is not None:
+                cols.append(np.asarray(md.compute_distances(chunk, pairs, periodic=True),
+                                       dtype=np.float64))
+            blocks.append(np.hstack(cols) if cols else np.empty((chunk.n_frames, 0)))
+    except InputError:
+        raise
+    except Exception as err:  # mdtraj raises many types for unreadable files
+        raise InputError(f"cannot read {path} with mdtraj: {err}") from None
+    if not blocks:
+        raise InputError(f"{path} holds no frames")
+    arr = np.vstack(blocks)
+    _check_shape(arr.shape, path, "the features")
+    check_finite_frames(arr, path, 0, names)
+    return [arr], names
+
+
+def _reader_for(path: str):
+    suffix = Path(path).suffix.lower()
+    if suffix in NPY_SUFFIXES:
+        return _read_npy
+    if suffix in NPZ_SUFFIXES:
+        return _read_npz
+    if suffix in TEXT_SUFFIXES:
+        return _read_text
+    if suffix in HDF5_SUFFIXES:
+        return _read_hdf5
+    if suffix in MD_SUFFIXES:
+        return _read_md
+    raise InputError(f"{path}: unknown file type {suffix or '(no extension)'!r}; supported: "
+                     f"{_supported()}")
+
+
+def _expand_path(item, name: str) -> list[str]:
+    text = os.fspath(item)
+    if isinstance(text, bytes):
+        text = os.fsdecode(text)
+    text = os.path.expanduser(text)
+    if any(c in _GLOB_CHARS for c in text) and not os.path.exists(text):
+        matches = sorted(p for p in _glob.glob(text, recursive=True) if os.path.isfile(p))
+        if not matches:
+            raise InputError(f"{name}: the pattern {text!r} matched no files; check the folder "
+                             f"and the extension")
+        return matches
+    if os.path.isdir(text):
+        raise InputError(f"{name}: {text!r} is a folder; give a file or a pattern such as "
+                         f"{os.path.join(text, '*.npy')!r}")
+    if not os.path.exists(text):
+        raise InputError(f"{name}: no such file {text!r}")
+    return [text]
+
+
+def _is_path(item) -> bool:
+    return isinstance(item, (str, bytes, os.PathLike))
+
+
+def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=None,
+                      topology=None, torsions=("phi", "psi"), atom_pairs=None,
+                      progress: bool = False) -> TrajectorySet:
+    """Read trajectories (frames x features) into a :class:`TrajectorySet`.
+
+    Parameters
+    ----------
+    source : path, glob pattern, array, or a list of paths/arrays
+        ``"runs/*.npy"``, ``["a.csv", "b.csv"]``, a 2-D array (one run) or a list of 2-D
+        arrays (one per run). Patterns are expanded in sorted order; each file gives one run
+        (``.npz`` and HDF5 files: one per array/dataset). See the module docstring for formats.
+    feature_names : sequence of str, optional
+        Override the names from the files (or the default ``x0, x1, ...``).
+    key : str or list of str, optional
+        HDF5 dataset path(s) to read; by default every 2-D numeric dataset.
+    dt : float, optional
+        Time between frames, stored on the result; ``unit`` is the time unit (e.g. ``"ns"``).
+    topology : path, optional
+        Structure file (e.g. ``.pdb``) for MD formats that hold coordinates only (xtc, dcd, ...).
+    torsions : sequence of str
+        MD formats: backbone/side-chain torsions to use as sin/cos features ("phi", "psi",
+        "omega", "chi1".."chi4"); ``()`` for none.
+    atom_pairs : (n, 2) int array, optional
+        MD formats: atom index pairs whose distances (nm, minimum image) become features.
+    progress : bool
+        Show a progress bar while reading many files.
+
+    Returns
+    -------
+    TrajectorySet
+        ``.npy`` and HDF5 runs are lazy (read on demand in chunks); the rest are in memory.
+
+    Raises
+    ------
+    InputError
+        Missing files, patterns matching nothing, unknown types, unreadable/empty/truncated
+        files, runs with different numbers of features or names, NaN/infinite values (naming
+        the file and frame).
+    ImportError
+        HDF5 or MD formats without the optional extra (``msmkit[hdf5]``, ``msmkit[md]``).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> trajs = load_trajectories([np.zeros((10, 2)), np.ones((5, 2))])
+    >>> len(trajs), trajs.total_frames, trajs.feature_names
+    (2, 15, ('x0', 'x1'))
+    """
+    if isinstance(source, TrajectorySet):
+        names = source.feature_names if feature_names is None else feature_names
+        return TrajectorySet(source.runs, names, dt=source.dt if dt is None else dt,
+                             unit=source.unit if unit is None else unit, sources=source.sources)
+    if source is None:
+        raise InputError("source must be a path, a glob pattern, an array or a list of them, "
+                         "but got None")
+    if _is_path(source):
+        items = [source]
+    elif isinstance(source, np.ndarray) or is_lazy_run(source) or hasattr(source, "columns"):
+        items = [source]
+    elif hasattr(source, "__iter__"):
+        items = list(source)
+        if not items:
+            raise InputError("source is an empty list; give at least one path or array")
+        if all(isinstance(x, (int, float, np.generic)) for x in items):
+            items = [np.asarray(items)]
+    else:
+        raise InputError(f"source must be a path, a glob pattern, an array or a list of them, "
+                         f"but got {type(source).__name__}")
+
+    # Expand every path first so that a missing file fails before anything is read.
+    plan: list = []
+    for i, item in enumerate(items):
+        where = "source" if len(items) == 1 else f"source[{i}]"
+        if _is_path(item):
+            for path in _expand_path(item, where):
+                plan.append((path, _reader_for(path)))
+        else:
+            plan.append((None, _as_float_run(item, where, None)))
+
+    n_files = sum(p is not None for p, _ in plan)
+    iterator = plan
+    if progress and n_files > 1:
+        from tqdm.auto import tqdm
+        iterator = tqdm(plan, desc="reading trajectories", unit="file")
+
+    runs: list = []
+    sources: list = []
+    names = None
+    names_from = None
+    in_memory_names = feature_names_of(source) if not _is_path(source) else None
+    options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs)
+    for path, what in iterator:
+        if path is None:
+            runs.append(what)
+            sources.append(None)
+            continue
+        file_runs, file_names = what(path, **options)
+        if file_names is not None:
+            file_names = tuple(file_names)
+            if names is None:
+                names, names_from = file_names, path
+            elif file_names != names and feature_names is None:
+                raise InputError(f"feature names differ between files: {names_from} has "
+                                 f"{_short(names, 120)} but {path} has {_short(file_names, 120)}; "
+                                 f"load files with the same features together (or pass "
+                                 f"feature_names= to override)")
+        if runs and file_runs:
+            d0 = runs[0].shape[1] if hasattr(runs[0], "shape") else np.shape(runs[0])[1]
+            for r in file_runs:
+                if r.shape[1] != d0:
+                    first = getattr(runs[0], "source", None) or "the first run"
+                    raise InputError(f"all runs must have the same number of features, but "
+                                     f"{first} has {d0} and {path} has {r.shape[1]}; load runs "
+                                     f"of the same system and feature set together")
+        runs.extend(file_runs)
+        sources.extend([path] * len(file_runs))
+    if feature_names is None:
+        feature_names = names if names is not None else in_memory_names
+    return TrajectorySet(runs, feature_names, dt=dt, unit=unit, sources=sources)

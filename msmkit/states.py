@@ -1,0 +1,406 @@
+"""Microstates: k-means clustering of frames and fast assignment of frames to centers.
+
+:class:`Microstates` fits k-means (scikit-learn, k-means++ seeding) on every ``stride``-th
+frame and labels frames with :func:`nearest_center`, which streams runs in memory-bounded
+chunks and returns, for each frame, the index of the nearest center in Euclidean distance.
+
+Assignment is exact: labels equal a brute-force float64 argmin (ties go to the lowest center
+index). Two engines, chosen by dimension:
+
+* up to ``KDTREE_MAX_DIM`` features, a KD-tree (``scipy.spatial.cKDTree``, all cores),
+  queried for the two nearest centers; frames whose two distances tie within rounding are
+  re-decided by brute force;
+* above that, ``||c||^2 - 2 x.c`` for a block of frames in one float32 matrix product (BLAS),
+  threads over blocks, and an error bound on the float32 rounding: a frame whose best and
+  second-best values lie closer than the bound is re-decided by a float64 brute force.
+
+References
+----------
+.. [1] D. Arthur and S. Vassilvitskii, "k-means++: the advantages of careful seeding",
+       SODA 2007.
+.. [2] D. Sculley, "Web-scale k-means clustering", WWW 2010 (mini-batch k-means).
+"""
+from __future__ import annotations
+
+import os
+import warnings
+from concurrent.futures import ThreadPoolExecutor
+
+import numpy as np
+
+from ._checks import (
+    as_float_trajectories,
+    check_chunk_size,
+    check_int,
+)
+from .errors import DiagnosticWarning, InputError
+from .io import iter_chunks
+
+__all__ = ["Microstates", "nearest_center"]
+
+#: Highest number of features for which the KD-tree engine is used.
+KDTREE_MAX_DIM = 3
+_U32 = float(np.finfo(np.float32).eps) / 2  # unit roundoff of float32
+_BLOCK_ROWS = 512  # frames per matrix product (the block of distances stays in cache)
+
+
+def _n_threads() -> int:
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def _brute_force(x: np.ndarray, centers: np.ndarray) -> np.ndarray:
+    """Exact reference: argmin over centers of sum((x - c)^2) in float64 (lowest index wins)."""
+    out = np.empty(len(x), dtype=np.intp)
+    step = max(1, 2_000_000 // max(1, centers.size))
+    for s in range(0, len(x), step):
+        diff = x[s:s + step, None, :] - centers[None, :, :]
+        out[s:s + step] = np.einsum("ijk,ijk->ij", diff, diff).argmin(axis=1)
+    return out
+
+
+class _Assigner:
+    """Nearest-center labelling prepared once for a set of centers (see module docstring)."""
+
+    def __init__(self, centers: np.ndarray, n_threads: int | None = None):
+        centers = np.asarray(centers, dtype=np.float64)
+        # Duplicate centers: keep the first of each, so ties go to the lowest index.
+        _, first = np.unique(centers, axis=0, return_index=True)
+        self.keep = np.sort(first)
+        self.centers = np.ascontiguousarray(centers[self.keep])
+        self.k, self.d = self.centers.shape
+        self.n_threads = _n_threads() if n_threads is None else max(1, int(n_threads))
+        if self.k == 1:
+            self.engine = "single"
+        elif self.d <= KDTREE_MAX_DIM:
+            from scipy.spatial import cKDTree
+            self.engine = "kdtree"
+            self.tree = cKDTree(self.centers)
+        else:
+            self.engine = "gemm"
+            self.shift = self.centers.mean(axis=0)
+            cs = self.centers - self.shift
+            cc = np.einsum("ij,ij->i", cs, cs)
+            # [x, 1] @ [-2 c^T; |c|^2] = |c|^2 - 2 x.c: one product per block.
+            self.caug = np.ascontiguousarray(np.vstack([-2.0 * cs.T, cc[None, :]]),
+                                             dtype=np.float32)
+            self.cc_max = float(cc.max())
+            self.cnorm_max = float(np.sqrt(cc.max()))
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        x = np.asarray(x, dtype=np.float64)
+        if self.engine == "single" or len(x) == 0:
+            labels = np.zeros(len(x), dtype=np.intp)
+        elif self.engine == "kdtree":
+            labels = self._kdtree(x)
+        else:
+            labels = self._gemm(x)
+        return self.keep[labels].astype(np.int32)
+
+    def _kdtree(self, x):
+        dist, idx = self.tree.query(x, k=2, workers=-1 if self.n_threads > 1 else 1)
+        labels = idx[:, 0]
+        # Distances are computed in float64 from differences; a near-tie is re-decided exactly.
+        close = dist[:, 1] - dist[:, 0] <= 1e-12 * dist[:, 1] + 1e-300
+        self._settle(x, labels, np.flatnonzero(close))
+        return labels
+
+    def _gemm_block(self, xs32: np.ndarray, xnorm: np.ndarray, labels: np.ndarray,
+                    work: tuple) -> list:
+        """Label one range of frames (already shifted, float32); return the unsure rows."""
+        xa, dist = work
+        n, d = xs32.shape
+        unsure = []
+        bound_const = 2.0 * (d + 4) * _U32
+        for s in range(0, n, _BLOCK_ROWS):
+            m = min(_BLOCK_ROWS, n - s)
+            xa[:m, :d] = xs32[s:s + m]
+            dm = dist[:m]
+            np.matmul(xa[:m], self.caug, out=dm)
+            j = dm.argmin(axis=1)
+            rows = np.arange(m)
+            best = dm[rows, j]
+            dm[rows, j] = np.inf
+            second = dm.min(axis=1)
+            labels[s:s + m] = j
+            # Rounding error of each float32 entry is at most (d+4) u (2|x||c| + |c|^2)
+            # (dot-product error bound plus the rounding of the inputs); the winner is certain
+            # when the runner-up is more than twice that above it.
+            bound = bound_const * (2.0 * xnorm[s:s + m] * self.cnorm_max + self.cc_max)
+            bad = np.flatnonzero((second - best) <= 2.0 * bound)
+            if bad.size:
+                unsure.append(bad + s)
+        return unsure
+
+    def _gemm(self, x):
+        from threadpoolctl import threadpool_limits
+
+        n = len(x)
+        labels = np.empty(n, dtype=np.intp)
+        xs = x - self.shift
+        xnorm = np.sqrt(np.einsum("ij,ij->i", xs, xs))
+        xs32 = xs.astype(np.float32)
+        del xs
+        n_parts = 1 if n < 8 * _BLOCK_ROWS or self.n_threads == 1 else 4 * self.n_threads
+        bounds = np.linspace(0, n, n_parts + 1).astype(np.int64)
+
+        def work(i):
+            lo, hi = int(bounds[i]), int(bounds[i + 1])
+            buffers = (np.ones((_BLOCK_ROWS, self.d + 1), dtype=np.float32),
+                       np.empty((_BLOCK_ROWS, self.k), dtype=np.float32))
+            return [u + lo for u in self._gemm_block(xs32[lo:hi], xnorm[lo:hi],
+                                                     labels[lo:hi], buffers)]
+
+        if n_parts == 1:
+            unsure = work(0)
+        else:
+            # One BLAS thread per worker: the threads already use every core.
+            with threadpool_limits(1, user_api="blas"), \
+                    ThreadPoolExecutor(self.n_threads) as pool:
+                unsure = [u for part in pool.map(work, range(n_parts)) for u in part]
+        if unsure:
+            self._settle(x, labels, np.concatenate(unsure))
+        return labels
+
+    def _settle(self, x, labels, rows):
+        if rows.size:
+            labels[rows] = _brute_force(x[rows], self.centers)
+
+
+def nearest_center(frames, centers, *, chunk_size=None, n_threads=None) -> np.ndarray:
+    """Index of the nearest center (Euclidean) for every frame.
+
+    Parameters
+    ----------
+    frames : ndarray (n_frames, n_features) or a lazy run
+        Read in chunks of ``chunk_size`` frames.
+    centers : ndarray (n_centers, n_features)
+    chunk_size : int, optional
+        Frames per chunk (default about 16 MiB of float64 frames).
+    n_threads : int, optional
+        Threads to use (default: every core available to the process).
+
+    Returns
+    -------
+    ndarray of int32 (n_frames,)
+        Equal to ``argmin_j sum((x - c_j)^2)`` computed in float64; ties go to the lowest j.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> nearest_center(np.array([[0.1, 0.0], [0.9, 1.0]]), np.array([[0.0, 0.0], [1.0, 1.0]]))
+    array([0, 1], dtype=int32)
+    """
+    runs = as_float_trajectories([frames], "frames")
+    centers = np.asarray(centers, dtype=np.float64)
+    if centers.ndim != 2 or centers.shape[0] == 0:
+        raise InputError(f"centers must be a 2-D array (n_centers x n_features) with at least "
+                         f"one row, but has shape {centers.shape}")
+    if not np.isfinite(centers).all():
+        raise InputError("centers hold NaN or infinite values")
+    if centers.shape[1] != runs[0].shape[1]:
+        raise InputError(f"frames have {runs[0].shape[1]} features but centers have "
+                         f"{centers.shape[1]}; use centers fitted on the same features")
+    return _assign_run(runs[0], _Assigner(centers, n_threads),
+                       check_chunk_size(chunk_size, centers.shape[1]))
+
+
+def _assign_run(run, assigner: _Assigner, chunk: int, bar=None) -> np.ndarray:
+    out = np.empty(run.shape[0], dtype=np.int32)
+    start = 0
+    for block in iter_chunks(run, chunk):
+        out[start:start + len(block)] = assigner(block)
+        start += len(block)
+        if bar is not None:
+            bar.update(len(block))
+    return out
+
+
+def _strided_frames(run, stride: int) -> np.ndarray:
+    """Frames 0, stride, 2*stride, ... of a run (a lazy run reads them in bounded blocks)."""
+    return np.asarray(run[::stride])
+
+
+class Microstates:
+    """Microstates by k-means clustering of frames.
+
+    Parameters
+    ----------
+    n_states : int
+        Number of clusters (microstates).
+    method : {"kmeans", "minibatch"}
+        ``"kmeans"``: Lloyd's k-means (scikit-learn ``KMeans``); ``"minibatch"``: mini-batch
+        k-means [2]_, faster on many frames. Both seed with k-means++ [1]_.
+    stride : int
+        Fit on every ``stride``-th frame of each run (the usual choice for long data: frames
+        close in time carry little new information). Labels are still given to every frame.
+    seed : int, optional
+        Random seed; same seed, same centers.
+    max_iter : int
+        Iteration limit of the clustering.
+    chunk_size : int, optional
+        Frames per chunk when reading and assigning (default about 16 MiB of float64 frames).
+    progress : bool
+        Show progress bars for reading and assignment.
+
+    Attributes
+    ----------
+    centers_ : ndarray (n_states, n_features)
+    labels_ : list of int32 ndarrays, one per fitted run (every frame, not only the strided ones)
+    counts_ : ndarray (n_states,), frames of the fitted runs in each state
+    inertia_ : float, sum of squared distances of the strided frames to their centers
+    n_iter_ : int
+    n_frames_fitted_ : int, strided frames the clustering saw
+    n_features_in_ : int
+    feature_names_in_ : tuple of str or None
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> x = np.concatenate([np.zeros((50, 1)), np.ones((50, 1))])
+    >>> micro = Microstates(2, seed=0).fit(x)
+    >>> sorted(np.bincount(micro.labels_[0]).tolist())
+    [50, 50]
+    """
+
+    def __init__(self, n_states, *, method="kmeans", stride=1, seed=None, max_iter=300,
+                 chunk_size=None, progress=False):
+        self.n_states = n_states
+        self.method = method
+        self.stride = stride
+        self.seed = seed
+        self.max_iter = max_iter
+        self.chunk_size = chunk_size
+        self.progress = progress
+
+    def _bar(self, total, desc):
+        if not self.progress:
+            return None
+        from tqdm.auto import tqdm
+        return tqdm(total=total, desc=desc, unit="frame")
+
+    def fit(self, trajs, y=None) -> "Microstates":
+        """Cluster every ``stride``-th frame and label all frames of ``trajs``.
+
+        Parameters
+        ----------
+        trajs : 2-D array, list of 2-D arrays, or a TrajectorySet (lazy runs are streamed)
+
+        Returns
+        -------
+        self
+        """
+        from ._checks import feature_names_of
+
+        k = check_int(self.n_states, "n_states", minimum=1)
+        if self.method not in ("kmeans", "minibatch"):
+            raise InputError(f"method must be 'kmeans' or 'minibatch', but got {self.method!r}")
+        stride = check_int(self.stride, "stride", minimum=1)
+        max_iter = check_int(self.max_iter, "max_iter", minimum=1)
+        seed = None if self.seed is None else check_int(self.seed, "seed", minimum=0)
+        runs = as_float_trajectories(trajs, "trajs")
+        d = runs[0].shape[1]
+        chunk = check_chunk_size(self.chunk_size, d)
+
+        bar = self._bar(sum(r.shape[0] for r in runs), "reading frames")
+        parts = []
+        for run in runs:
+            parts.append(_strided_frames(run, stride))
+            if bar is not None:
+                bar.update(run.shape[0])
+        if bar is not None:
+            bar.close()
+        sample = np.ascontiguousarray(np.concatenate(parts), dtype=np.float64)
+        del parts
+        if len(sample) < k:
+            total = sum(r.shape[0] for r in runs)
+            raise InputError(f"n_states={k} is more than the {len(sample)} frames available to "
+                             f"cluster ({total} frames, stride={stride}); lower n_states"
+                             f"{' or stride' if stride > 1 else ''}")
+
+        from sklearn.cluster import KMeans, MiniBatchKMeans
+        from sklearn.exceptions import ConvergenceWarning
+
+        if self.method == "kmeans":
+            model = KMeans(n_clusters=k, init="k-means++", n_init=1, max_iter=max_iter,
+                           random_state=seed)
+        else:
+            model = MiniBatchKMeans(n_clusters=k, init="k-means++", n_init=1,
+                                    max_iter=max_iter, batch_size=max(1024, 3 * k),
+                                    random_state=seed)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", ConvergenceWarning)
+            model.fit(sample)
+        for w in caught:
+            if issubclass(w.category, ConvergenceWarning):
+                n_distinct = len(np.unique(sample, axis=0))
+                if n_distinct < k:
+                    warnings.warn(f"Microstates: only {n_distinct} distinct frames for "
+                                  f"n_states={k}; some centers coincide and their states stay "
+                                  f"empty; lower n_states", DiagnosticWarning, stacklevel=2)
+                else:
+                    warnings.warn(f"Microstates: clustering did not converge in "
+                                  f"max_iter={max_iter} iterations; raise max_iter",
+                                  DiagnosticWarning, stacklevel=2)
+            else:
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+
+        self.centers_ = np.asarray(model.cluster_centers_, dtype=np.float64)
+        self.inertia_ = float(model.inertia_)
+        self.n_iter_ = int(model.n_iter_)
+        self.n_frames_fitted_ = int(len(sample))
+        self.n_features_in_ = d
+        self.feature_names_in_ = feature_names_of(trajs)
+        del sample
+        self.labels_ = self._assign_runs(runs, chunk)
+        self.counts_ = np.bincount(np.concatenate(self.labels_), minlength=k).astype(np.int64)
+        empty = np.flatnonzero(self.counts_ == 0)
+        if empty.size:
+            shown = ", ".join(map(str, empty[:10])) + (" ..." if empty.size > 10 else "")
+            warnings.warn(f"Microstates: {empty.size} of {k} states received no frame "
+                          f"(states {shown}); they will not appear in the label trajectories",
+                          DiagnosticWarning, stacklevel=2)
+        return self
+
+    def _assign_runs(self, runs, chunk) -> list[np.ndarray]:
+        assigner = _Assigner(self.centers_)
+        bar = self._bar(sum(r.shape[0] for r in runs), "assigning frames")
+        try:
+            return [_assign_run(run, assigner, chunk, bar) for run in runs]
+        finally:
+            if bar is not None:
+                bar.close()
+
+    def assign(self, trajs) -> list[np.ndarray]:
+        """Label every frame with the index of the nearest center.
+
+        Parameters
+        ----------
+        trajs : 2-D array, list of 2-D arrays, or a TrajectorySet (streamed in chunks)
+
+        Returns
+        -------
+        list of int32 ndarrays
+            One label array per run (a list of one for a single array).
+        """
+        if not hasattr(self, "centers_"):
+            raise InputError("this Microstates is not fitted yet: call fit(trajs) first")
+        runs = as_float_trajectories(trajs, "trajs")
+        d = runs[0].shape[1]
+        if d != self.n_features_in_:
+            raise InputError(f"trajs has {d} features, but the microstates were fitted on "
+                             f"{self.n_features_in_}; assign data with the same features")
+        return self._assign_runs(runs, check_chunk_size(self.chunk_size, d))
+
+    def fit_assign(self, trajs) -> list[np.ndarray]:
+        """``fit(trajs)`` and return ``labels_``."""
+        return self.fit(trajs).labels_
+
+    def __repr__(self) -> str:
+        opts = [repr(self.n_states)]
+        for name, default in (("method", "kmeans"), ("stride", 1), ("seed", None)):
+            if getattr(self, name) != default:
+                opts.append(f"{name}={getattr(self, name)!r}")
+        return f"Microstates({', '.join(opts)})"
