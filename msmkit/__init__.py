@@ -1,30 +1,64 @@
 """msmkit: Markov state models from molecular-dynamics trajectories.
 
-The public API is re-exported here; nothing is computed at import time.
+The public API is re-exported here; nothing is computed at import time, and optional
+dependencies (ipywidgets, dask, mdtraj, h5py) are imported only where they are used.
 """
 __version__ = "0.1.0"
 
+from . import demo
 from .counts import connected_sets, count_transitions, largest_connected_set
 from .errors import DiagnosticWarning, InputError, ModelFileError
 from .estimate import estimate_transition_matrix, log_likelihood
+from .io import LazyRun, TrajectorySet, iter_chunks, load_trajectories
+from .kinetics import (Pathway, ReactiveFlux, committor, mean_first_passage_time, mfpt_matrix, mfpt_to_set,
+                       reactive_flux)
+from .lagscan import LagScan, lag_scan, suggest_lag
+from .macro import (Macrostates, check_macrostate_gap, coarse_transition_matrix, find_macrostates,
+                    pcca_memberships, suggest_n_macrostates)
 from .model import MarkovModel, build_model
 from .modelfile import load_model, save_model
+from .reduce import TICA
 from .spectral import eigen_decomposition, implied_timescales, stationary_distribution
+from .states import Microstates, nearest_center
 
 __all__ = sorted([
     "DiagnosticWarning",
     "InputError",
+    "LagScan",
+    "LazyRun",
+    "Macrostates",
     "MarkovModel",
+    "Microstates",
     "ModelFileError",
+    "Pathway",
+    "ReactiveFlux",
+    "TICA",
+    "TrajectorySet",
     "build_model",
+    "check_macrostate_gap",
+    "coarse_transition_matrix",
+    "committor",
     "connected_sets",
     "count_transitions",
+    "demo",
     "eigen_decomposition",
     "estimate_transition_matrix",
+    "find_macrostates",
     "implied_timescales",
+    "iter_chunks",
+    "lag_scan",
     "largest_connected_set",
     "load_model",
+    "load_trajectories",
     "log_likelihood",
+    "mean_first_passage_time",
+    "mfpt_matrix",
+    "mfpt_to_set",
+    "nearest_center",
+    "pcca_memberships",
+    "reactive_flux",
     "save_model",
     "stationary_distribution",
+    "suggest_lag",
+    "suggest_n_macrostates",
 ])

@@ -90,10 +90,28 @@ def count_transitions(labels, lag, *, n_states=None, sliding=True) -> sp.csr_mat
 
 
 def _count_flat(runs, lag, n_states, sliding) -> np.ndarray:
-    """Counts of all runs as one flat vector of length n_states**2 (dense bincount)."""
-    codes = [_pair_codes(r, lag, n_states, sliding) for r in runs]
-    codes = codes[0] if len(codes) == 1 else np.concatenate(codes)
-    return np.bincount(codes, minlength=n_states * n_states)
+    """Counts of all runs as one flat vector of length n_states**2 (dense bincount).
+
+    The pair codes of all runs are written into one preallocated buffer (two in-place passes per
+    run, no temporaries, no concatenation) and counted by a single bincount.
+    """
+    step = 1 if sliding else lag
+    sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
+    buf = np.empty(sum(sizes), dtype=np.intp)
+    filled = 0
+    for run, m in zip(runs, sizes):
+        if m == 0:
+            continue
+        if run.min() < 0:
+            codes = _pair_codes(run, lag, n_states, sliding)
+            buf[filled:filled + codes.size] = codes
+            filled += codes.size
+            continue
+        view = buf[filled:filled + m]
+        np.multiply(run[:-lag:step], n_states, out=view, casting="unsafe")
+        np.add(view, run[lag::step], out=view, casting="unsafe")
+        filled += m
+    return np.bincount(buf[:filled], minlength=n_states * n_states)
 
 
 def _flat_to_csr(flat: np.ndarray, n_states: int) -> sp.csr_matrix:

@@ -49,9 +49,14 @@ def _as_counts(counts) -> sp.csr_matrix:
     if sp.issparse(counts):
         C = sp.csr_matrix(counts, dtype=np.float64)
     else:
-        arr = np.asarray(counts)
+        try:
+            arr = np.asarray(counts)
+        except ValueError:  # ragged nested lists
+            raise InputError("counts must be a square matrix, but the rows have different lengths") from None
         if arr.dtype.kind not in "iuf":
             raise InputError(f"counts must be a numeric matrix, but has dtype {arr.dtype}")
+        if arr.ndim != 2:
+            raise InputError(f"counts must be a square matrix, but has shape {arr.shape}")
         C = sp.csr_matrix(arr.astype(np.float64))
     if C.ndim != 2 or C.shape[0] != C.shape[1]:
         raise InputError(f"counts must be a square matrix, but has shape {C.shape}")
@@ -228,7 +233,7 @@ def _reversible_mle(C, row, *, tol, max_iter, accelerate, initial):
 def _newton_step(S, pi, ll, residual, jac, anchor):
     """One Newton step on the stationarity equations in log pi, with a likelihood line search.
 
-    Returns (new pi, its log-likelihood), or (None, None) when no step length improves the
+    Returns (new pi, the log-likelihood there), or (None, None) when no step length improves the
     likelihood (the caller then takes a plain fixed-point step).
     """
     n = S.n

@@ -103,7 +103,7 @@ class LagScan:
         return df
 
 
-def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_timescales: int = 5,
+def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: int = 5,
              reversible: bool = True, n_samples: int = 0, seed=None, confidence: float = 0.95,
              sliding: bool = True, n_states: int | None = None, n_slow: int = 2, rtol: float = 0.05,
              progress: bool = False) -> LagScan:
@@ -118,7 +118,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_timescales:
     dt : float
         Physical time between frames, in ``unit``.
     unit : str
-    n_timescales : int, default 5
+    n_processes : int, default 5
         How many of the slowest processes to follow.
     reversible : bool, default True
     n_samples : int, default 0
@@ -154,7 +154,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_timescales:
     runs = as_label_trajectories(labels)
     dt, unit = check_dt(dt), check_unit(unit)
     lags = _check_lags(lags, runs)
-    n_timescales = check_int(n_timescales, "n_timescales", minimum=1)
+    n_processes = check_int(n_processes, "n_processes", minimum=1)
     n_samples = check_int(n_samples, "n_samples", minimum=0)
     n_slow = check_int(n_slow, "n_slow", minimum=1)
     confidence = check_probability(confidence, "confidence")
@@ -172,8 +172,8 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_timescales:
                         for _ in range(n_samples)]) if n_samples else np.zeros((0, n_units))
 
     L = len(lags)
-    ts = np.full((L, n_timescales), np.nan)
-    samples = np.full((L, n_samples, n_timescales), np.nan)
+    ts = np.full((L, n_processes), np.nan)
+    samples = np.full((L, n_samples, n_processes), np.nan)
     models = {}
     metadata = {"labels_sha256": fingerprint(runs), "frames_per_run": [int(r.size) for r in runs],
                 "package_version": _version()}
@@ -188,7 +188,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_timescales:
             model = model_from_counts(full, lag, dt=dt, unit=unit, reversible=reversible, metadata=meta,
                                       warn=False)
             models[int(lag)] = model
-            got = model.timescales(n_timescales)
+            got = model.timescales(n_processes)
             ts[a, :got.size] = got
             bar.update(1)
             if n_samples:
@@ -196,7 +196,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_timescales:
                 initial[model.states] = model.stationary_distribution
                 sampled = sp.csr_matrix(weights) @ rows  # (n_samples, n*n): all samples in one product
                 for b in range(n_samples):
-                    got = _sample_timescales(sampled.getrow(b), n, lag, dt, reversible, initial, n_timescales)
+                    got = _sample_timescales(sampled.getrow(b), n, lag, dt, reversible, initial, n_processes)
                     samples[a, b, :got.size] = got
                     bar.update(1)
     finally:
@@ -268,7 +268,7 @@ def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow:
 
     A lag qualifies when (1) the slowest timescale exceeds the lag time there, and (2) at every
     larger scanned lag where it is still resolved, each of the ``n_slow`` slowest timescales
-    resolved at the candidate lag agrees with its value at the candidate: the bootstrap
+    resolved at the candidate lag agrees with the value at the candidate: the bootstrap
     intervals overlap, or the values differ by at most ``rtol`` relatively. At least one larger
     lag must confirm it.
 

@@ -177,6 +177,63 @@ class MarkovModel:
             table["transitions_out"] = np.asarray(self.count_matrix.sum(axis=1)).ravel().astype(np.int64)
         return pd.DataFrame(table)
 
+    # ----------------------------------------------------------------- macrostates and kinetics
+    def macrostates(self, n_sets: int, *, optimize: bool = True, population_samples=None):
+        """PCCA+ macrostates (Deuflhard & Weber 2005; Roeblitz & Weber 2013).
+
+        Returns a :class:`~msmkit.macro.Macrostates` with memberships (rows sum to 1),
+        crisp assignments by original label, populations and the coarse transition matrix.
+        """
+        from .macro import find_macrostates
+        n_sets = check_int(n_sets, "n_sets", minimum=1, maximum=self.n_states)
+        return find_macrostates(self.transition_matrix, self.stationary_distribution, n_sets,
+                                labels=self.states, time_per_step=self.lag_time, unit=self.unit,
+                                reversible=self.reversible, optimize=optimize,
+                                population_samples=population_samples)
+
+    def suggest_macrostates(self, max_sets: int = 10):
+        """A number of macrostates from the largest spectral gap, with the reason in words:
+        ``(n, reason)``."""
+        from .macro import suggest_n_macrostates
+        max_sets = check_int(max_sets, "max_sets", minimum=1)
+        k = min(max_sets + 1, self.n_states)
+        return suggest_n_macrostates(self.eigenvalues(k), max_sets=min(max_sets, self.n_states),
+                                     time_per_step=self.lag_time, unit=self.unit)
+
+    def mfpt(self, source, target) -> float:
+        """Mean first-passage time from ``source`` to ``target`` (lists of original labels), in
+        :attr:`unit`; over several sources averaged with the stationary weights inside the set
+        (Kemeny & Snell 1960)."""
+        from .kinetics import mean_first_passage_time
+        return mean_first_passage_time(self.transition_matrix, self.stationary_distribution,
+                                       self.index_of(source, "source"), self.index_of(target, "target"),
+                                       labels=self.states, time_per_step=self.lag_time)
+
+    def mfpt_matrix(self, sets):
+        """Mean first-passage times between disjoint sets of labels (e.g. macrostates), as a
+        (k, k) ndarray in :attr:`unit`; entry (a, b) is the time from set a to set b."""
+        from .kinetics import mfpt_matrix
+        return mfpt_matrix(self.transition_matrix, self.stationary_distribution,
+                           [self.index_of(s, f"sets[{i}]") for i, s in enumerate(sets)],
+                           labels=self.states, time_per_step=self.lag_time)
+
+    def committor(self, source, target, *, backward: bool = False) -> np.ndarray:
+        """Committor per kept state (in the order of :attr:`states`): forward, the probability to
+        reach ``target`` before ``source``; backward, to have come from ``source`` last."""
+        from .kinetics import committor
+        return committor(self.transition_matrix, self.index_of(source, "source"),
+                         self.index_of(target, "target"), backward=backward,
+                         pi=self.stationary_distribution, labels=self.states)
+
+    def reactive_flux(self, source, target):
+        """Transition path theory from ``source`` to ``target`` (E & Vanden-Eijnden 2006; Metzner,
+        Schuette & Vanden-Eijnden 2009): gross and net flux, total flux, rate per :attr:`unit`,
+        and the pathway decomposition (``.pathways()``)."""
+        from .kinetics import reactive_flux
+        return reactive_flux(self.transition_matrix, self.stationary_distribution,
+                             self.index_of(source, "source"), self.index_of(target, "target"),
+                             labels=self.states, time_per_step=self.lag_time, unit=self.unit)
+
     # ----------------------------------------------------------------- persistence
     def save(self, path, *, overwrite: bool = True, **extra_arrays):
         """Write the model to a ``.npz`` file (atomic; plain arrays only).
@@ -191,7 +248,7 @@ class MarkovModel:
     @classmethod
     def from_transition_matrix(cls, transition_matrix, *, dt: float = 1.0, unit: str = "step",
                                states=None, reversible: bool | None = None) -> "MarkovModel":
-        """A model from a transition matrix you already have; its one step (lag 1) spans ``dt``.
+        """A model from a transition matrix you already have; one step (lag 1) spans ``dt``.
 
         Parameters
         ----------
@@ -219,6 +276,8 @@ class MarkovModel:
                               "created": _now()})
         model.diagnostics = chain_diagnostics(model.eigenvalues(), lag=1, dt=dt, unit=unit,
                                               n_reported=min(REPORTED, n - 1))
+        for line in model.diagnostics:
+            warnings.warn(line, DiagnosticWarning, stacklevel=2)
         return model
 
 

@@ -17,7 +17,7 @@ dt                     float, physical time per frame
 unit                   str
 reversible             bool
 metadata               JSON string (parameters, version, creation time, fingerprint, ...)
-optional: centers (k, d), tica_mean (d,), tica_components (d, m), memberships (n, m)
+optional: centers (k, d), tica_mean (f,), tica_components (d, f), memberships (n, m)
 """
 from __future__ import annotations
 
@@ -25,6 +25,7 @@ import json
 import os
 import tempfile
 import zipfile
+import zlib
 from pathlib import Path
 
 import numpy as np
@@ -95,12 +96,20 @@ def save_model(model, path, *, overwrite: bool = True, **extra_arrays) -> Path:
             np.savez_compressed(fh, **arrays)
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, _default_mode())
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)
         raise
     return path
+
+
+def _default_mode() -> int:
+    """Permissions an ordinary new file would get (mkstemp makes them private)."""
+    umask = os.umask(0)
+    os.umask(umask)
+    return 0o666 & ~umask
 
 
 def _file_metadata(model) -> dict:
@@ -142,17 +151,24 @@ def load_model(path):
     if not path.is_file():
         raise ModelFileError(f"{path}: no such file")
     try:
-        with np.load(path, allow_pickle=False) as npz:
+        loaded = np.load(path, allow_pickle=False)
+        if not hasattr(loaded, "files"):  # a plain .npy array, not an archive of named arrays
+            raise ModelFileError(f"{path}: not a model file: it holds a single array, not the named arrays "
+                                 f"of an .npz model file")
+        with loaded as npz:
             data = {}
             for key in npz.files:
                 try:
                     data[key] = npz[key]
                 except ValueError as exc:  # object arrays refuse to load without pickle
+                    if "pickle" not in str(exc):
+                        raise
                     raise ModelFileError(f"{path}: key '{key}' holds pickled Python objects, which are never "
                                          f"loaded ({exc})") from None
     except ModelFileError:
         raise
-    except (zipfile.BadZipFile, EOFError, OSError, ValueError) as exc:
+    except (zipfile.BadZipFile, EOFError, OSError, ValueError, zlib.error) as exc:
+        # zlib.error: damaged compressed data inside an otherwise well-formed archive
         raise ModelFileError(f"{path}: not a readable model file (truncated or not .npz): {exc}") from None
 
     missing = [k for k in REQUIRED_KEYS if k not in data]
@@ -216,8 +232,9 @@ def load_model(path):
         if M.ndim != 2 or M.shape[0] != n or M.min() < -1e-12 or np.max(np.abs(M.sum(axis=1) - 1)) > 1e-6:
             raise ModelFileError(f"{path}: memberships must be ({n}, m), non-negative, rows summing to 1")
     if "tica_mean" in extras and "tica_components" in extras:
-        if extras["tica_components"].ndim != 2 or extras["tica_components"].shape[0] != extras["tica_mean"].shape[0]:
-            raise ModelFileError(f"{path}: tica_components rows must match tica_mean's length")
+        if extras["tica_components"].ndim != 2 or extras["tica_components"].shape[1] != extras["tica_mean"].shape[0]:
+            raise ModelFileError(f"{path}: tica_components must be (dim, n_features) with n_features = "
+                                 f"len(tica_mean)")
 
     model = MarkovModel(T, pi, states.astype(np.int64), lag, dt, unit, reversible, count_matrix=counts,
                         kept_fraction=float(metadata.get("kept_fraction", 1.0)),

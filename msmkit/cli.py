@@ -1,0 +1,337 @@
+"""The ``msmkit`` command: the same engine as the library, for batch work.
+
+Sub-commands::
+
+    msmkit demo  --out DIR                      the whole job on the demo scenario
+    msmkit build FILES... --lag N --states K -o model.npz
+    msmkit scan  FILES... --lags 1,2,5,10 --states K -o DIR
+    msmkit info  model.npz
+
+Exit codes: 0 success, 1 bad input or a failed computation (one line on stderr, no traceback,
+no output file written), 2 a malformed command line.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import tempfile
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+from .errors import DiagnosticWarning, InputError, ModelFileError
+from .modelfile import _default_mode
+
+__all__ = ["main"]
+
+EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
+
+
+# ----------------------------------------------------------------------------- pipeline
+def _microstates(trajs, *, n_states, tica_lag, tica_dim, stride, seed, progress):
+    """Trajectories -> (label trajectories, fitted TICA or None, fitted Microstates)."""
+    from .reduce import TICA
+    from .states import Microstates
+    tica = None
+    data = trajs
+    if tica_dim:
+        tica = TICA(tica_lag, dim=tica_dim, progress=progress).fit(trajs)
+        data = tica.transform(trajs)
+    micro = Microstates(n_states, stride=stride, seed=seed, progress=progress).fit(data)
+    return micro.labels_, tica, micro
+
+
+def _extras(tica, micro) -> dict:
+    out = {"centers": micro.centers_}
+    if tica is not None:
+        out["tica_mean"] = tica.mean_
+        out["tica_components"] = tica.components_
+    return out
+
+
+def _parse_lags(text: str) -> list[int]:
+    try:
+        lags = [int(x) for x in text.replace(" ", "").split(",") if x]
+    except ValueError:
+        raise InputError(f"--lags must be comma-separated whole numbers of frames, e.g. 1,2,5,10; got {text!r}") from None
+    if not lags:
+        raise InputError("--lags is empty; give e.g. --lags 1,2,5,10")
+    return lags
+
+
+def summary_text(model, scan=None) -> str:
+    """A short plain-text report of a model (and of the scan that chose it)."""
+    lines = [
+        "msmkit model summary",
+        f"  states kept:       {model.n_states}"
+        + (f" ({len(model.dropped_states)} dropped)" if len(model.dropped_states) else ""),
+        f"  lag:               {model.lag} frames = {model.lag_time:g} {model.unit}",
+        f"  frame time:        {model.dt:g} {model.unit}",
+        f"  estimator:         {'reversible' if model.reversible else 'non-reversible'} maximum likelihood",
+        f"  counts kept:       {100 * model.kept_fraction:.4g}% of transitions",
+    ]
+    ts = model.timescales(min(5, model.n_states - 1))
+    lines.append(f"  slowest implied timescales [{model.unit}]: " + ", ".join(f"{t:.4g}" for t in ts))
+    pops = model.populations().nlargest(5, "population")
+    lines.append("  most populated states (label: population):")
+    lines += [f"    {int(r.state)}: {r.population:.4f}" for r in pops.itertuples()]
+    if scan is not None:
+        lines.append(f"  suggested lag:     {scan.suggested_lag}")
+        lines.append(f"  reason:            {scan.reason}")
+        lines += [f"  note: {n}" for n in scan.notes]
+    if model.diagnostics:
+        lines.append("  diagnostics:")
+        lines += [f"    - {d}" for d in model.diagnostics]
+    else:
+        lines.append("  diagnostics:       none")
+    lines.append("  caution: a model is only as good as the sampling behind it; validate the model "
+                 "(Chapman-Kolmogorov test) before trusting the kinetics.")
+    return "\n".join(lines) + "\n"
+
+
+# ----------------------------------------------------------------------------- output
+class _Outputs:
+    """Files written to a folder only once everything has been computed, each atomically."""
+
+    def __init__(self, folder):
+        self.folder = Path(folder)
+        self.files: dict[str, bytes] = {}
+
+    def add_text(self, name, text):
+        self.files[name] = text.encode()
+
+    def add_figure(self, name, fig):
+        from .plots import figure_png
+        self.files[name] = figure_png(fig, dpi=120)
+
+    def write(self) -> list[Path]:
+        if self.folder.exists() and not self.folder.is_dir():
+            raise InputError(f"--out {self.folder} exists and is not a folder")
+        self.folder.mkdir(parents=True, exist_ok=True)
+        written = []
+        for name, data in self.files.items():
+            written.append(_atomic_write(self.folder / name, data))
+        return written
+
+
+def _atomic_write(path: Path, data: bytes) -> Path:
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+        os.chmod(tmp, _default_mode())
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+    return path
+
+
+# ----------------------------------------------------------------------------- commands
+def _scan_and_choose(labels, args, lags, dt, unit):
+    from .lagscan import lag_scan
+    scan = lag_scan(labels, lags, dt=dt, unit=unit, n_processes=args.timescales, n_samples=args.samples,
+                    seed=args.seed, progress=not args.quiet)
+    return scan
+
+
+def _write_scan_outputs(out: _Outputs, scan, chosen):
+    from .plots import plot_populations, plot_timescales
+    model = scan.model(chosen)
+    out.add_figure("implied_timescales.png", plot_timescales(scan, selected_lag=chosen))
+    table = scan.table()
+    table.insert(2, "unit", scan.unit)
+    out.add_text("implied_timescales.csv", table.to_csv(index=False))
+    out.add_figure("populations.png", plot_populations(model))
+    out.add_text("populations.csv", model.populations().to_csv(index=False))
+    out.add_text("summary.txt", summary_text(model, scan))
+    return model
+
+
+def cmd_demo(args) -> int:
+    from . import demo
+    from .modelfile import save_model
+    trajs = demo.trajectories(seed=args.seed)
+    _say(args, f"demo scenario: {len(trajs)} runs, {trajs.total_frames} frames of {demo.DT:g} {demo.UNIT}, "
+               f"features {', '.join(demo.FEATURE_NAMES)}")
+    labels, tica, micro = _microstates(trajs, n_states=args.states, tica_lag=args.tica_lag, tica_dim=args.tica_dim,
+                                       stride=args.stride, seed=args.seed, progress=not args.quiet)
+    lags = _parse_lags(args.lags)
+    scan = _scan_and_choose(labels, args, lags, demo.DT, demo.UNIT)
+    chosen = scan.suggested_lag if scan.suggested_lag is not None else int(scan.lags[len(scan.lags) // 2])
+    out = _Outputs(args.out)
+    model = _write_scan_outputs(out, scan, chosen)
+    with tempfile.TemporaryDirectory() as tmp:
+        path = save_model(model, Path(tmp) / "model.npz", **_extras(tica, micro))
+        out.files["model.npz"] = path.read_bytes()
+    for p in out.write():
+        _say(args, f"wrote {p}")
+    _say(args, f"lag {chosen} frames ({chosen * demo.DT:g} {demo.UNIT}): {scan.reason}")
+    return EXIT_OK
+
+
+def _load(args):
+    from .io import load_trajectories
+    trajs = load_trajectories(args.files, progress=not args.quiet)
+    dt = args.dt if args.dt is not None else (getattr(trajs, "dt", None) or 1.0)
+    unit = args.unit if args.unit is not None else (getattr(trajs, "unit", None) or "step")
+    return trajs, dt, unit
+
+
+def cmd_build(args) -> int:
+    from .model import build_model
+    out = Path(args.output)
+    if out.exists() and not args.force:
+        raise InputError(f"-o {out} exists; choose another name or pass --force to overwrite")
+    trajs, dt, unit = _load(args)
+    labels, tica, micro = _microstates(trajs, n_states=args.states, tica_lag=args.tica_lag or args.lag,
+                                       tica_dim=args.tica_dim, stride=args.stride, seed=args.seed,
+                                       progress=not args.quiet)
+    model = build_model(labels, args.lag, dt=dt, unit=unit, reversible=not args.non_reversible)
+    path = model.save(out, **_extras(tica, micro))
+    _say(args, summary_text(model).rstrip())
+    _say(args, f"wrote {path}")
+    return EXIT_OK
+
+
+def cmd_scan(args) -> int:
+    trajs, dt, unit = _load(args)
+    lags = _parse_lags(args.lags)
+    labels, tica, micro = _microstates(trajs, n_states=args.states, tica_lag=args.tica_lag or min(lags),
+                                       tica_dim=args.tica_dim, stride=args.stride, seed=args.seed,
+                                       progress=not args.quiet)
+    scan = _scan_and_choose(labels, args, lags, dt, unit)
+    chosen = scan.suggested_lag if scan.suggested_lag is not None else int(scan.lags[0])
+    out = _Outputs(args.output)
+    _write_scan_outputs(out, scan, chosen)
+    for p in out.write():
+        _say(args, f"wrote {p}")
+    _say(args, f"suggested lag: {scan.suggested_lag} frames. {scan.reason}")
+    return EXIT_OK
+
+
+def cmd_info(args) -> int:
+    from .modelfile import load_model
+    model = load_model(args.model)
+    print(summary_text(model), end="")
+    meta = model.metadata
+    if "created" in meta:
+        print(f"  created:           {meta['created']} (msmkit {meta.get('package_version', '?')})")
+    if "labels_sha256" in meta:
+        print(f"  labels SHA-256:    {meta['labels_sha256']}")
+    if model.extras:
+        print("  stored arrays:     " + ", ".join(f"{k} {v.shape}" for k, v in model.extras.items()))
+    return EXIT_OK
+
+
+# ----------------------------------------------------------------------------- parser
+def _positive_float(text):
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not np.isfinite(value) or value <= 0:
+        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
+    return value
+
+
+def _positive_int(text):
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="msmkit", description="Markov state models from simulation trajectories.")
+    p.add_argument("--version", action="version", version=f"msmkit {_version()}")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def common(sp, *, files=True):
+        if files:
+            sp.add_argument("files", nargs="+", metavar="FILES",
+                            help="trajectory files or glob patterns (.npy, .npz, .csv, .tsv, .h5; MD formats "
+                                 "with msmkit[md]); one run per file (per array in .npz/.h5)")
+            sp.add_argument("--dt", type=_positive_float, help="time between frames (default 1)")
+            sp.add_argument("--unit", help="time unit of --dt, e.g. ns (default: step)")
+        sp.add_argument("--states", type=_positive_int, default=100, help="number of k-means microstates (default 100)")
+        sp.add_argument("--tica-dim", type=int, default=None,
+                        help="reduce to this many TICA coordinates before clustering (default: cluster the features)")
+        sp.add_argument("--tica-lag", type=_positive_int, default=None, help="TICA lag in frames")
+        sp.add_argument("--stride", type=_positive_int, default=1, help="fit k-means on every STRIDE-th frame")
+        sp.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+        sp.add_argument("-q", "--quiet", action="store_true", help="no progress bars or messages")
+
+    def scanning(sp, default_lags):
+        sp.add_argument("--lags", default=default_lags, help=f"comma-separated lags in frames (default {default_lags})")
+        sp.add_argument("--samples", type=int, default=20, help="bootstrap samples per lag (default 20; 0 = none)")
+        sp.add_argument("--timescales", type=_positive_int, default=4, help="processes to follow (default 4)")
+
+    d = sub.add_parser("demo", help="run the whole job headless on the demo scenario",
+                       description="Demo scenario -> TICA -> microstates -> lag scan -> chosen model; writes "
+                                   "model.npz, implied_timescales.png/.csv, populations.png/.csv, summary.txt.")
+    d.add_argument("--out", required=True, help="output folder (created if missing)")
+    common(d, files=False)
+    d.set_defaults(states=60, tica_dim=2, tica_lag=5, stride=2)
+    scanning(d, "1,2,5,10,20,40")
+    d.set_defaults(func=cmd_demo)
+
+    b = sub.add_parser("build", help="build one model at a given lag",
+                       description="Trajectory files -> (TICA) -> microstates -> model at --lag -> model file.")
+    common(b)
+    b.add_argument("--lag", type=_positive_int, required=True, help="lag time in frames")
+    b.add_argument("--non-reversible", action="store_true", help="do not enforce detailed balance")
+    b.add_argument("-o", "--output", required=True, help="model file to write (.npz)")
+    b.add_argument("--force", action="store_true", help="overwrite an existing model file")
+    b.set_defaults(func=cmd_build)
+
+    s = sub.add_parser("scan", help="implied timescales across lags, and a suggested lag",
+                       description="Trajectory files -> (TICA) -> microstates -> lag scan; writes the plot, tables "
+                                   "and a summary to the output folder.")
+    common(s)
+    scanning(s, "1,2,5,10,20")
+    s.add_argument("-o", "--output", required=True, help="output folder")
+    s.set_defaults(func=cmd_scan)
+
+    i = sub.add_parser("info", help="describe a saved model file", description="Check and describe a model file.")
+    i.add_argument("model", help="model file (.npz)")
+    i.set_defaults(func=cmd_info)
+    return p
+
+
+def _version():
+    from . import __version__
+    return __version__
+
+
+def _say(args, text):
+    if not getattr(args, "quiet", False):
+        print(text)
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", DiagnosticWarning)  # reported in the summary instead
+            return args.func(args)
+    except (InputError, ModelFileError) as exc:
+        print(f"msmkit {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_FAILED
+    except ImportError as exc:
+        print(f"msmkit {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_FAILED
+    except KeyboardInterrupt:
+        print(f"msmkit {args.command}: interrupted; nothing was written", file=sys.stderr)
+        return EXIT_FAILED
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
