@@ -12,7 +12,7 @@ import msmkit as mk
 from msmkit.estimate import estimate_transition_matrix
 
 
-def metastable_counts(n=1000, seed=0, height=4.0):
+def metastable_counts(n=1000, seed=0, height=2.5):
     """Counts of a random walk between neighbouring cells of a 2-D grid (about n cells) on a
     landscape with two wells separated by a barrier of ``height`` kT, sampled with Poisson noise."""
     rng = np.random.default_rng(seed)
@@ -41,7 +41,7 @@ def metastable_counts(n=1000, seed=0, height=4.0):
 def main():
     ap = argparse.ArgumentParser(description=__doc__)
     ap.add_argument("--states", type=int, default=1000)
-    ap.add_argument("--tol", type=float, default=1e-10)
+    ap.add_argument("--tol", type=float, default=1e-8)
     a = ap.parse_args()
     C = metastable_counts(a.states)
     t = time.perf_counter()
