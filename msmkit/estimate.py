@@ -256,9 +256,10 @@ def _newton_step(S, pi, ll, residual, jac, anchor):
         trial = y + t * step
         trial = np.exp(trial - trial.max())
         trial /= trial.sum()
-        if np.all(trial > 0):
-            ll_trial = _loglik_from_pi(S, trial)
-            if ll_trial >= ll - 1e-13 * abs(ll):
+        if np.all(trial > 1e-300):
+            with np.errstate(all="ignore"):  # an overlong step may overflow; it is then rejected
+                ll_trial = _loglik_from_pi(S, trial)
+            if np.isfinite(ll_trial) and ll_trial >= ll - 1e-13 * abs(ll):
                 return trial, ll_trial
         t *= 0.5
     return None, None

@@ -1,0 +1,265 @@
+"""Step 2 of the workbench: scan lag times and choose one."""
+from __future__ import annotations
+
+import numpy as np
+import traitlets
+
+from .._checks import check_dt, check_int, check_unit
+from ..errors import InputError
+from ..lagscan import lag_scan
+from ..plots import plot_timescales
+from . import _render
+from ._base import DESCRIPTION_WIDTH, Step, button, field, parse_int_list, set_value, widgets
+from ._render import frames
+
+__all__ = ["LagPanel", "TimescaleView", "default_lags"]
+
+#: always said next to a chosen model
+SAMPLING_CAUTION = ("A Markov model is only as good as the sampling behind it: the slow processes must be "
+                    "crossed many times in the runs for these numbers to mean anything.")
+
+
+def default_lags(run_lengths) -> list[int]:
+    """Lags 1, 2, 5, 10, 20, 50, ... up to a twentieth of the longest run (at least lag 1)."""
+    limit = max(1, int(max(run_lengths)) // 20)
+    lags, decade = [], 1
+    while True:
+        for m in (1, 2, 5):
+            if m * decade > limit:
+                return lags or [1]
+            lags.append(m * decade)
+        decade *= 10
+
+
+class TimescaleView:
+    """The implied-timescale figure of one scan with a movable chosen-lag marker.
+
+    The figure comes from :func:`msmkit.plots.plot_timescales`; it is drawn in full once per
+    scan, after which moving the chosen lag redraws only the marker line and the legend entry
+    (see :class:`~msmkit.widgets._render.MovingMarkerFigure`). If the figure does not have the
+    expected marker, every lag falls back to a full redraw. PNGs are cached per lag.
+    """
+
+    MARKER = "chosen lag"
+
+    def __init__(self, scan, lag):
+        self.scan = scan
+        self._cache = {}
+        fig = plot_timescales(scan, selected_lag=lag)
+        ax = fig.axes[0]
+        self._line = next((a for a in ax.get_lines() if str(a.get_label()).startswith(self.MARKER)), None)
+        legend = ax.get_legend()
+        self._text = None if legend is None else next(
+            (t for t in legend.get_texts() if t.get_text().startswith(self.MARKER)), None)
+        self.fast = self._line is not None and self._text is not None
+        self._figure = _render.MovingMarkerFigure(fig, [self._line, self._text]) if self.fast else None
+
+    def png(self, lag: int) -> bytes:
+        lag = int(lag)
+        if lag not in self._cache:
+            if self.fast:
+                x = lag * self.scan.dt
+                self._line.set_xdata([x, x])
+                self._text.set_text(f"{self.MARKER} ({x:g} {self.scan.unit})")
+                self._cache[lag] = self._figure.png()
+            else:
+                from ..plots import figure_png
+                self._cache[lag] = figure_png(plot_timescales(self.scan, selected_lag=lag), dpi=_render.DPI)
+        return self._cache[lag]
+
+
+class LagPanel(Step):
+    """Scan lag times, read the implied timescales, and choose the model's lag.
+
+    Parameters
+    ----------
+    labels : list of int arrays, optional
+        Microstate label trajectories (can be given later with :meth:`set_labels`).
+    dt : float
+        Time between frames, in ``unit``.
+    unit : str
+    lags : sequence of int, optional
+        Lags to scan, in frames (default 1, 2, 5, ... up to a twentieth of the longest run).
+    n_processes : int, default 4
+        How many of the slowest timescales to follow.
+    n_samples : int, default 20
+        Bootstrap samples for the uncertainty bands (0: none).
+    seed : int, default 0
+    progress : bool, default True
+
+    Attributes
+    ----------
+    scan_result : LagScan or None (observable trait)
+    model : MarkovModel or None
+        The model at the chosen lag (observable trait).
+    """
+
+    scan_result = traitlets.Any(None)
+    model = traitlets.Any(None)
+
+    def __init__(self, labels=None, *, dt: float = 1.0, unit: str = "step", lags=None, n_processes: int = 4,
+                 n_samples: int = 20, seed: int = 0, progress: bool = True):
+        super().__init__(progress=progress, css_class="msmkit-lags")
+        self.dt, self.unit = check_dt(dt), check_unit(unit)
+        self.labels = None
+        self._view = None
+        self._syncing = False
+
+        self.lags = field(widgets.Text, "", "lags (frames)", "Lag times to scan, in frames, e.g. 1, 2, 5, 10",
+                          width="420px")
+        self.lags.add_class("msmkit-lags-field")
+        if lags is not None:
+            self.lags.value = ", ".join(str(x) for x in parse_int_list(lags, "lags"))
+        self.n_processes = field(widgets.IntText, int(n_processes), "timescales shown",
+                                 "How many of the slowest processes to follow")
+        self.n_samples = field(widgets.IntText, int(n_samples), "bootstrap samples",
+                               "Resampled data sets for the uncertainty bands (0: no bands)")
+        self.seed = field(widgets.IntText, int(seed), "seed", "Seed of the resampling")
+        self.scan_button = button("Scan lags", "msmkit-scan-button", "Estimate a model at every lag", icon="line-chart")
+        self._on_click(self.scan_button, self.scan)
+
+        self.plot = widgets.Output(layout=widgets.Layout(min_height="60px", overflow="auto"))
+        self.plot.add_class("msmkit-timescale-plot")
+        self.plot.add_class("msmkit-plot")
+        self.suggestion = widgets.HTML()
+        self.suggestion.add_class("msmkit-suggestion")
+        self.slider = widgets.SelectionSlider(options=[("scan first", 0)], value=0, description="chosen lag",
+                                              disabled=True, continuous_update=False,
+                                              style={"description_width": DESCRIPTION_WIDTH},
+                                              layout=widgets.Layout(width="620px"))
+        self.slider.add_class("msmkit-lag-slider")
+        self.slider.observe(self._slider_moved, names="value")
+        self.diagnostics = widgets.HTML()
+        self.diagnostics.add_class("msmkit-diagnostics")
+
+        intro = widgets.HTML(_render.message_html(
+            "Estimate a model at several lag times and watch the implied timescales: choose the "
+            "smallest lag from which they stay constant. Timescales below the line t = τ are "
+            "faster than the lag and cannot be resolved."))
+        settings = widgets.HBox([widgets.VBox([self.lags, self.n_processes]),
+                                 widgets.VBox([self.n_samples, self.seed])])
+        self.children = [intro, settings, widgets.HBox([self.scan_button, self.progress_bar]), self.details,
+                         self.status, self.plot, self.suggestion, self.slider, self.diagnostics]
+        if labels is not None:
+            self.set_labels(labels)
+
+    # -- inputs ------------------------------------------------------------------------------
+    def set_labels(self, labels):
+        """New microstate labels: forget the previous scan and model."""
+        self.labels = labels
+        if not self.lags.value.strip() and labels is not None:
+            self.lags.value = ", ".join(str(x) for x in default_lags([len(r) for r in _runs_of(labels)]))
+        self._view = None
+        self.scan_result = None
+        self.model = None
+        _render.clear(self.plot)
+        self.suggestion.value = ""
+        self.diagnostics.value = ""
+        self._set_slider([])
+        _render.show_message(self.status, "Microstates are ready: scan the lags." if labels is not None else "")
+
+    @property
+    def lag(self):
+        """The chosen lag in frames (None before a scan)."""
+        return None if self.model is None else int(self.model.lag)
+
+    # -- actions -----------------------------------------------------------------------------
+    def scan(self, lags=None, n_samples=None, *, n_processes=None, seed=None):
+        """Run the lag scan with the panel's settings; given arguments replace them first.
+
+        The suggested lag is chosen (or the smallest one when none is suggested).
+
+        Returns
+        -------
+        LagScan
+            Also in :attr:`scan_result`; the chosen model is in :attr:`model`.
+        """
+        with self._action("Scanning lags", total=3) as caught:
+            if lags is not None:
+                self.lags.value = ", ".join(str(x) for x in parse_int_list(lags, "lags"))
+            for name, value in (("n_samples", n_samples), ("n_processes", n_processes), ("seed", seed)):
+                if value is not None:
+                    set_value(getattr(self, name), check_int(value, name), name)
+            if self.labels is None:
+                raise InputError("there are no microstates yet: make them first (step 1, Cluster)")
+            wanted = parse_int_list(self.lags.value, "lags")
+            self._stage(1, 3, f"{len(wanted)} lags")
+            result = lag_scan(self.labels, wanted, dt=self.dt, unit=self.unit,
+                              n_processes=check_int(self.n_processes.value, "timescales shown", minimum=1),
+                              n_samples=self.n_samples.value, seed=self.seed.value, progress=self.progress)
+            self._stage(2, 3, "drawing")
+            lag = result.suggested_lag if result.suggested_lag is not None else int(result.lags[0])
+            view = TimescaleView(result, lag)
+        self._view = view
+        self.scan_result = result
+        self.suggestion.value = _suggestion_html(result)
+        self._set_slider(result.lags, lag)
+        self._show_lag(lag)
+        self._report(f"Scanned {len(result.lags)} lags"
+                     f"{f' with {result.n_samples} bootstrap samples' if result.n_samples else ''}. "
+                     f"Move the slider to choose the lag; populations are in step 3.", caught + list(result.notes))
+        return result
+
+    def select_lag(self, lag):
+        """Choose one of the scanned lags (frames); returns the model at that lag."""
+        with self._action("Choosing the lag"):
+            if self.scan_result is None:
+                raise InputError("no lags were scanned yet: scan first (Scan lags)")
+            lag = check_int(lag, "lag")
+            self.scan_result.model(lag)  # InputError for a lag that was not scanned
+        if self.slider.value != lag:
+            self.slider.value = lag  # the slider's observer shows it
+        else:
+            self._show_lag(lag)
+        _render.show_message(self.status, f"Lag {frames(lag)} chosen.", "ok")
+        return self.model
+
+    # -- views -------------------------------------------------------------------------------
+    def _set_slider(self, lags, value=None):
+        self._syncing = True
+        try:
+            if len(lags):
+                self.slider.options = [(f"{frames(x)} = {x * self.dt:g} {self.unit}", int(x)) for x in lags]
+                self.slider.value = int(value)
+                self.slider.disabled = False
+            else:
+                self.slider.options = [("scan first", 0)]
+                self.slider.disabled = True
+        finally:
+            self._syncing = False
+
+    def _slider_moved(self, change):
+        if not self._syncing and self.scan_result is not None:
+            self._show_lag(change["new"])
+
+    def _show_lag(self, lag):
+        model = self.scan_result.model(lag)
+        _render.show_png(self.plot, self._view.png(lag), alt=f"implied timescales, chosen lag {lag}")
+        self.diagnostics.value = _diagnostics_html(model, self.scan_result.timescales.shape[1])
+        self.model = model
+
+
+def _runs_of(labels):
+    return [labels] if isinstance(labels, np.ndarray) and labels.ndim == 1 else list(labels)
+
+
+def _suggestion_html(scan) -> str:
+    if scan.suggested_lag is not None:
+        head = f"Suggested lag: {frames(scan.suggested_lag)} ({scan.suggested_lag * scan.dt:g} {scan.unit})."
+        return _render.message_html([head, scan.reason], "info")
+    return _render.message_html(["No lag is suggested.", scan.reason], "warning")
+
+
+def _diagnostics_html(model, k) -> str:
+    ts = model.timescales(k)
+    lines = [f"Model at lag {frames(model.lag)} ({model.lag_time:g} {model.unit}): {model.n_states} states kept, "
+             f"{100 * model.kept_fraction:.3g}% of the transition counts.",
+             "Slowest implied timescales: " + (", ".join(f"{t:.4g}" for t in ts) + f" {model.unit}"
+                                               if ts.size else "none")]
+    if model.dropped_states.size:
+        shown = ", ".join(str(int(s)) for s in model.dropped_states[:12])
+        more = " ..." if model.dropped_states.size > 12 else ""
+        lines.append(f"Dropped (not in the largest connected set): states {shown}{more}.")
+    lines += list(model.diagnostics)
+    lines.append(SAMPLING_CAUTION)
+    return _render.message_html(lines, "warning" if model.diagnostics or model.dropped_states.size else "info")

@@ -1,0 +1,189 @@
+"""Step 1 of the workbench: from features to microstates."""
+from __future__ import annotations
+
+import numpy as np
+import traitlets
+
+from .._checks import as_float_trajectories, check_int, feature_names_of
+from ..errors import InputError
+from ..io import TrajectorySet, default_feature_names
+from ..reduce import TICA
+from ..states import Microstates
+from . import _render
+from ._base import DESCRIPTION_WIDTH, Step, button, field, set_value, widgets
+from ._figures import plot_state_map
+
+__all__ = ["StatesPanel"]
+
+METHODS = (("k-means", "kmeans"), ("mini-batch k-means", "minibatch"))
+
+
+class StatesPanel(Step):
+    """Choose features, optionally reduce them with TICA, and cluster frames into microstates.
+
+    Parameters
+    ----------
+    trajs : 2-D array, list of them, or a TrajectorySet
+        The runs (frames x features).
+    features : list of str, optional
+        Feature names to use (default all). Names come from a TrajectorySet or DataFrame;
+        otherwise they are ``x0, x1, ...``.
+    use_tica : bool, default True
+        Reduce the features with TICA before clustering.
+    tica_lag : int, default 10
+        TICA lag in frames.
+    tica_dim : int, default 2
+        TICA dimensions kept.
+    n_states : int, default 100
+        Number of microstates.
+    method : {"kmeans", "minibatch"}
+    stride : int, default 1
+        Cluster on every ``stride``-th frame (all frames are labelled).
+    seed : int, default 0
+    progress : bool, default True
+        Show detailed progress bars while computing.
+
+    Attributes
+    ----------
+    labels : list of int32 ndarray or None
+        Microstate label trajectories after clustering (observable trait).
+    microstates : Microstates or None
+    tica : TICA or None
+    coordinates : list of ndarray or None
+        The coordinates that were clustered (TICA output or the chosen features).
+    settings : dict or None
+        The settings the current microstates were made with (the fields may have changed since).
+    feature_names : tuple of str
+    n_frames : list of int
+        Frames per run.
+    """
+
+    labels = traitlets.Any(None)
+
+    def __init__(self, trajs, *, features=None, use_tica: bool = True, tica_lag: int = 10, tica_dim: int = 2,
+                 n_states: int = 100, method: str = "kmeans", stride: int = 1, seed: int = 0,
+                 progress: bool = True):
+        super().__init__(progress=progress, css_class="msmkit-states")
+        names = feature_names_of(trajs)
+        self._runs = as_float_trajectories(trajs, "trajs")
+        self.feature_names = tuple(names) if names is not None else default_feature_names(self._runs[0].shape[1])
+        self.microstates = None
+        self.tica = None
+        self.coordinates = None
+        self.settings = None
+        self.n_frames = [int(r.shape[0]) for r in self._runs]
+
+        self.features = widgets.SelectMultiple(
+            options=self.feature_names, value=self.feature_names, description="features",
+            rows=min(6, len(self.feature_names)), style={"description_width": DESCRIPTION_WIDTH},
+            layout=widgets.Layout(width="350px"),
+            tooltip="Features to build states from (ctrl/shift-click to choose several)")
+        self.features.add_class("msmkit-features")
+        if features is not None:
+            self.features.value = self._known_features(features)
+        self.use_tica = widgets.Checkbox(value=bool(use_tica), description="reduce with TICA first",
+                                         style={"description_width": DESCRIPTION_WIDTH},
+                                         layout=widgets.Layout(width="350px"))
+        self.tica_lag = field(widgets.IntText, int(tica_lag), "TICA lag (frames)",
+                              "Lag of the time-lagged correlations TICA looks for, in frames")
+        self.tica_dim = field(widgets.IntText, int(tica_dim), "TICA dimensions",
+                              "Number of slow TICA coordinates to cluster in")
+        self.n_states = field(widgets.IntText, int(n_states), "microstates", "Number of clusters (microstates)")
+        self.n_states.add_class("msmkit-n-states")
+        self.method = field(widgets.Dropdown, method, "method", options=METHODS)
+        self.stride = field(widgets.IntText, int(stride), "stride (frames)",
+                            "Frames used to place the centers; every frame still gets a label")
+        self.seed = field(widgets.IntText, int(seed), "seed", "Same seed, same states")
+        self.cluster_button = button("Cluster", "msmkit-cluster-button", "Make microstates with these settings",
+                                     icon="th")
+        self._on_click(self.cluster_button, self.make_states)
+        self.use_tica.observe(self._tica_switched, names="value")
+        self._tica_switched()
+        self.map = widgets.Output(layout=widgets.Layout(min_height="60px", overflow="auto"))
+        self.map.add_class("msmkit-state-map")
+        self.map.add_class("msmkit-plot")
+
+        intro = widgets.HTML(_render.message_html(
+            f"{len(self._runs)} runs, {sum(self.n_frames)} frames, {len(self.feature_names)} features. Choose "
+            f"the features, reduce them to slow coordinates (optional), and cluster the frames into "
+            f"microstates."))
+        settings = widgets.HBox([
+            widgets.VBox([self.features, self.use_tica, self.tica_lag, self.tica_dim]),
+            widgets.VBox([self.n_states, self.method, self.stride, self.seed,
+                          widgets.HBox([self.cluster_button, self.progress_bar])]),
+        ])
+        self.children = [intro, settings, self.details, self.status, self.map]
+
+    def _known_features(self, features) -> tuple:
+        features = [features] if isinstance(features, str) else list(features)
+        unknown = [f for f in features if f not in self.feature_names]
+        if unknown:
+            raise InputError(f"features {unknown} are not among the feature names {list(self.feature_names)}; "
+                             f"choose from those")
+        return tuple(features)
+
+    def _tica_switched(self, change=None):
+        self.tica_lag.disabled = self.tica_dim.disabled = not self.use_tica.value
+
+    def make_states(self, n_states=None, seed=None, *, features=None, use_tica=None, tica_lag=None,
+                    tica_dim=None, method=None, stride=None):
+        """Cluster with the panel's settings; given arguments replace the settings first.
+
+        Returns
+        -------
+        Microstates
+            Also stored as :attr:`microstates`, with the labels in :attr:`labels`.
+
+        Raises
+        ------
+        InputError
+            For a bad setting (also shown in the panel).
+        """
+        with self._action("Making microstates", total=4) as caught:
+            for name, value in (("n_states", n_states), ("seed", seed), ("tica_lag", tica_lag),
+                                ("tica_dim", tica_dim), ("stride", stride)):
+                if value is not None:
+                    set_value(getattr(self, name), check_int(value, name), name)
+            if method is not None:
+                if method not in dict(METHODS).values():
+                    raise InputError(f"method must be 'kmeans' or 'minibatch', but got {method!r}")
+                self.method.value = method
+            if use_tica is not None:
+                self.use_tica.value = bool(use_tica)
+            if features is not None:
+                self.features.value = self._known_features(features)
+
+            chosen = list(self.features.value)
+            if not chosen:
+                raise InputError("features: choose at least one feature")
+            cols = [self.feature_names.index(f) for f in chosen]
+            runs = TrajectorySet([np.asarray(r)[:, cols] for r in self._runs], chosen)
+            self._stage(1, 4, "TICA" if self.use_tica.value else "features")
+            tica = None
+            if self.use_tica.value:
+                tica = TICA(self.tica_lag.value, dim=self.tica_dim.value, progress=self.progress).fit(runs)
+                coords = list(tica.transform(runs))
+                names = tica.get_feature_names_out()
+            else:
+                coords = list(runs)
+                names = tuple(chosen)
+            self._stage(2, 4, "clustering")
+            micro = Microstates(self.n_states.value, method=self.method.value, stride=self.stride.value,
+                                seed=self.seed.value, progress=self.progress).fit(coords)
+            self._stage(3, 4, "drawing")
+            fig = plot_state_map(coords, micro.centers_, micro.counts_, names=tuple(names))
+            _render.show_figure(self.map, fig, alt="microstate map")
+        self.tica, self.microstates, self.coordinates = tica, micro, coords
+        self.settings = {"features": list(chosen), "use_tica": tica is not None,
+                         "tica_lag": int(self.tica_lag.value) if tica is not None else None,
+                         "tica_dim": int(tica.dim_) if tica is not None else None,
+                         "n_states": int(micro.centers_.shape[0]), "method": self.method.value,
+                         "stride": int(self.stride.value), "seed": int(self.seed.value)}
+        how = (f"TICA (lag {self.tica_lag.value} frames, {tica.dim_} dimensions) of {len(chosen)} features"
+               if tica is not None else f"{len(chosen)} features")
+        low = int((micro.counts_ < 10).sum())
+        extra = [f"{low} states hold fewer than 10 frames: their transitions are poorly sampled."] if low else []
+        self._report(f"{micro.centers_.shape[0]} microstates from {how}. Next: scan lag times (step 2).",
+                     caught, extra)
+        self.labels = micro.labels_
+        return micro

@@ -1,0 +1,204 @@
+"""The workbench: the whole job, step by step, in one JupyterLab cell."""
+from __future__ import annotations
+
+import dataclasses
+from pathlib import Path
+
+from .._checks import check_dt, check_unit
+from ..errors import InputError
+from . import _render
+from ._base import FileRow, action, on_click, report, widgets
+from ._render import frames
+from .lags import LagPanel, default_lags
+from .populations import PopulationsPanel
+from .states import StatesPanel
+
+__all__ = ["Workbench"]
+
+
+class Workbench(widgets.VBox):
+    """From trajectories to a saved Markov model: microstates, lag choice, populations, save.
+
+    Each step is a panel in a tab; the save row below the tabs writes the chosen model. Every
+    button is also a method (:meth:`make_states`, :meth:`scan`, :meth:`select_lag`,
+    :meth:`save`), and the chosen model is :attr:`model`.
+
+    Parameters
+    ----------
+    trajs : 2-D array, list of them, or a TrajectorySet
+    dt : float, optional
+        Time between frames (default: ``trajs.dt`` when given, else 1).
+    unit : str, optional
+        Time unit (default: ``trajs.unit`` when given, else "step").
+    features, use_tica, tica_lag, tica_dim, n_states, method, stride, seed
+        Starting settings of the microstates step (see :class:`StatesPanel`).
+    lags, n_processes, n_samples
+        Starting settings of the lag step (see :class:`LagPanel`).
+    temperature : float or None, default 300.0
+        Kelvin, for free energies in kJ/mol.
+    file_name : str
+        Default name of the saved model file.
+    progress : bool, default True
+
+    Notes
+    -----
+    More steps can be added with :meth:`add_step`. A step panel may define
+    ``set_labels(labels)`` (called when new microstates are made) and ``set_model(model)``
+    (called when the chosen model changes); the workbench calls them.
+    """
+
+    def __init__(self, trajs, *, dt=None, unit=None, features=None, use_tica: bool = True, tica_lag: int = 10,
+                 tica_dim: int = 2, n_states: int = 100, method: str = "kmeans", stride: int = 1, seed: int = 0,
+                 lags=None, n_processes: int = 4, n_samples: int = 20, temperature=300.0,
+                 file_name: str = "msmkit_model.npz", progress: bool = True):
+        super().__init__()
+        self.add_class("msmkit-workbench")
+        dt = dt if dt is not None else (getattr(trajs, "dt", None) or 1.0)
+        unit = unit if unit is not None else (getattr(trajs, "unit", None) or "step")
+        self.dt, self.unit = check_dt(dt), check_unit(unit)
+        self.states_panel = StatesPanel(trajs, features=features, use_tica=use_tica, tica_lag=tica_lag,
+                                        tica_dim=tica_dim, n_states=n_states, method=method, stride=stride,
+                                        seed=seed, progress=progress)
+        lengths = self.states_panel.n_frames
+        self.lag_panel = LagPanel(None, dt=self.dt, unit=self.unit,
+                                  lags=lags if lags is not None else default_lags(lengths),
+                                  n_processes=n_processes, n_samples=n_samples, seed=seed, progress=progress)
+        self.populations_panel = PopulationsPanel(None, temperature=temperature, progress=progress)
+        self.steps = []
+        self.tabs = widgets.Tab()
+        self.tabs.add_class("msmkit-steps")
+        for title, panel in (("1 · Microstates", self.states_panel), ("2 · Lag time", self.lag_panel),
+                             ("3 · Populations", self.populations_panel)):
+            self.add_step(title, panel)
+        self.states_panel.observe(self._labels_changed, names="labels")
+        self.lag_panel.observe(self._model_changed, names="model")
+
+        self.saver = FileRow(file_name, description="model file", button_text="Save model",
+                             css_class="msmkit-save", tooltip="Write the chosen model (.npz) with the states' "
+                                                              "centers and the TICA projection")
+        on_click(self.saver.button, self.save)
+        _render.show_message(self.saver.status, "Nothing to save yet.")
+        header = widgets.HTML(
+            f"<div style='font-size:120%; font-weight:600; margin:2px 0'>msmkit workbench</div>"
+            f"<div style='color:#555'>{len(lengths)} runs, {sum(lengths)} frames, one frame = {self.dt:g} "
+            f"{self.unit}. Work through the steps from left to right; every setting is also an "
+            f"argument of a method (see help(Workbench)).</div>")
+        self.children = [header, self.tabs, widgets.HTML("<b>Save the chosen model</b>"), self.saver]
+
+    # -- steps -------------------------------------------------------------------------------
+    def add_step(self, title: str, panel) -> None:
+        """Add a panel as the next step (a tab); it receives labels and models as they change."""
+        self.steps.append((title, panel))
+        self.tabs.children = tuple(p for _, p in self.steps)
+        self.tabs.titles = tuple(t for t, _ in self.steps)
+        labels = self.states_panel.labels if hasattr(self, "states_panel") else None
+        if labels is not None and hasattr(panel, "set_labels"):
+            panel.set_labels(labels)
+        if self.model is not None and hasattr(panel, "set_model"):
+            panel.set_model(self.model)
+
+    def _labels_changed(self, change):
+        for _, panel in self.steps:
+            if hasattr(panel, "set_labels"):
+                panel.set_labels(change["new"])
+
+    def _model_changed(self, change):
+        for _, panel in self.steps:
+            if panel is not self.lag_panel and hasattr(panel, "set_model"):
+                panel.set_model(change["new"])
+        if change["new"] is not None:
+            m = change["new"]
+            _render.show_message(self.saver.status, f"Ready to save the model at lag {frames(m.lag)} "
+                                                    f"({m.lag_time:g} {m.unit}), {m.n_states} states.")
+
+    # -- the chosen results ------------------------------------------------------------------
+    @property
+    def model(self):
+        """The MarkovModel at the chosen lag (None before a scan)."""
+        return self.lag_panel.model if hasattr(self, "lag_panel") else None
+
+    @property
+    def scan_result(self):
+        """The LagScan of the last scan (None before one)."""
+        return self.lag_panel.scan_result
+
+    @property
+    def microstates(self):
+        """The fitted Microstates (None before clustering)."""
+        return self.states_panel.microstates
+
+    @property
+    def tica(self):
+        """The fitted TICA (None when not used)."""
+        return self.states_panel.tica
+
+    @property
+    def labels(self):
+        """Microstate label trajectories (None before clustering)."""
+        return self.states_panel.labels
+
+    # -- actions (the buttons) ---------------------------------------------------------------
+    def make_states(self, n_states=None, seed=None, **settings):
+        """Step 1: make microstates (see :meth:`StatesPanel.make_states`)."""
+        return self.states_panel.make_states(n_states, seed, **settings)
+
+    def scan(self, lags=None, n_samples=None, **settings):
+        """Step 2: scan lags (see :meth:`LagPanel.scan`)."""
+        return self.lag_panel.scan(lags, n_samples, **settings)
+
+    def select_lag(self, lag):
+        """Step 2: choose a scanned lag (frames); returns the model."""
+        return self.lag_panel.select_lag(lag)
+
+    def save(self, path=None, *, overwrite=None):
+        """Write the chosen model with the microstate centers and the TICA projection.
+
+        Parameters
+        ----------
+        path : str or Path, optional
+            Default: the file name field. ``.npz`` is appended when missing.
+        overwrite : bool, optional
+            Default: the overwrite switch (off: an existing file is kept and an error shown).
+
+        Returns
+        -------
+        Path
+        """
+        with action(self.saver.status, "Saving", buttons=[self.saver.button]) as caught:
+            if path is not None:
+                self.saver.name.value = str(path)
+            if overwrite is not None:
+                self.saver.overwrite.value = bool(overwrite)
+            model = self.model
+            if model is None:
+                raise InputError("there is no model to save yet: make microstates (step 1), then scan and "
+                                 "choose a lag (step 2)")
+            name = self.saver.name.value.strip()
+            if not name:
+                raise InputError("model file: give a file name")
+            extras, preparation = self._provenance()
+            model = dataclasses.replace(model, metadata={**model.metadata, "preparation": preparation})
+            written = model.save(Path(name).expanduser(), overwrite=self.saver.overwrite.value, **extras)
+        report(self.saver.status, f"Saved the model at lag {frames(model.lag)} to {written.resolve()} "
+                                  f"(load it with msmkit.load_model).", caught)
+        return written
+
+    def _provenance(self):
+        panel = self.states_panel
+        micro, tica = panel.microstates, panel.tica
+        extras = {"centers": micro.centers_}
+        used = panel.settings
+        prep = {"features": used["features"],
+                "microstates": {k: used[k] for k in ("n_states", "method", "stride", "seed")},
+                "tica": None}
+        if tica is not None:
+            # The file's tica_components (dim, n_features) are the rows TICA.transform applies, so that
+            # (x - tica_mean) @ tica_components.T gives the coordinates the centers live in
+            # (kinetic-map scaling multiplies each component by the eigenvalue).
+            proj = tica.components_
+            if tica.scaling == "kinetic_map":
+                proj = proj * tica.eigenvalues_[:, None]
+            extras.update(tica_mean=tica.mean_, tica_components=proj)
+            prep["tica"] = {"lag": int(tica.lag_), "dim": int(tica.dim_), "scaling": tica.scaling,
+                            "coordinates": "(x - tica_mean) @ tica_components.T, scaling included"}
+        return extras, prep

@@ -1,0 +1,328 @@
+"""The workbench panels, driven like a user would (set .value, .click()) and through their
+methods, without a browser. The reference for every number is the public msmkit function
+the panel is meant to call (the widgets are thin views), plus the gas constant for kJ/mol.
+"""
+import base64
+import html
+import io
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+
+pytest.importorskip("ipywidgets")
+
+import msmkit as mk  # noqa: E402
+from msmkit import demo  # noqa: E402
+from msmkit.errors import InputError  # noqa: E402
+from msmkit.lagscan import lag_scan  # noqa: E402
+from msmkit.plots import figure_png, plot_timescales  # noqa: E402
+from msmkit.reduce import TICA  # noqa: E402
+from msmkit.states import Microstates  # noqa: E402
+from msmkit.widgets import LagPanel, PopulationsPanel, StatesPanel, Workbench  # noqa: E402
+from msmkit.widgets.lags import TimescaleView  # noqa: E402
+
+LAGS = [1, 2, 5, 10]
+N_STATES = 20
+#: molar gas constant, kJ/(mol K) (CODATA 2018, exact)
+R_KJ = 8.314462618e-3
+
+
+@pytest.fixture(scope="module")
+def trajs():
+    return demo.trajectories(seed=1, n_runs=6, min_frames=800, max_frames=1200)
+
+
+@pytest.fixture(scope="module")
+def wb(trajs):
+    """A workbench taken through clustering and scanning by the buttons."""
+    bench = Workbench(trajs, n_states=N_STATES, lags=LAGS, n_samples=5, progress=False)
+    bench.states_panel.cluster_button.click()
+    bench.lag_panel.scan_button.click()
+    return bench
+
+
+@pytest.fixture(scope="module")
+def reference(trajs):
+    """The same analysis through the public API (the numbers the panels must show)."""
+    tica = TICA(10, dim=2).fit(trajs)
+    coords = list(tica.transform(trajs))
+    micro = Microstates(N_STATES, seed=0).fit(coords)
+    # The default of 5 processes: the first 4 (what the panel shows) do not depend on how many follow.
+    scan = lag_scan(micro.labels_, LAGS, dt=demo.DT, unit=demo.UNIT, n_samples=5, seed=0)
+    return tica, micro, scan
+
+
+def png_of(out) -> bytes:
+    (item,) = out.outputs
+    return base64.b64decode(item["data"]["image/png"])
+
+
+def pixels(png: bytes) -> np.ndarray:
+    from PIL import Image
+    return np.asarray(Image.open(io.BytesIO(png)).convert("RGB"), dtype=np.int16)
+
+
+def status_text(widget) -> str:
+    return html.unescape(widget.value)
+
+
+# -- step 1 ------------------------------------------------------------------------------------
+
+def test_cluster_button_gives_the_public_microstates(wb, reference):
+    tica, micro, _ = reference
+    assert len(wb.labels) == 6
+    for got, want in zip(wb.labels, micro.labels_):
+        np.testing.assert_array_equal(got, want)
+    np.testing.assert_allclose(wb.microstates.centers_, micro.centers_)
+    np.testing.assert_allclose(wb.tica.components_, tica.components_)
+    assert png_of(wb.states_panel.map)[:8] == b"\x89PNG\r\n\x1a\n"
+    assert f"{N_STATES} microstates" in status_text(wb.states_panel.status)
+    assert "msmkit-error" not in wb.states_panel.status.value
+
+
+def test_features_without_tica(trajs, tmp_path):
+    bench = Workbench(trajs, features=["progress", "twist"], use_tica=False, n_states=8, lags=[1, 2],
+                      n_samples=0, progress=False)
+    micro = bench.make_states()
+    assert micro.centers_.shape == (8, 2)
+    ref = Microstates(8, seed=0).fit([np.asarray(r)[:, :2] for r in trajs])
+    np.testing.assert_allclose(micro.centers_, ref.centers_)
+    bench.scan()
+    path = bench.save(tmp_path / "plain.npz")
+    with np.load(path, allow_pickle=False) as data:
+        assert "tica_mean" not in data.files and "centers" in data.files
+        prep = json.loads(str(data["metadata"]))["preparation"]
+    assert prep["features"] == ["progress", "twist"] and prep["tica"] is None
+
+
+def test_warnings_are_shown_in_the_panel():
+    rng = np.random.default_rng(3)
+    runs = [np.column_stack([np.cumsum(rng.normal(size=300)), rng.normal(size=300), np.ones(300)])
+            for _ in range(3)]
+    panel = StatesPanel(runs, tica_dim=1, n_states=5, progress=False)
+    panel.cluster_button.click()
+    assert panel.labels is not None
+    assert "msmkit-warning" in panel.status.value
+    assert "constant" in status_text(panel.status)  # TICA's finding about feature x2
+
+
+# -- step 2 ------------------------------------------------------------------------------------
+
+def test_scan_button_gives_the_public_lag_scan(wb, reference):
+    _, _, scan = reference
+    got = wb.scan_result
+    np.testing.assert_array_equal(got.lags, LAGS)
+    np.testing.assert_allclose(got.timescales, scan.timescales[:, :4])
+    np.testing.assert_allclose(got.lower, scan.lower[:, :4], equal_nan=True)
+    np.testing.assert_allclose(got.upper, scan.upper[:, :4], equal_nan=True)
+    assert got.suggested_lag == scan.suggested_lag
+    assert [v for _, v in wb.lag_panel.slider.options] == LAGS
+    assert html.escape(scan.reason) in wb.lag_panel.suggestion.value
+    assert png_of(wb.lag_panel.plot)[:4] == b"\x89PNG"
+
+
+def test_slider_changes_model_plot_and_table(wb):
+    panel = wb.lag_panel
+    seen = {}
+    for lag in (LAGS[0], LAGS[-1]):
+        panel.slider.value = lag
+        assert wb.model is wb.scan_result.model(lag)
+        assert wb.populations_panel.model is wb.model
+        seen[lag] = (png_of(panel.plot), wb.populations_panel.table_html.value, panel.diagnostics.value)
+        want = wb.model.populations(temperature=300.0).sort_values("population", ascending=False,
+                                                                   kind="stable", ignore_index=True)
+        pd.testing.assert_frame_equal(wb.populations_panel.table, want)
+        assert f"lag {lag} frame" in status_text(panel.diagnostics)
+    a, b = seen[LAGS[0]], seen[LAGS[-1]]
+    assert a[0] != b[0] and a[1] != b[1] and a[2] != b[2]
+
+
+def test_select_lag_method_and_bad_lag(wb):
+    model = wb.select_lag(LAGS[1])
+    assert model.lag == LAGS[1] and wb.lag_panel.slider.value == LAGS[1]
+    with pytest.raises(InputError, match="lag 3 was not scanned"):
+        wb.select_lag(3)
+    assert "not scanned" in status_text(wb.lag_panel.status)
+    assert wb.model.lag == LAGS[1]
+
+
+def test_fast_marker_draws_what_the_full_figure_draws(wb):
+    scan = wb.scan_result
+    view = TimescaleView(scan, LAGS[0])
+    assert view.fast
+    quick = pixels(view.png(LAGS[2]))
+    full = pixels(figure_png(plot_timescales(scan, selected_lag=LAGS[2]), dpi=96))
+    other = pixels(figure_png(plot_timescales(scan, selected_lag=LAGS[-1]), dpi=96))
+    assert quick.shape == full.shape
+    differ = np.mean(np.any(np.abs(quick - full) > 40, axis=-1))
+    moved = np.mean(np.any(np.abs(other - full) > 40, axis=-1))
+    assert differ < 0.002 and moved > 5 * differ  # same picture; another lag is visibly different
+
+
+# -- step 3 ------------------------------------------------------------------------------------
+
+def test_sorting_and_temperature(wb):
+    pops = wb.populations_panel
+    table = pops.sort("state", ascending=True)
+    assert list(table["state"]) == sorted(table["state"])
+    first_row = pops.table_html.value.split("<tbody>")[1].split("</td>")[0]
+    assert f">{table['state'].iloc[0]}" in first_row
+    pops.ascending.value = False
+    assert list(pops.table["state"]) == sorted(pops.table["state"], reverse=True)
+
+    pops.temperature.value = "310"
+    t = pops.table
+    np.testing.assert_allclose(t["free_energy_kJ_per_mol"], t["free_energy_kT"] * R_KJ * 310)
+    pops.sort_by.value = "free_energy_kJ_per_mol"
+    pops.temperature.value = ""
+    assert "free_energy_kJ_per_mol" not in pops.table.columns
+    assert pops.sort_by.value == "free_energy_kT"
+    pops.temperature.value = "warm"
+    assert pops.table is None and "temperature must be a number" in status_text(pops.status)
+    pops.temperature.value = "-5"
+    assert pops.table is None and "temperature" in status_text(pops.status)
+    pops.temperature.value = "300"
+    pops.sort("population", ascending=False)
+    assert pops.table is not None and "msmkit-error" not in pops.status.value
+
+
+def test_csv_export_with_overwrite_protection(wb, tmp_path):
+    pops = wb.populations_panel
+    target = tmp_path / "pops.csv"
+    pops.csv.name.value = str(target)
+    pops.csv.button.click()
+    written = pd.read_csv(target)
+    pd.testing.assert_frame_equal(written, pops.table, check_dtype=False)
+    target.write_text("keep me")
+    pops.csv.button.click()
+    assert target.read_text() == "keep me"
+    assert "exists" in status_text(pops.csv.status)
+    pops.csv.overwrite.value = True
+    pops.csv.button.click()
+    assert len(pd.read_csv(target)) == len(pops.table)
+
+
+# -- saving ------------------------------------------------------------------------------------
+
+def test_save_writes_a_model_that_loads_with_provenance(wb, trajs, tmp_path):
+    wb.select_lag(LAGS[2])
+    wb.states_panel.n_states.value, wb.states_panel.seed.value = 7, 99  # edited, not re-clustered
+    wb.saver.name.value = str(tmp_path / "chosen.npz")
+    wb.saver.button.click()
+    wb.states_panel.n_states.value, wb.states_panel.seed.value = N_STATES, 0
+    loaded = mk.load_model(tmp_path / "chosen.npz")
+    assert loaded.lag == LAGS[2]
+    np.testing.assert_allclose(loaded.transition_matrix, wb.model.transition_matrix)
+    np.testing.assert_array_equal(loaded.states, wb.model.states)
+    with np.load(tmp_path / "chosen.npz", allow_pickle=False) as data:
+        np.testing.assert_allclose(data["centers"], wb.microstates.centers_)
+        x = np.asarray(trajs[0])
+        np.testing.assert_allclose((x - data["tica_mean"]) @ data["tica_components"].T, wb.tica.transform(x),
+                                   atol=1e-10)
+        prep = json.loads(str(data["metadata"]))["preparation"]
+    assert prep["features"] == list(demo.FEATURE_NAMES)
+    assert prep["microstates"]["n_states"] == N_STATES and prep["microstates"]["seed"] == 0
+    assert prep["tica"]["dim"] == 2
+    assert "Saved" in status_text(wb.saver.status)
+
+    wb.saver.button.click()  # the file exists and overwrite is off
+    assert "exists" in status_text(wb.saver.status)
+    with pytest.raises(InputError, match="exists"):
+        wb.save()
+    assert wb.save(overwrite=True).exists()
+
+
+# -- errors in the panel -----------------------------------------------------------------------
+
+def test_bad_choices_show_messages_not_tracebacks(trajs, tmp_path):
+    bench = Workbench(trajs, n_states=6, lags=[1, 2], n_samples=0, progress=False,
+                      file_name=str(tmp_path / "never.npz"))
+    bench.lag_panel.scan_button.click()
+    assert "no microstates yet" in status_text(bench.lag_panel.status)
+    bench.saver.button.click()
+    assert "no model to save" in status_text(bench.saver.status)
+    assert not (tmp_path / "never.npz").exists()
+
+    bench.states_panel.n_states.value = 10 ** 6
+    bench.states_panel.cluster_button.click()
+    assert "n_states=1000000" in status_text(bench.states_panel.status)
+    assert bench.labels is None
+    with pytest.raises(InputError, match="n_states"):
+        bench.make_states(n_states=10 ** 6)
+    with pytest.raises(InputError, match="n_states"):
+        bench.make_states(n_states="many")
+    bench.states_panel.features.value = ()
+    bench.states_panel.cluster_button.click()
+    assert "choose at least one feature" in status_text(bench.states_panel.status)
+
+    bench.make_states(n_states=6, features=list(demo.FEATURE_NAMES))
+    bench.lag_panel.lags.value = "1, 100000"
+    bench.lag_panel.scan_button.click()
+    assert "not shorter than the longest trajectory" in status_text(bench.lag_panel.status)
+    bench.lag_panel.lags.value = "1, two"
+    bench.lag_panel.scan_button.click()
+    assert "whole numbers" in status_text(bench.lag_panel.status)
+    assert bench.scan_result is None and bench.model is None
+    assert bench.lag_panel.progress_bar.bar_style == "danger"
+
+
+# -- panels alone, extra steps, hooks ------------------------------------------------------------
+
+def test_panels_work_on_their_own(reference):
+    _, micro, scan = reference
+    lags = LagPanel(micro.labels_, dt=demo.DT, unit=demo.UNIT, progress=False)
+    assert lags.lags.value.startswith("1, 2, 5")  # defaults up to a twentieth of the longest run
+    result = lags.scan(lags=[2, 5], n_samples=0)
+    np.testing.assert_allclose(result.timescales, scan.timescales[1:3, :4], rtol=1e-9)
+    pops = PopulationsPanel(lags.model, temperature=None)
+    assert list(pops.table.columns)[:3] == ["state", "population", "free_energy_kT"]
+    np.testing.assert_allclose(pops.table["population"].sum(), 1.0)
+
+
+def test_added_step_receives_labels_and_models(wb):
+    import ipywidgets
+
+    class Recorder(ipywidgets.VBox):
+        def __init__(self):
+            super().__init__()
+            self.labels, self.models = [], []
+
+        def set_labels(self, labels):
+            self.labels.append(labels)
+
+        def set_model(self, model):
+            self.models.append(model)
+
+    rec = Recorder()
+    wb.add_step("4 · record", rec)
+    assert wb.tabs.titles[-1] == "4 · record" and wb.tabs.children[-1] is rec
+    assert rec.labels == [wb.labels] and rec.models == [wb.model]
+    wb.lag_panel.slider.value = LAGS[0]
+    assert rec.models[-1] is wb.model and wb.model.lag == LAGS[0]
+
+
+def test_css_hooks_for_browser_tests(wb):
+    hooks = {
+        "msmkit-cluster-button": wb.states_panel.cluster_button,
+        "msmkit-scan-button": wb.lag_panel.scan_button,
+        "msmkit-lag-slider": wb.lag_panel.slider,
+        "msmkit-timescale-plot": wb.lag_panel.plot,
+        "msmkit-state-map": wb.states_panel.map,
+        "msmkit-populations-table": wb.populations_panel.table_html,
+        "msmkit-save-button": wb.saver.button,
+        "msmkit-save-name": wb.saver.name,
+        "msmkit-save-status": wb.saver.status,
+        "msmkit-progress": wb.lag_panel.progress_bar,
+    }
+    for cls, widget in hooks.items():
+        assert cls in widget._dom_classes, cls
+    assert "msmkit-status" in wb.lag_panel.status._dom_classes
+
+
+def test_importing_msmkit_does_not_import_ipywidgets():
+    code = "import sys, msmkit; assert 'ipywidgets' not in sys.modules, 'ipywidgets imported'"
+    subprocess.run([sys.executable, "-c", code], check=True)
