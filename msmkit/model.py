@@ -118,32 +118,33 @@ class MarkovModel:
         return order[np.searchsorted(self.states, wanted, sorter=order)]
 
     # ----------------------------------------------------------------- spectrum
-    def _decomposition(self):
-        if self._spectrum is None:
+    def _decomposition(self, k: int | None = None):
+        """The k leading eigenpairs (all by default), computed once and extended on demand."""
+        n = self.n_states
+        k = n if k is None else min(check_int(k, "k", minimum=1), n)
+        if self._spectrum is None or self._spectrum[0].size < k:
             self._spectrum = eigen_decomposition(self.transition_matrix, self.stationary_distribution,
-                                                 reversible=self.reversible, vectors=True)
-        return self._spectrum
+                                                 k=None if k == n else k, reversible=self.reversible,
+                                                 vectors=True)
+        w, v = self._spectrum
+        return w[:k], v[:, :k]
 
     def eigenvalues(self, k: int | None = None) -> np.ndarray:
         """The ``k`` largest-magnitude eigenvalues (all by default); the first is 1.
 
         Real for a reversible model; may be complex for a non-reversible one.
         """
-        w = self._decomposition()[0]
-        return w if k is None else w[:check_int(k, "k", minimum=1)]
+        return self._decomposition(k)[0]
 
     def eigenvectors(self, k: int | None = None) -> np.ndarray:
         """Right eigenvectors (columns) belonging to :meth:`eigenvalues`; for a reversible model
         normalised so that sum_i pi_i r_i^2 = 1."""
-        v = self._decomposition()[1]
-        return v if k is None else v[:, :check_int(k, "k", minimum=1)]
+        return self._decomposition(k)[1]
 
     def timescales(self, k: int | None = None) -> np.ndarray:
         """The ``k`` slowest implied timescales -lag*dt/ln|lambda_i|, in :attr:`unit`
         (the stationary eigenvalue is left out)."""
-        w = self.eigenvalues()[1:]
-        if k is not None:
-            w = w[:check_int(k, "k", minimum=1)]
+        w = self.eigenvalues(None if k is None else check_int(k, "k", minimum=1) + 1)[1:]
         return implied_timescales(w, self.lag, self.dt)
 
     # ----------------------------------------------------------------- populations
@@ -274,7 +275,7 @@ class MarkovModel:
         model = cls(T, pi, labels.astype(np.int64), 1, dt, unit, bool(reversible),
                     metadata={"source": "transition matrix", "package_version": _version(),
                               "created": _now()})
-        model.diagnostics = chain_diagnostics(model.eigenvalues(), lag=1, dt=dt, unit=unit,
+        model.diagnostics = chain_diagnostics(model.eigenvalues(REPORTED + 1), lag=1, dt=dt, unit=unit,
                                               n_reported=min(REPORTED, n - 1))
         for line in model.diagnostics:
             warnings.warn(line, DiagnosticWarning, stacklevel=2)
@@ -409,7 +410,7 @@ def model_from_counts(counts: sp.csr_matrix, lag: int, *, dt: float, unit: str, 
                                  "converging; the matrix is reversible but not exactly the maximum-likelihood one.")
     if spectrum:
         row_counts = np.asarray(Ck.sum(axis=1)).ravel()
-        model.diagnostics += chain_diagnostics(model.eigenvalues(), lag=lag, dt=dt, unit=unit,
+        model.diagnostics += chain_diagnostics(model.eigenvalues(REPORTED + 1), lag=lag, dt=dt, unit=unit,
                                                row_counts=row_counts, states=model.states,
                                                dropped_states=dropped, kept_fraction=kept_fraction,
                                                n_reported=min(REPORTED, model.n_states - 1))

@@ -21,6 +21,8 @@ __all__ = [
 
 #: an eigenvalue this close to the unit circle counts as "on" it
 UNIT_CIRCLE_TOL = 1e-9
+#: above this many states, a few leading eigenvalues are found iteratively instead of by a full solve
+ITERATIVE_MIN_STATES = 200
 #: states whose row holds fewer transitions than this are flagged as poorly sampled
 FEW_COUNTS = 10
 
@@ -83,6 +85,8 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
         pi = stationary_distribution(T)
     if reversible is None:
         reversible = is_reversible(T, pi)
+    if k < n and n > ITERATIVE_MIN_STATES and k <= n // 10:
+        return _leading_eigen(T, pi, k, reversible, vectors)
     if reversible:
         s = np.sqrt(pi)
         A = s[:, None] * T / s[None, :]
@@ -91,7 +95,7 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
             w, v = la.eigh(A)
         else:
             w, v = la.eigvalsh(A), None
-        order = np.argsort(-np.abs(w), kind="stable")[:k]
+        order = _magnitude_order(w)[:k]
         if not vectors:
             return w[order]
         right = v[:, order] / s[:, None]
@@ -100,7 +104,7 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
         w, v = la.eig(T)
     else:
         w, v = la.eigvals(T), None
-    order = np.argsort(-np.abs(w), kind="stable")[:k]
+    order = _magnitude_order(w)[:k]
     w = w[order]
     if np.all(np.abs(w.imag) <= 1e-12 * np.maximum(np.abs(w), 1.0)):
         w = w.real
@@ -110,6 +114,43 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
     if np.isrealobj(w):
         v = v.real
     return w, v
+
+
+def _leading_eigen(T, pi, k, reversible, vectors):
+    """The k largest-magnitude eigenpairs by ARPACK (implicitly restarted Lanczos / Arnoldi) on a
+    sparse copy of the (symmetrised) matrix: far cheaper than a full dense solve when k << n.
+    Falls back to the dense solver if ARPACK does not converge."""
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as sla
+    n = T.shape[0]
+    v0 = np.random.default_rng(0).uniform(0.5, 1.5, n)  # fixed start: same answer every call
+    ncv = min(n, max(2 * k + 1, 24))
+    try:
+        if reversible:
+            s = np.sqrt(pi)
+            A = sp.csr_matrix(s[:, None] * T / s[None, :])
+            A = 0.5 * (A + A.T)
+            w, v = sla.eigsh(A, k=k, which="LM", v0=v0, ncv=ncv, tol=0)
+            v = v / s[:, None]
+        else:
+            w, v = sla.eigs(sp.csr_matrix(T), k=k, which="LM", v0=v0, ncv=ncv, tol=0)
+            if np.all(np.abs(w.imag) <= 1e-12 * np.maximum(np.abs(w), 1.0)):
+                w, v = w.real, v.real
+    except (sla.ArpackNoConvergence, sla.ArpackError):
+        full = eigen_decomposition(T, pi, reversible=reversible, vectors=vectors)  # dense
+        return (full[0][:k], full[1][:, :k]) if vectors else full[:k]
+    order = _magnitude_order(w)
+    return (w[order], v[:, order]) if vectors else w[order]
+
+
+def _magnitude_order(w: np.ndarray) -> np.ndarray:
+    """Indices sorting eigenvalues by magnitude, largest first, with the eigenvalue nearest 1 (the
+    stationary one) always first: on a periodic chain others share the same magnitude (-1, e^{2 pi i/3})
+    and a plain sort by magnitude may put one of them in front."""
+    first = int(np.argmin(np.abs(w - 1.0)))
+    rest = np.delete(np.arange(w.size), first)
+    rest = rest[np.argsort(-np.abs(w[rest]), kind="stable")]
+    return np.concatenate([[first], rest]).astype(np.intp)
 
 
 def implied_timescales(eigenvalues, lag: int, dt: float = 1.0) -> np.ndarray:
@@ -133,7 +174,7 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, row_counts
     eigenvalues : ndarray
         Eigenvalues sorted by magnitude (the first is the stationary 1).
     lag, dt, unit
-        Lag in frames, frame time and its unit, for the timescale checks.
+        Lag in frames, frame time and the unit of time, for the timescale checks.
     row_counts : ndarray, optional
         Transitions counted out of each kept state.
     states : ndarray, optional

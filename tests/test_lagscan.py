@@ -1,0 +1,241 @@
+"""Tests of msmkit.lagscan: implied timescales across lags, bootstrap intervals, suggested lag.
+
+External references:
+- implied timescales of a Markov chain do not depend on the lag; lumping a hidden chain into
+  fewer observed states adds memory, so short-lag timescales come out too fast and grow with the
+  lag (Swope, Pitera & Suits, J. Phys. Chem. B 108, 6571 (2004); Prinz et al., J. Chem. Phys.
+  134, 174105 (2011), Sec. III -- the variational bound);
+- the bootstrap standard error estimates the sampling standard error (Efron, Ann. Stat. 7, 1
+  (1979)), here compared with first-order error propagation (conftest.timescale_sigma, common
+  practice);
+- build_model at the same lag (same counts, same estimator) for LagScan.model.
+"""
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+import scipy.linalg as la
+
+from msmkit.errors import DiagnosticWarning, InputError
+from msmkit.lagscan import LagScan, lag_scan, suggest_lag
+from msmkit.model import build_model
+
+LAGS = [1, 2, 4, 8]
+
+
+def quiet(func, *args, **kw):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DiagnosticWarning)
+        return func(*args, **kw)
+
+
+def true_chain():
+    X = np.array([[900.0, 30, 2], [30, 500, 25], [2, 25, 400]])  # same as conftest.reversible_chain
+    return X / X.sum(axis=1, keepdims=True)
+
+
+@pytest.fixture(scope="module")
+def markov_runs(sample_chain):
+    return sample_chain(true_chain(), 2000, n_runs=100, seed=21)
+
+
+@pytest.fixture(scope="module")
+def markov_scan(markov_runs):
+    return lag_scan(markov_runs, LAGS, dt=0.5, unit="ns", n_processes=2, n_samples=40, seed=0)
+
+
+def hidden_chain(p=0.02):
+    """Four hidden states in a line A1 - A2 - B2 - B1, hop probability p per step. Observed: A or B.
+    Only A2 and B2 exchange, so whether an observed A is about to leave depends on the hidden
+    state: the observed process has memory over about 1/p steps."""
+    return np.array([[1 - p, p, 0, 0], [p, 1 - 2 * p, p, 0], [0, p, 1 - 2 * p, p], [0, 0, p, 1 - p]])
+
+
+# --------------------------------------------------------------------------- Markov data
+
+def test_structure_and_units(markov_scan, markov_runs):
+    scan = markov_scan
+    assert isinstance(scan, LagScan)
+    assert scan.lags.tolist() == LAGS and scan.lags.dtype == np.int64
+    np.testing.assert_array_equal(scan.lag_times, np.array(LAGS) * 0.5)
+    assert scan.timescales.shape == scan.lower.shape == scan.upper.shape == (4, 2)
+    assert scan.samples.shape == (4, 40, 2)
+    assert scan.unit == "ns" and scan.confidence == 0.95 and scan.n_samples == 40
+    assert np.all(scan.lower <= scan.upper)
+    assert scan.notes == []  # 100 runs: whole runs are resampled; every lag resolves its process
+
+
+def test_full_data_timescales_equal_build_model(markov_scan, markov_runs):
+    for a, lag in enumerate(LAGS):
+        model = quiet(build_model, markov_runs, lag, dt=0.5, unit="ns")
+        np.testing.assert_allclose(markov_scan.timescales[a], model.timescales(2), rtol=1e-10)
+        scanned = markov_scan.model(lag)
+        np.testing.assert_allclose(scanned.transition_matrix, model.transition_matrix, rtol=1e-10, atol=1e-14)
+        np.testing.assert_array_equal(scanned.count_matrix.toarray(), model.count_matrix.toarray())
+        assert scanned.lag == lag and scanned.unit == "ns"
+
+
+def test_markov_data_timescales_match_truth_and_suggest_smallest_lag(markov_scan):
+    # a Markov chain has the same implied timescales at every lag (scipy.linalg.eig of the truth)
+    w = np.sort(la.eigvals(true_chain()).real)[::-1]
+    expected = -0.5 / np.log(w[1:])
+    for a in range(len(LAGS)):
+        resolved = expected > LAGS[a] * 0.5
+        # within three half-widths of the 95 % bootstrap interval (about 6 standard errors)
+        half = (markov_scan.upper[a] - markov_scan.lower[a]) / 2
+        assert np.all(np.abs(markov_scan.timescales[a] - expected)[resolved] <= 3 * half[resolved])
+    assert markov_scan.suggested_lag == 1
+    assert markov_scan.reason.startswith("Lag 1 frames (0.5 ns) is the smallest scanned lag")
+
+
+def test_bootstrap_spread_matches_first_order_error(markov_scan, markov_runs, timescale_sigma):
+    # at lag 1 the counts out of each state are multinomial: first-order propagation gives the
+    # sampling standard error, which the bootstrap over runs must reproduce (Efron 1979). With 40
+    # samples the bootstrap standard deviation itself is uncertain by ~1/sqrt(80) = 11 %; allow
+    # a factor 1.5 either way.
+    model = markov_scan.model(1)
+    counts_out = np.asarray(model.count_matrix.sum(axis=1)).ravel()
+    for k in (1, 2):
+        _, _, sigma = timescale_sigma(true_chain(), counts_out, 1, 0.5, which=k)
+        spread = np.std(markov_scan.samples[0, :, k - 1], ddof=1)
+        assert 1 / 1.5 < spread / sigma < 1.5, (k, spread, sigma)
+
+
+def test_table(markov_scan):
+    df = markov_scan.table()
+    assert isinstance(df, pd.DataFrame)
+    assert list(df.columns) == ["lag", "lag_time", "process", "timescale", "lower", "upper", "resolved"]
+    assert len(df) == 8 and df.attrs["unit"] == "ns"
+    assert df["process"].tolist() == [1, 2] * 4
+    np.testing.assert_array_equal(df["timescale"], markov_scan.timescales.ravel())
+    np.testing.assert_array_equal(df["resolved"], df["timescale"] > df["lag_time"])
+    assert not df.loc[(df.lag == 8) & (df.process == 2), "resolved"].item()  # 3.2 ns < 4 ns
+
+
+def test_model_of_unscanned_lag(markov_scan):
+    with pytest.raises(InputError, match=r"lag 3 was not scanned; choose one of \[1, 2, 4, 8\]"):
+        markov_scan.model(3)
+    with pytest.raises(InputError, match=r"lag must be an integer"):
+        markov_scan.model("1")
+
+
+# --------------------------------------------------------------------------- data with memory
+
+def test_hidden_states_make_short_lags_non_markovian(sample_chain):
+    H = hidden_chain()
+    hidden = sample_chain(H, 3000, n_runs=60, seed=1)
+    observed = [(h >= 2).astype(np.int32) for h in hidden]
+    scan = lag_scan(observed, [1, 2, 5, 10, 20, 50], n_processes=1, n_samples=0)
+    t = scan.timescales[:, 0]
+    true_t = -1 / np.log(np.sort(la.eigvals(H).real)[-2])  # about 85 steps
+    # variational bound: the lumped model's timescale is too fast and grows toward the truth
+    assert np.all(np.diff(t) > 0)
+    assert np.all(t < true_t)
+    assert scan.suggested_lag is None or scan.suggested_lag > 1
+    assert isinstance(scan.reason, str) and scan.reason
+    if scan.suggested_lag is None:
+        assert "keep changing with the lag" in scan.reason
+
+
+# --------------------------------------------------------------------------- resampling
+
+def test_same_seed_same_intervals(sample_chain):
+    runs = sample_chain(true_chain(), 300, n_runs=6, seed=2)
+    a = lag_scan(runs, [1, 3], n_processes=2, n_samples=8, seed=3)
+    b = lag_scan(runs, [1, 3], n_processes=2, n_samples=8, seed=3)
+    c = lag_scan(runs, [1, 3], n_processes=2, n_samples=8, seed=4)
+    np.testing.assert_array_equal(a.lower, b.lower)
+    np.testing.assert_array_equal(a.upper, b.upper)
+    np.testing.assert_array_equal(a.samples, b.samples)
+    assert not np.array_equal(a.samples, c.samples)
+
+
+def test_no_samples_no_interval(sample_chain):
+    runs = sample_chain(true_chain(), 300, n_runs=3, seed=2)
+    scan = lag_scan(runs, [1, 2], n_processes=2, n_samples=0)
+    assert np.all(np.isnan(scan.lower)) and np.all(np.isnan(scan.upper))
+    assert scan.samples.shape == (2, 0, 2)
+    assert not any("block" in n for n in scan.notes)  # nothing was resampled
+    assert "no bootstrap intervals were computed" in scan.reason
+
+
+def test_few_runs_use_blocks_and_say_so(sample_chain):
+    runs = sample_chain(true_chain(), 600, n_runs=3, seed=9)
+    scan = lag_scan(runs, [1, 2], n_processes=1, n_samples=6, seed=0)
+    note = next(n for n in scan.notes if "block" in n)
+    assert "Only 3 run(s)" in note and "7 contiguous blocks per run" in note and "too narrow" in note
+    assert np.all(np.isfinite(scan.lower)) and np.all(scan.lower < scan.upper)
+    one = lag_scan(runs[0], [1], n_processes=1, n_samples=4, seed=0)
+    assert any("Only 1 run(s)" in n and "20 contiguous blocks" in n for n in one.notes)
+    many = lag_scan(sample_chain(true_chain(), 200, n_runs=5, seed=9), [1], n_processes=1, n_samples=4, seed=0)
+    assert not any("block" in n for n in many.notes)
+
+
+def test_more_timescales_than_processes_are_nan(sample_chain):
+    runs = sample_chain(true_chain(), 300, n_runs=5, seed=2)
+    scan = lag_scan(runs, [1, 2], n_processes=4, n_samples=3, seed=1, progress=True)
+    assert np.all(np.isfinite(scan.timescales[:, :2])) and np.all(np.isnan(scan.timescales[:, 2:]))
+    assert np.all(np.isnan(scan.samples[:, :, 2:]))
+
+
+def test_scan_notes_unresolved_lag_and_dropped_counts(sample_chain):
+    runs = sample_chain(true_chain(), 400, n_runs=5, seed=2)
+    runs[0] = np.concatenate([runs[0], [5]])  # 5: entered once, never left -> dropped at every lag
+    scan = lag_scan(runs, [1, 50], n_processes=1)
+    assert any("At lag(s) [50] frames the slowest timescale is shorter than the lag itself" in n for n in scan.notes)
+    share = 1 / sum(r.size - 1 for r in runs)
+    assert share < 0.01  # below the 1 % threshold of the note
+    assert not any("outside the largest connected set" in n for n in scan.notes)
+    assert scan.model(1).dropped_states.tolist() == [5]
+    tiny = [np.array([0, 1, 0, 1, 0, 1, 0, 2])]  # 1 of 7 counts dropped
+    scan = lag_scan(tiny, [1], n_processes=1)
+    assert any("14.3% dropped at lag 1" in n for n in scan.notes), scan.notes
+
+
+# --------------------------------------------------------------------------- the suggestion rule
+
+def test_suggest_lag_rules():
+    lags = np.array([1, 2, 4, 8])
+    nan = np.full((4, 1), np.nan)
+    flat = np.array([[20.0], [20.5], [19.8], [20.2]])
+    assert suggest_lag(lags, flat, nan, nan, dt=1.0, unit="ns")[0] == 1
+    rising = np.array([[10.0], [13.0], [16.0], [19.0]])
+    lag, reason = suggest_lag(lags, rising, nan, nan, dt=1.0, unit="ns")
+    assert lag is None and "keep changing" in reason and "no bootstrap intervals" in reason
+    levels = np.array([[10.0], [15.0], [19.6], [20.0]])
+    assert suggest_lag(lags, levels, nan, nan, dt=1.0, unit="ns")[0] == 4
+    # overlapping intervals count as agreement even beyond rtol
+    lo, hi = rising - 5, rising + 5
+    assert suggest_lag(lags, rising, lo, hi, dt=1.0, unit="ns")[0] == 1
+    fast = np.array([[0.5], [0.6], [0.7], [0.8]])
+    lag, reason = suggest_lag(lags, fast, nan, nan, dt=1.0, unit="ns")
+    assert lag is None and "nothing is resolved" in reason
+    lag, reason = suggest_lag(lags[:1], flat[:1], nan[:1], nan[:1], dt=1.0, unit="ns")
+    assert lag is None and "Only one lag was scanned" in reason
+
+
+# --------------------------------------------------------------------------- bad input
+
+@pytest.mark.parametrize("kw, message", [
+    ({"lags": []}, r"lags is empty"),
+    ({"lags": [0, 2]}, r"lags must be positive integers \(frames\), but got \[0\]"),
+    ({"lags": [1, 2.5]}, r"lags must be an integer, but got 2\.5"),
+    ({"lags": [1, 500]}, r"lags \[500\] are not shorter than the longest trajectory \(400 frames\)"),
+    ({"confidence": 1.0}, r"confidence must be strictly between 0 and 1"),
+    ({"n_samples": -1}, r"n_samples must be an integer not less than 0"),
+    ({"n_processes": 0}, r"n_processes must be an integer not less than 1"),
+    ({"unit": ""}, r"unit must be a non-empty string"),
+])
+def test_bad_input(sample_chain, kw, message):
+    runs = sample_chain(true_chain(), 400, n_runs=2, seed=0)
+    args = {"lags": [1, 2]}
+    args.update(kw)
+    with pytest.raises(InputError, match=message):
+        lag_scan(runs, **args)
+
+
+def test_lags_sorted_and_unique(sample_chain):
+    runs = sample_chain(true_chain(), 300, n_runs=5, seed=0)
+    assert lag_scan(runs, [4, 1, 4, 2], n_processes=1).lags.tolist() == [1, 2, 4]
+    assert lag_scan(runs, 3, n_processes=1).lags.tolist() == [3]
