@@ -20,8 +20,18 @@ from .modelfile import load_model, save_model
 from .reduce import TICA
 from .spectral import eigen_decomposition, implied_timescales, stationary_distribution
 from .states import Microstates, nearest_center
+from .validate import (CKResult, CrossValidation, LagFlow, chapman_kolmogorov, cross_validate, lag_flow,
+                       vamp2_score, vamp2_score_on)
 
 __all__ = sorted([
+    "vamp2_score_on",
+    "vamp2_score",
+    "lag_flow",
+    "cross_validate",
+    "chapman_kolmogorov",
+    "LagFlow",
+    "CrossValidation",
+    "CKResult",
     "DiagnosticWarning",
     "InputError",
     "LagScan",

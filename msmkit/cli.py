@@ -61,8 +61,9 @@ def _parse_lags(text: str) -> list[int]:
     return lags
 
 
-def summary_text(model, scan=None) -> str:
-    """A short plain-text report of a model (and of the scan that chose it)."""
+def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> str:
+    """A short plain-text report of a model, and of the scan, macrostates and Chapman-Kolmogorov
+    test that go with it when given."""
     lines = [
         "msmkit model summary",
         f"  states kept:       {model.n_states}"
@@ -81,6 +82,17 @@ def summary_text(model, scan=None) -> str:
         lines.append(f"  suggested lag:     {scan.suggested_lag}")
         lines.append(f"  reason:            {scan.reason}")
         lines += [f"  note: {n}" for n in scan.notes]
+    if macro is not None:
+        lines.append(f"  macrostates (PCCA+): {macro.n_sets}" + (f" -- {macro_reason}" if macro_reason else ""))
+        pops = macro.populations()
+        lines += [f"    {int(r.macrostate)}: population {r.population:.4f}, {len(r.states)} microstates"
+                  for r in pops.itertuples()]
+        mfpt = macro.mfpt_table()
+        lines.append(f"  mean first-passage times between macrostates [{model.unit}] (row -> column):")
+        lines += ["    " + line for line in mfpt.to_string(float_format=lambda v: f"{v:.4g}").splitlines()]
+    if ck is not None:
+        lines.append(f"  Chapman-Kolmogorov test: {'passed' if ck.passed else 'FAILED'}")
+        lines.append(f"    {ck.criterion}")
     if model.diagnostics:
         lines.append("  diagnostics:")
         lines += [f"    - {d}" for d in model.diagnostics]
@@ -151,6 +163,25 @@ def _write_scan_outputs(out: _Outputs, scan, chosen):
     return model
 
 
+def _validate(model, labels, args, out: _Outputs):
+    """Macrostates (suggested number), the Chapman-Kolmogorov test and the lag-flow view."""
+    from .plots import plot_chapman_kolmogorov, plot_lag_flow
+    from .validate import chapman_kolmogorov, lag_flow
+    n_sets, reason = model.suggest_macrostates()
+    n_sets = max(2, n_sets)
+    macro = model.macrostates(n_sets)
+    longest = max(len(r) for r in labels)
+    multiples = max(1, min(args.multiples, (longest - 1) // model.lag))
+    ck = chapman_kolmogorov(model, labels, n_sets=n_sets, multiples=multiples, n_samples=args.samples,
+                            seed=args.seed, progress=not args.quiet)
+    out.add_figure("chapman_kolmogorov.png", plot_chapman_kolmogorov(ck))
+    out.add_text("chapman_kolmogorov.csv", ck.table().to_csv(index=False))
+    out.add_figure("lag_flow.png", plot_lag_flow(lag_flow(ck)))
+    out.add_text("macrostates.csv", macro.populations().to_csv(index=False))
+    out.add_text("mfpt_macrostates.csv", macro.mfpt_table().to_csv())
+    return macro, reason, ck
+
+
 def cmd_demo(args) -> int:
     from . import demo
     from .modelfile import save_model
@@ -164,8 +195,10 @@ def cmd_demo(args) -> int:
     chosen = scan.suggested_lag if scan.suggested_lag is not None else int(scan.lags[len(scan.lags) // 2])
     out = _Outputs(args.out)
     model = _write_scan_outputs(out, scan, chosen)
+    macro, reason, ck = _validate(model, labels, args, out)
+    out.add_text("summary.txt", summary_text(model, scan, macro=macro, macro_reason=reason, ck=ck))
     with tempfile.TemporaryDirectory() as tmp:
-        path = save_model(model, Path(tmp) / "model.npz", **_extras(tica, micro))
+        path = save_model(model, Path(tmp) / "model.npz", memberships=macro.memberships, **_extras(tica, micro))
         out.files["model.npz"] = path.read_bytes()
     for p in out.write():
         _say(args, f"wrote {p}")
@@ -216,7 +249,13 @@ def cmd_scan(args) -> int:
 def cmd_info(args) -> int:
     from .modelfile import load_model
     model = load_model(args.model)
-    print(summary_text(model), end="")
+    macro, reason = None, ""
+    if model.n_states > 2:
+        n_sets, reason = model.suggest_macrostates()
+        if "memberships" in model.extras:
+            n_sets, reason = model.extras["memberships"].shape[1], "as stored with the model"
+        macro = model.macrostates(max(2, n_sets))
+    print(summary_text(model, macro=macro, macro_reason=reason), end="")
     meta = model.metadata
     if "created" in meta:
         print(f"  created:           {meta['created']} (msmkit {meta.get('package_version', '?')})")
@@ -272,6 +311,8 @@ def build_parser() -> argparse.ArgumentParser:
         sp.add_argument("--lags", default=default_lags, help=f"comma-separated lags in frames (default {default_lags})")
         sp.add_argument("--samples", type=int, default=20, help="bootstrap samples per lag (default 20; 0 = none)")
         sp.add_argument("--timescales", type=_positive_int, default=4, help="processes to follow (default 4)")
+        sp.add_argument("--multiples", type=_positive_int, default=4,
+                        help="Chapman-Kolmogorov test up to this multiple of the lag (default 4)")
 
     d = sub.add_parser("demo", help="run the whole job headless on the demo scenario",
                        description="Demo scenario -> TICA -> microstates -> lag scan -> chosen model; writes "

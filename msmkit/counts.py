@@ -58,7 +58,7 @@ def _prepare(labels, lag, n_states):
     return runs, lag, n_states
 
 
-def count_transitions(labels, lag, *, n_states=None, sliding=True) -> sp.csr_matrix:
+def count_transitions(labels, lag, *, n_states=None, sliding=True, client=None) -> sp.csr_matrix:
     """Count transitions between states at a lag time.
 
     Parameters
@@ -74,6 +74,9 @@ def count_transitions(labels, lag, *, n_states=None, sliding=True) -> sp.csr_mat
     sliding : bool, default True
         Count every pair (t, t + lag) (sliding window); otherwise only t = 0, lag, 2 lag, ...
         (strided, statistically independent counts for a Markov chain).
+    client : dask.distributed.Client, optional
+        Count each run on the cluster's workers and sum the matrices (needs the extra
+        ``dask``); the counts are identical to the in-memory result.
 
     Returns
     -------
@@ -89,37 +92,70 @@ def count_transitions(labels, lag, *, n_states=None, sliding=True) -> sp.csr_mat
            [1, 1]])
     """
     runs, lag, n_states = _prepare(labels, lag, n_states)
-    flat = _count_flat(runs, lag, n_states, sliding)
+    if client is not None:
+        from . import distributed as _dist
+
+        flat = _dist.count_flat(client, runs, lag, n_states, sliding)
+    else:
+        flat = _count_flat(runs, lag, n_states, sliding)
     return _flat_to_csr(flat, n_states)
 
 
-def _count_flat(runs, lag, n_states, sliding) -> np.ndarray:
-    """Counts of all runs as one flat vector of length n_states**2.
+#: Pair codes counted per histogram pass: bounds the temporary buffer to 32 MiB however many
+#: frames are counted (the int32 labels themselves take 4 bytes per frame).
+COUNT_BLOCK = 1 << 22
 
-    The pair codes of all runs are written into one preallocated buffer (two in-place passes per
-    run, no temporaries, no concatenation) and counted in one pass. Label trajectories of
-    molecular dynamics are sticky -- consecutive frames mostly keep their state, so consecutive
-    pair codes repeat -- and then the codes are run-length encoded first, which makes the
-    scattered histogram update (the costly part) several times shorter.
+
+def _count_flat(runs, lag, n_states, sliding) -> np.ndarray:
+    """Counts of all runs as one flat int64 vector of length n_states**2.
+
+    The pair codes are written into one preallocated buffer of at most :data:`COUNT_BLOCK`
+    entries (two in-place passes per piece of a run, no temporaries, no concatenation), which
+    is counted each time it fills, so the extra memory stays bounded for any number of frames.
+    Label trajectories of molecular dynamics are sticky -- consecutive frames mostly keep their
+    state, so consecutive pair codes repeat -- and then the codes are run-length encoded
+    first, which makes the scattered histogram update (the costly part) several times shorter.
     """
     step = 1 if sliding else lag
     sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
-    buf = np.empty(sum(sizes), dtype=np.intp)
+    size = n_states * n_states
+    buf = np.empty(min(sum(sizes), COUNT_BLOCK), dtype=np.intp)
+    total = None
     filled = 0
+
+    def flush():
+        nonlocal total, filled
+        if filled:
+            got = _histogram(buf[:filled], size)
+            total = got if total is None else total + got
+            filled = 0
+
     for run, m in zip(runs, sizes):
         if m == 0:
             continue
-        if run.min() < 0:
-            codes = _pair_codes(run, lag, n_states, sliding)
-            buf[filled:filled + codes.size] = codes
-            filled += codes.size
-            continue
-        view = buf[filled:filled + m]
-        np.multiply(run[:-lag:step], n_states, out=view, casting="unsafe")
-        np.add(view, run[lag::step], out=view, casting="unsafe")
-        filled += m
-    codes = buf[:filled]
-    size = n_states * n_states
+        unassigned = run.min() < 0
+        for lo in range(0, m, buf.size):
+            hi = min(m, lo + buf.size)
+            if filled + (hi - lo) > buf.size:
+                flush()
+            start = run[lo * step:(hi - 1) * step + 1:step]
+            end = run[lo * step + lag:(hi - 1) * step + lag + 1:step]
+            view = buf[filled:filled + (hi - lo)]
+            np.multiply(start, n_states, out=view, dtype=np.intp, casting="unsafe")
+            np.add(view, end, out=view, casting="unsafe")
+            if unassigned:  # leave out pairs with an end labelled -1
+                keep = (start >= 0) & (end >= 0)
+                kept = int(np.count_nonzero(keep))
+                view[:kept] = view[keep]
+                filled += kept
+            else:
+                filled += hi - lo
+    flush()
+    return np.zeros(size, dtype=np.int64) if total is None else total
+
+
+def _histogram(codes: np.ndarray, size: int) -> np.ndarray:
+    """np.bincount of ``codes`` as int64 of length ``size``, run-length encoded when sticky."""
     probe = codes[:RLE_PROBE]
     if probe.size > 1 and np.count_nonzero(probe[1:] != probe[:-1]) < RLE_CHANGE_FRACTION * (probe.size - 1):
         starts = np.flatnonzero(codes[1:] != codes[:-1])
@@ -127,7 +163,7 @@ def _count_flat(runs, lag, n_states, sliding) -> np.ndarray:
         lengths = np.diff(starts, prepend=0, append=codes.size)
         starts = np.concatenate(([0], starts))
         return np.bincount(codes[starts], weights=lengths, minlength=size).astype(np.int64)
-    return np.bincount(codes, minlength=size)
+    return np.bincount(codes, minlength=size).astype(np.int64, copy=False)
 
 
 def _flat_to_csr(flat: np.ndarray, n_states: int) -> sp.csr_matrix:
@@ -150,23 +186,31 @@ def run_count_rows(labels, lag, *, n_states=None, sliding=True, blocks_per_run=1
     """
     runs, lag, n_states = _prepare(labels, lag, n_states)
     blocks_per_run = check_int(blocks_per_run, "blocks_per_run", minimum=1)
-    data, indices, indptr = [], [], [0]
-    for run in runs:
-        n_pairs = max(run.size - lag, 0)
-        edges = np.linspace(0, n_pairs, blocks_per_run + 1).astype(np.intp)
-        for b in range(blocks_per_run):
-            start = int(edges[b])
-            if not sliding:  # stay on the strided grid t = 0, lag, 2 lag, ... of the whole run
-                start = -(-start // lag) * lag
-            piece = run[start: edges[b + 1] + lag] if edges[b + 1] > start else run[:0]
-            codes = _pair_codes(piece, lag, n_states, sliding)
-            u, c = np.unique(codes, return_counts=True)
-            indices.append(u)
-            data.append(c)
-            indptr.append(indptr[-1] + u.size)
-    rows = sp.csr_matrix((np.concatenate(data).astype(np.int64), np.concatenate(indices), np.asarray(indptr)),
-                         shape=(len(indptr) - 1, n_states * n_states))
-    return rows, n_states
+    return _stack_rows([_run_rows(run, lag, n_states, sliding, blocks_per_run) for run in runs],
+                            n_states), n_states
+
+
+def _run_rows(run, lag, n_states, sliding, blocks_per_run) -> list:
+    """The rows of one run for :func:`run_count_rows`: one (codes, counts) pair per block."""
+    out = []
+    n_pairs = max(run.size - lag, 0)
+    edges = np.linspace(0, n_pairs, blocks_per_run + 1).astype(np.intp)
+    for b in range(blocks_per_run):
+        start = int(edges[b])
+        if not sliding:  # stay on the strided grid t = 0, lag, 2 lag, ... of the whole run
+            start = -(-start // lag) * lag
+        piece = run[start: edges[b + 1] + lag] if edges[b + 1] > start else run[:0]
+        out.append(np.unique(_pair_codes(piece, lag, n_states, sliding), return_counts=True))
+    return out
+
+
+def _stack_rows(per_run, n_states) -> sp.csr_matrix:
+    """Stack the (codes, counts) blocks of :func:`_run_rows`, run after run, as CSR rows."""
+    pieces = [p for run in per_run for p in run]
+    indptr = np.concatenate([[0], np.cumsum([u.size for u, _ in pieces])]).astype(np.int64)
+    return sp.csr_matrix((np.concatenate([c for _, c in pieces]).astype(np.int64),
+                          np.concatenate([u for u, _ in pieces]), indptr),
+                         shape=(len(pieces), n_states * n_states))
 
 
 def connected_sets(counts) -> list[np.ndarray]:

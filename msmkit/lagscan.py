@@ -8,26 +8,21 @@ Prinz et al., J. Chem. Phys. 134, 174105 (2011): choosing the lag where timescal
 """
 from __future__ import annotations
 
-import math
-import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.sparse as sp
 
+from ._bootstrap import BLOCK_UNITS, MIN_RUNS_FOR_RUN_BOOTSTRAP  # noqa: F401  (re-exported constants)
+from ._bootstrap import fit_sample, percentile_interval, resampling_plan, sample_rows
+from ._bootstrap import progress_bar as _progress
+from ._bootstrap import unflatten as _unflatten
 from ._checks import as_label_trajectories, check_dt, check_int, check_probability, check_unit
-from .counts import largest_connected_set, run_count_rows
-from .errors import DiagnosticWarning, InputError
-from .estimate import estimate_transition_matrix
+from .counts import run_count_rows
+from .errors import InputError
 from .model import MarkovModel, fingerprint, model_from_counts, _now, _version
 from .spectral import eigen_decomposition, implied_timescales
 
 __all__ = ["LagScan", "lag_scan", "suggest_lag"]
-
-#: with fewer runs than this, the bootstrap resamples contiguous blocks instead of whole runs
-MIN_RUNS_FOR_RUN_BOOTSTRAP = 5
-#: target number of resampling units when blocks are used
-BLOCK_UNITS = 20
 
 
 @dataclass(eq=False)
@@ -106,7 +101,7 @@ class LagScan:
 def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: int = 5,
              reversible: bool = True, n_samples: int = 0, seed=None, confidence: float = 0.95,
              sliding: bool = True, n_states: int | None = None, n_slow: int = 2, rtol: float = 0.05,
-             progress: bool = False) -> LagScan:
+             progress: bool = False, client=None) -> LagScan:
     """Estimate models at several lags and report their implied timescales with uncertainty.
 
     Parameters
@@ -139,6 +134,10 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
         not overlap (and the only criterion when ``n_samples == 0``).
     progress : bool
         Show a progress bar.
+    client : dask.distributed.Client, optional
+        Count the runs on the cluster's workers and fit the bootstrap samples there, in batches
+        of samples as tasks (needs the extra ``dask``). The same seed gives the same samples
+        and the same timescales as in memory.
 
     Returns
     -------
@@ -160,16 +159,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     confidence = check_probability(confidence, "confidence")
     rng = np.random.default_rng(seed)
 
-    notes = []
-    blocks = 1
-    if len(runs) < MIN_RUNS_FOR_RUN_BOOTSTRAP and n_samples:
-        blocks = math.ceil(BLOCK_UNITS / len(runs))
-        notes.append(f"Only {len(runs)} run(s): the bootstrap resamples {blocks} contiguous blocks per run "
-                     f"instead of whole runs; blocks of one run are correlated, so the intervals may be "
-                     f"too narrow.")
-    n_units = len(runs) * blocks
-    weights = np.stack([np.bincount(rng.integers(0, n_units, n_units), minlength=n_units)
-                        for _ in range(n_samples)]) if n_samples else np.zeros((0, n_units))
+    blocks, weights, notes = resampling_plan(len(runs), n_samples, rng)
 
     L = len(lags)
     ts = np.full((L, n_processes), np.nan)
@@ -177,10 +167,21 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     models = {}
     metadata = {"labels_sha256": fingerprint(runs), "frames_per_run": [int(r.size) for r in runs],
                 "package_version": _version()}
+    remote = None
+    if client is not None:
+        from . import distributed as _dist
+        from .counts import _prepare
+
+        n_states = _prepare(runs, lags[0], n_states)[2]
+        remote = _dist.scatter_labels(client, runs)
     bar = _progress(L * (1 + n_samples), progress, "lag scan")
     try:
         for a, lag in enumerate(lags):
-            rows, n = run_count_rows(runs, lag, n_states=n_states, sliding=sliding, blocks_per_run=blocks)
+            if remote is not None:
+                n = n_states
+                rows = _dist.count_rows(client, remote, [r.size for r in runs], lag, n, sliding, blocks)
+            else:
+                rows, n = run_count_rows(runs, lag, n_states=n_states, sliding=sliding, blocks_per_run=blocks)
             full = _unflatten(np.asarray(rows.sum(axis=0)).ravel(), n)
             meta = dict(metadata, created=_now(),
                         parameters={"lag": int(lag), "dt": dt, "unit": unit, "reversible": bool(reversible),
@@ -194,7 +195,11 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
             if n_samples:
                 initial = np.zeros(n)
                 initial[model.states] = model.stationary_distribution
-                sampled = sp.csr_matrix(weights) @ rows  # (n_samples, n*n): all samples in one product
+                sampled = sample_rows(weights, rows)  # (n_samples, n*n): all samples in one product
+                if remote is not None:
+                    samples[a] = _dist.bootstrap_timescales(client, sampled, n, lag, dt, reversible,
+                                                            initial, n_processes, bar)
+                    continue
                 for b in range(n_samples):
                     got = _sample_timescales(sampled.getrow(b), n, lag, dt, reversible, initial, n_processes)
                     samples[a, b, :got.size] = got
@@ -203,11 +208,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
         bar.close()
 
     if n_samples:
-        lo, hi = 100 * (1 - confidence) / 2, 100 * (1 + confidence) / 2
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN slices -> NaN
-            lower = np.nanpercentile(samples, lo, axis=1)
-            upper = np.nanpercentile(samples, hi, axis=1)
+        lower, upper = percentile_interval(samples, confidence, axis=1)
     else:
         lower = np.full_like(ts, np.nan)
         upper = np.full_like(ts, np.nan)
@@ -240,25 +241,13 @@ def _check_lags(lags, runs) -> list[int]:
     return sorted(set(values))
 
 
-def _unflatten(flat, n) -> sp.csr_matrix:
-    nz = np.flatnonzero(flat)
-    return sp.csr_matrix((flat[nz], (nz // n, nz % n)), shape=(n, n))
-
-
 def _sample_timescales(row, n, lag, dt, reversible, initial, k) -> np.ndarray:
     """Timescales of one bootstrap sample given as a flattened count row; NaN-free, may be short."""
-    row = row.tocoo()
-    C = sp.csr_matrix((row.data, (row.col // n, row.col % n)), shape=(n, n))
-    keep = largest_connected_set(C) if C.nnz else np.empty(0, dtype=np.intp)
-    if keep.size < 2:
+    fit = fit_sample(_unflatten(row, n), reversible=reversible, initial=initial)
+    if fit is None:
         return np.empty(0)
-    Ck = C[keep][:, keep]
-    init = initial[keep]
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", DiagnosticWarning)
-        T, info = estimate_transition_matrix(Ck, reversible=reversible, return_info=True,
-                                             initial=init if np.all(init > 0) else None)
-    w = eigen_decomposition(T, info.stationary_distribution, reversible=reversible)
+    _, T, pi = fit
+    w = eigen_decomposition(T, pi, k=min(k + 1, T.shape[0]), reversible=reversible)
     return implied_timescales(w[1:k + 1], lag, dt)
 
 
@@ -268,9 +257,9 @@ def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow:
 
     A lag qualifies when (1) the slowest timescale exceeds the lag time there, and (2) at every
     larger scanned lag where it is still resolved, each of the ``n_slow`` slowest timescales
-    resolved at the candidate lag agrees with the value at the candidate: the bootstrap
-    intervals overlap, or the values differ by at most ``rtol`` relatively. At least one larger
-    lag must confirm it.
+    resolved at the candidate lag stays at the candidate's value: it lies inside the candidate's
+    bootstrap interval, or differs by at most ``rtol`` relatively. At least one larger lag must
+    confirm it.
 
     Returns
     -------
@@ -279,7 +268,8 @@ def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow:
     lags = np.asarray(lags)
     times = lags * dt
     has_ci = np.any(np.isfinite(lower))
-    how = (f"their {100 * confidence:g}% intervals overlap or they differ by at most {100 * rtol:g}%"
+    how = (f"each later value lies inside the {100 * confidence:g}% interval at the smaller lag or differs "
+           f"from it by at most {100 * rtol:g}%"
            if has_ci else f"they differ by at most {100 * rtol:g}% (no bootstrap intervals were computed)")
     if timescales.shape[0] < 2:
         return None, ("Only one lag was scanned: a lag can only be suggested where the timescales are seen "
@@ -300,7 +290,7 @@ def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow:
                 tb = timescales[b, p]
                 if p > 0 and not tb > times[b]:
                     continue  # a faster process that the larger lag no longer resolves
-                if not _agree(t0[p], tb, lower[a, p], upper[a, p], lower[b, p], upper[b, p], rtol):
+                if not _agree(t0[p], tb, lower[a, p], upper[a, p], rtol):
                     ok = False
                     break
             if not ok:
@@ -320,14 +310,16 @@ def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow:
                   f"Scan longer lags, refine the state definition, or collect more data.")
 
 
-def _agree(ta, tb, la, ua, lb, ub, rtol) -> bool:
+def _agree(ta, tb, la, ua, rtol) -> bool:
+    """Whether the timescale ``tb`` at a larger lag stays at the candidate's value ``ta``: inside
+    the candidate's interval [la, ua], or within ``rtol`` of it. (Overlapping intervals would be
+    too lenient: neighbouring lags share their data, so their intervals overlap even while the
+    timescale is still climbing.)"""
     if not (np.isfinite(ta) and np.isfinite(tb)):
         return False
     if abs(tb - ta) <= rtol * abs(ta):
         return True
-    if np.all(np.isfinite([la, ua, lb, ub])):
-        return not (ub < la or lb > ua)
-    return False
+    return bool(np.isfinite(la) and np.isfinite(ua) and la <= tb <= ua)
 
 
 def _scan_findings(lags, ts, models, dt, unit) -> list[str]:
@@ -342,8 +334,3 @@ def _scan_findings(lags, ts, models, dt, unit) -> list[str]:
         found.append(f"At {len(dropped)} lag(s) more than 1% of the counts fall outside the largest connected "
                      f"set (worst: {100 * (1 - worst[1]):.3g}% dropped at lag {worst[0]}).")
     return found
-
-
-def _progress(total, enabled, desc):
-    from tqdm.auto import tqdm
-    return tqdm(total=total, disable=not enabled, desc=desc, leave=False)

@@ -10,7 +10,8 @@ import io
 
 import numpy as np
 
-__all__ = ["figure_png", "plot_populations", "plot_timescales", "PALETTE"]
+__all__ = ["figure_png", "plot_chapman_kolmogorov", "plot_cross_validation", "plot_lag_flow", "plot_populations",
+           "plot_timescales", "PALETTE"]
 
 #: the project's colours for successive processes / series
 PALETTE = ("#0f5c8c", "#c44536", "#4d8b31", "#b5851b", "#6b4c9a", "#2f8f8f", "#8c5a3c", "#5a5a5a")
@@ -47,7 +48,7 @@ def figure_png(fig, dpi: int = 96) -> bytes:
 def plot_timescales(scan, *, processes=None, selected_lag=None, width=6.4, height=4.8):
     """Implied timescales against lag time, on log axes with physical units.
 
-    Shows each process with its bootstrap band, the line t = tau with the region below it shaded
+    Shows each process with the bootstrap band, the line t = tau with the region below it shaded
     (timescales there are faster than the lag and cannot be resolved), the suggested lag, and
     optionally the lag the user has chosen.
 
@@ -121,4 +122,375 @@ def plot_populations(model, *, temperature=None, max_states: int = 60, width=6.4
     right.set_ylabel(f"free energy [{unit}]", color=PALETTE[1])
     note = f" ({max_states} most populated of {len(df)})" if len(df) > max_states else ""
     ax.set_title(f"Populations at lag {model.lag_time:g} {model.unit}{note}", fontsize=10)
+    return fig
+
+
+# --------------------------------------------------------------------------- validation figures
+
+#: colour of the fixed point, lag-0 corner and other reference marks
+_INK = "#222222"
+
+
+def _verdict_colour(ok: bool) -> str:
+    return PALETTE[2] if ok else PALETTE[1]
+
+
+def plot_chapman_kolmogorov(ck, *, width=None, height=None):
+    """Chapman-Kolmogorov test: one panel per pair of sets (from row set to column set).
+
+    Each panel shows the probability predicted by powers of the model, T(tau)^k, as a line
+    starting at lag 0 (1 on the diagonal, 0 elsewhere), the estimates from the data at lag
+    k tau as markers with their bootstrap band (without bootstrap: a band of the tolerance around
+    them), a ring on the line at every prediction that fails the criterion, and a square around
+    estimates judged by the tolerance. Time in physical units; the verdict in the title.
+
+    Parameters
+    ----------
+    ck : CKResult
+    width, height : float, optional
+        Figure size in inches (default grows with the number of sets).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    m = ck.n_sets
+    width = width or min(2.3 * m + 1.4, 16.0)
+    height = height or min(1.9 * m + 1.5, 14.0)
+    fig = _figure_class()(figsize=(width, height), layout="constrained")
+    axes = fig.subplots(m, m, sharex=True, squeeze=False)
+    t = ck.lag_times
+    t0 = np.concatenate([[0.0], t])
+    conf = f"{100 * ck.confidence:g}%"
+    for a in range(m):
+        for b in range(m):
+            ax = axes[a, b]
+            est, lo, hi = ck.estimated[:, a, b], ck.lower[:, a, b], ck.upper[:, a, b]
+            ax.plot(t0, np.concatenate([[1.0 if a == b else 0.0], ck.predicted[:, a, b]]), color=PALETTE[0],
+                    lw=1.8, label="predicted from the model, T(τ)^k")
+            if np.any(np.isfinite(lo)):
+                ax.fill_between(t, lo, hi, color=PALETTE[1], alpha=0.2, lw=0,
+                                label=f"{conf} bootstrap interval of the estimate")
+            elif not ck.n_samples:
+                ax.fill_between(t, est - ck.tolerance, est + ck.tolerance, color=PALETTE[3], alpha=0.15, lw=0,
+                                label=f"estimate ± tolerance {ck.tolerance:g} (no bootstrap)")
+            ax.plot(t, est, ls="none", marker="o", ms=4.5, color=PALETTE[1], label="estimated from the data at lag kτ")
+            miss = ~ck.within[:, a, b] & np.isfinite(est)
+            if miss.any():
+                ax.plot(t[miss], ck.predicted[miss, a, b], ls="none", marker="o", ms=8, mfc="none", mec=_INK,
+                        mew=1.3, label="prediction outside the interval" if ck.n_samples else
+                        f"prediction off by more than {ck.tolerance:g}")
+            tol = ck.used_tolerance[:, a, b] & (ck.n_samples > 0)
+            if tol.any():
+                ax.plot(t[tol], est[tol], ls="none", marker="s", ms=9, mfc="none", mec=PALETTE[3], mew=1.2,
+                        label=f"too few data for an interval: judged within ±{ck.tolerance:g}")
+            ax.set_title(f"set {a} → set {b}", fontsize=8.5)
+            ax.grid(True, color="#e4e4e4", lw=0.6)
+            ax.tick_params(labelsize=7.5)
+            low, high = ax.get_ylim()
+            ax.set_ylim(max(low, -0.02), min(high, 1.02))
+            ax.set_xlim(0, t[-1] * 1.04)
+    for b in range(m):
+        axes[-1, b].set_xlabel(f"lag time [{ck.unit}]", fontsize=8.5)
+    for a in range(m):
+        axes[a, 0].set_ylabel("probability", fontsize=8.5)
+    verdict = "passed" if ck.passed else "failed"
+    fig.suptitle(f"Chapman–Kolmogorov test {verdict}: model at τ = {ck.lag * ck.dt:g} {ck.unit}, "
+                 f"k = 1…{len(t)}", fontsize=10.5, color=_verdict_colour(ck.passed))
+    handles = {}
+    for ax in axes.ravel():
+        for h, label in zip(*ax.get_legend_handles_labels()):
+            handles.setdefault(label, h)
+    fig.legend(list(handles.values()), list(handles.keys()), loc="outside lower center", ncols=2, fontsize=7.5,
+               frameon=False)
+    return fig
+
+
+def _merged_data_path(flows):
+    """Data points of several lag flows of the same sets, one per lag (frames), sorted by lag."""
+    seen = {}
+    for f in flows:
+        for i, lag in enumerate(f.lags):
+            seen.setdefault(int(lag), (f.estimated[i], f.lower[i], f.upper[i]))
+    lags = np.array(sorted(seen))
+    est = np.array([seen[x][0] for x in lags])
+    lo = np.array([seen[x][1] for x in lags])
+    hi = np.array([seen[x][2] for x in lags])
+    return lags, est, lo, hi
+
+
+def plot_lag_flow(flows, *, full_square=False, max_labels=8, width=6.0, height=6.2):
+    """The lag flow: (p_aa, p_bb) of two sets as the lag grows, data against model.
+
+    Draws, in the plane of the two self-transition probabilities, the data path (estimates at
+    each lag, with bootstrap intervals in both directions and arrows toward longer lags), the
+    path predicted by each model's powers T(tau)^k, dotted links between the predicted and
+    estimated points of the same lag, the corner (1, 1) at lag 0, the fixed point
+    (pi_a, pi_b) where every path ends, and the dashed straight line between them, the path of
+    a single relaxation process. Lag times are written beside the data points.
+
+    The view is framed on the paths. When the fixed point lies far outside (slow processes
+    followed over a short time), an arrow on the dashed line points toward it and the legend
+    gives the coordinates.
+
+    Parameters
+    ----------
+    flows : LagFlow or list of LagFlow
+        Several flows (e.g. models at different lags, same sets) share one data path and get
+        one predicted path each.
+    full_square : bool
+        Show the whole unit square instead of the region the paths cover.
+    max_labels : int
+        Largest number of lag-time labels written on the data path.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from .errors import InputError
+    flows = [flows] if hasattr(flows, "fixed_point") else list(flows)
+    if not flows or not all(hasattr(f, "fixed_point") for f in flows):
+        raise InputError("flows must be a LagFlow (from msmkit.lag_flow) or a list of them")
+    first = flows[0]
+    for f in flows[1:]:
+        same = (f.unit == first.unit and f.dt == first.dt and f.pair == first.pair
+                and all(np.array_equal(x, y) for x, y in zip(f.sets, first.sets)))
+        if not same:
+            raise InputError("flows must share the sets of states, dt and unit to be drawn together; build them "
+                             "with the same sets= (e.g. the macrostates of one model) from the same data")
+    a, b = first.pair
+    fp = first.fixed_point
+    unit = first.unit
+    fig, ax = _new_figure(width, height)
+    lags, est, lo, hi = _merged_data_path(flows)
+    has_ci = bool(np.any(np.isfinite(lo[1:])))
+    colours = [PALETTE[(0, 2, 4, 5, 6, 7, 3)[j % 7]] for j in range(len(flows))]
+
+    ax.plot([fp[0], 1.0], [fp[1], 1.0], ls="--", lw=1.1, color=UNRESOLVED, zorder=1,
+            label="path of a single relaxation process")
+    for f, colour in zip(flows, colours):
+        p = f.predicted
+        for i in range(1, len(f.lags)):
+            ax.plot([p[i, 0], f.estimated[i, 0]], [p[i, 1], f.estimated[i, 1]], ls=":", lw=0.8, color=_INK,
+                    alpha=0.6, zorder=2)
+        ax.plot(p[:, 0], p[:, 1], color=colour, lw=1.7, marker="o", ms=3.5, zorder=3,
+                label=f"model at τ = {f.lags[1] * f.dt:g} {unit}: T(τ)^k" + ("" if f.coincide else " (parts)"))
+    if has_ci:
+        xerr = np.abs(np.vstack([est[:, 0] - lo[:, 0], hi[:, 0] - est[:, 0]]))
+        yerr = np.abs(np.vstack([est[:, 1] - lo[:, 1], hi[:, 1] - est[:, 1]]))
+        crowded = len(lags) > 13
+        ax.errorbar(est[1:, 0], est[1:, 1], xerr=xerr[:, 1:], yerr=yerr[:, 1:], fmt="none", ecolor=PALETTE[1],
+                    elinewidth=0.7 if crowded else 0.9, capsize=0 if crowded else 2, alpha=0.45 if crowded else 0.8,
+                    zorder=4)
+    conf = f"{100 * first.ck.confidence:g}% bootstrap intervals" if has_ci else "no bootstrap"
+    ax.plot(est[:, 0], est[:, 1], lw=0.8, color=PALETTE[1], alpha=0.5, zorder=4)
+    ax.plot(est[1:, 0], est[1:, 1], ls="none", marker="D", ms=5, color=PALETTE[1], zorder=5,
+            label=f"data at each lag ({conf})")
+    ax.plot([1.0], [1.0], ls="none", marker="o", ms=8, mfc="white", mec=_INK, mew=1.3, zorder=6,
+            label="lag 0: each set occupied")
+    ax.plot([fp[0]], [fp[1]], ls="none", marker="*", ms=15, color=_INK, zorder=6,
+            label=f"fixed point (π{a}, π{b}) = ({fp[0]:.3g}, {fp[1]:.3g})")
+
+    if full_square:
+        low, high = np.zeros(2), np.ones(2)
+    else:
+        pts = [np.ones((1, 2)), est, *(f.predicted for f in flows)]
+        if has_ci:
+            pts += [lo, hi]
+        stack = np.vstack(pts)
+        low, high = np.nanmin(stack, axis=0), np.minimum(np.nanmax(stack, axis=0), 1.0)
+        with_fp = np.minimum(low, fp)
+        if np.all(1.0 - with_fp <= 4 * np.maximum(1.0 - low, 1e-3)):
+            low = with_fp  # the fixed point fits without shrinking the paths into a corner
+    pad = 0.06 * np.maximum(high - low, 1e-3) + 0.003
+    ax.set_xlim(max(0.0, low[0] - pad[0]), high[0] + pad[0])
+    ax.set_ylim(max(0.0, low[1] - pad[1]), high[1] + pad[1])
+    _point_off_view(ax, fp)
+    for f, colour in zip(flows, colours):
+        for i in range(len(f.lags) - 1):
+            _arrow(ax, f.predicted[i], f.predicted[i + 1], colour)
+    for i in range(len(lags) - 1):
+        _arrow(ax, est[i], est[i + 1], PALETTE[1])
+    _label_lags(ax, est[1:], lags[1:] * first.dt, unit, max_labels)
+    ax.set_xlabel(f"p{a}{a}(t): probability to be in set {a} a lag t after being there")
+    ax.set_ylabel(f"p{b}{b}(t): probability to be in set {b} a lag t after being there")
+    ok = all(f.coincide for f in flows)
+    ax.set_title(f"Lag flow of sets {a} and {b}: " + ("data and model paths coincide" if ok else "paths part"),
+                 fontsize=10, color=_verdict_colour(ok))
+    ax.grid(True, color="#e4e4e4", lw=0.6)
+    ax.legend(fontsize=7.5, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncols=2, frameon=False)
+    return fig
+
+
+def _fraction(ax, point):
+    """A data point in axis fractions (0..1 inside the view)."""
+    (x0, x1), (y0, y1) = ax.get_xlim(), ax.get_ylim()
+    return np.array([(point[0] - x0) / (x1 - x0), (point[1] - y0) / (y1 - y0)])
+
+
+def _point_off_view(ax, fp):
+    """When the fixed point is outside the view, an arrow along the line from (1, 1) toward it."""
+    target = _fraction(ax, fp)
+    if np.all((target >= 0) & (target <= 1)):
+        return
+    corner = _fraction(ax, (1.0, 1.0))
+    direction = target - corner
+    # where the line from the corner toward the fixed point leaves the view, stepped back a little
+    with np.errstate(divide="ignore", invalid="ignore"):
+        steps = np.where(direction < 0, (0.0 - corner) / direction, (1.0 - corner) / direction)
+    s = np.nanmin(np.where(steps > 0, steps, np.nan))
+    tip = corner + 0.97 * s * direction
+    tail = tip - 0.12 * direction / np.hypot(*direction)
+    ax.annotate("to the fixed point", xy=tip, xytext=tail, xycoords="axes fraction", textcoords="axes fraction",
+                fontsize=7.5, color=_INK, ha="left", va="bottom",
+                arrowprops=dict(arrowstyle="-|>", color=_INK, lw=1.1, mutation_scale=12))
+
+
+def _label_lags(ax, points, times, unit, max_labels):
+    """Write lag times beside the data points: the longest lag always, others where they do not
+    crowd an already labelled point (5 % of the axis span), at most ``max_labels``."""
+    span = np.array([np.diff(ax.get_xlim())[0], np.diff(ax.get_ylim())[0]])
+    chosen = []
+    for i in [len(points) - 1, *range(len(points) - 1)]:
+        if len(chosen) >= max_labels or not np.all(np.isfinite(points[i])):
+            continue
+        if all(np.hypot(*((points[i] - points[j]) / span)) > 0.05 for j in chosen):
+            chosen.append(i)
+    for i in chosen:
+        ax.annotate(f"{times[i]:g} {unit}", points[i], xytext=(6, -10), textcoords="offset points", fontsize=7,
+                    color=PALETTE[1])
+
+
+def _arrow(ax, start, end, colour):
+    """An arrow head in the middle of the segment start -> end (direction of increasing lag),
+    drawn only where the segment is long enough on screen (2 % of the view) to carry one."""
+    start, end = np.asarray(start, float), np.asarray(end, float)
+    if not (np.all(np.isfinite(start)) and np.all(np.isfinite(end))):
+        return
+    if np.hypot(*(_fraction(ax, end) - _fraction(ax, start))) < 0.02:
+        return
+    ax.annotate("", xy=start + 0.6 * (end - start), xytext=start + 0.4 * (end - start),
+                arrowprops=dict(arrowstyle="-|>", color=colour, lw=1.0, mutation_scale=10), zorder=5)
+
+
+def plot_cross_validation(cv, *, width=6.4, height=4.2):
+    """Cross-validated VAMP-2 scores: mean over folds with one standard deviation, per candidate.
+
+    Candidate numbers of microstates on the x axis (log scale when they span a factor of 8 or
+    more), one series per lag, the score of each fold as faint dots and the best candidate at
+    each lag ringed. Without candidate numbers of microstates the x axis is the lag time.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    fig, ax = _new_figure(width, height)
+    mean, spread = cv.mean, cv.spread
+    if cv.n_states is not None:
+        x = cv.n_states.astype(float)
+        for j, lag in enumerate(cv.lags):
+            colour = PALETTE[j % len(PALETTE)]
+            ax.plot(np.repeat(x, cv.scores.shape[-1]), cv.scores[:, j].ravel(), ls="none", marker=".", ms=4,
+                    color=colour, alpha=0.35)
+            ax.errorbar(x, mean[:, j], yerr=spread[:, j], color=colour, marker="o", ms=5, capsize=3, lw=1.5,
+                        label=f"lag {lag * cv.dt:g} {cv.unit}")
+            best = int(np.nanargmax(mean[:, j]))
+            ax.plot([x[best]], [mean[best, j]], ls="none", marker="o", ms=13, mfc="none", mec=colour, mew=1.5,
+                    label="highest mean" if j == 0 else None)
+        if x.max() / x.min() >= 8:
+            ax.set_xscale("log")
+        ax.set_xticks(x, [str(int(v)) for v in x])
+        ax.minorticks_off()
+        ax.set_xlabel("number of microstates")
+    else:
+        x = cv.lags * cv.dt
+        ax.plot(np.repeat(x, cv.scores.shape[-1]), cv.scores[0].ravel(), ls="none", marker=".", ms=4,
+                color=PALETTE[0], alpha=0.35)
+        ax.errorbar(x, mean[0], yerr=spread[0], color=PALETTE[0], marker="o", ms=5, capsize=3, lw=1.5,
+                    label="mean ± s.d. over folds")
+        ax.set_xlabel(f"lag time [{cv.unit}]")
+    ax.set_ylabel(f"VAMP-2 score on held-out runs (k = {cv.k})")
+    ax.set_title(f"Cross-validation over {cv.n_folds} folds of whole runs: mean ± s.d., dots = folds", fontsize=10)
+    ax.grid(True, color="#e4e4e4", lw=0.6)
+    ax.legend(fontsize=8, frameon=False)
+    return fig
+
+
+# --------------------------------------------------------------------------- microstates
+
+#: colour map of the density map (light = low free energy)
+STATE_MAP_COLOURS = "cividis_r"
+
+
+def plot_state_map(coords, centers, counts, *, names=("coordinate 1", "coordinate 2"), bins: int | None = None,
+                   width: float = 8.4, height: float = 3.6):
+    """Where the microstates sit, and how many frames each holds.
+
+    Left: minus the logarithm of the frame density over the first two coordinates, in kT
+    relative to the densest bin (a 1-D profile when there is one coordinate), with the
+    microstate centers on top. The density is that of the sampled frames, not reweighted to
+    equilibrium: where runs did not reach equilibrium the map shows sampling, not free energy.
+    Right: frames per microstate, sorted, on a log axis; sparsely visited states make noisy
+    transition estimates.
+
+    Parameters
+    ----------
+    coords : list of ndarray (n_frames, d)
+        The coordinates the states were made in, one array per run.
+    centers : ndarray (n_states, d)
+    counts : ndarray (n_states,)
+        Frames in each state.
+    names : tuple of str
+        Names of the coordinates (the first two are used).
+    bins : int, optional
+        Histogram bins per coordinate (default: from the number of frames, 20 to 80).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    x = np.concatenate([np.asarray(c)[:, :2] for c in coords])
+    centers = np.asarray(centers)
+    counts = np.asarray(counts)
+    if bins is None:
+        bins = int(np.clip(np.sqrt(len(x)) / 4, 20, 80))
+    fig = _figure_class()(figsize=(width, height), layout="constrained")
+    left, right = fig.subplots(1, 2, width_ratios=[1.45, 1])
+    if x.shape[1] >= 2:
+        hist, xe, ye = np.histogram2d(x[:, 0], x[:, 1], bins=bins)
+        with np.errstate(divide="ignore"):
+            energy = np.log(hist.max()) - np.log(hist)
+        energy[hist == 0] = np.nan
+        mesh = left.pcolormesh(xe, ye, energy.T, cmap=STATE_MAP_COLOURS, shading="flat", rasterized=True)
+        fig.colorbar(mesh, ax=left, label="−ln(frame density) [kT]", shrink=0.9)
+        left.scatter(centers[:, 0], centers[:, 1], s=9, c="white", edgecolors=PALETTE[1], linewidths=0.7,
+                     label="microstate centers", zorder=3)
+        left.set_xlabel(names[0])
+        left.set_ylabel(names[1] if len(names) > 1 else "")
+    else:
+        hist, edges = np.histogram(x[:, 0], bins=bins)
+        with np.errstate(divide="ignore"):
+            energy = np.log(hist.max()) - np.log(hist)
+        energy[hist == 0] = np.nan
+        left.plot(0.5 * (edges[1:] + edges[:-1]), energy, color=PALETTE[0], lw=1.6)
+        left.plot(centers[:, 0], np.zeros(len(centers)), "|", color=PALETTE[1], ms=12,
+                  label="microstate centers")
+        left.set_xlabel(names[0])
+        left.set_ylabel("−ln(frame density) [kT]")
+    left.set_title("Sampled frames (not reweighted) and state centers", fontsize=9.5)
+    left.legend(fontsize=7.5, loc="upper right", framealpha=0.8)
+
+    order = np.sort(counts)[::-1]
+    rank = np.arange(1, order.size + 1)
+    right.bar(rank, np.maximum(order, 0.8), width=1.0, color=PALETTE[0], lw=0)
+    right.set_yscale("log")
+    right.set_xlim(0.5, order.size + 0.5)
+    right.set_xlabel("microstates, most visited first")
+    right.set_ylabel("frames")
+    right.set_title(f"Frames per state\nmin {int(order.min())} · median {int(np.median(order))} · "
+                    f"max {int(order.max())}", fontsize=9.5)
+    right.axhline(max(np.median(order), 0.8), color=PALETTE[3], lw=1, ls="--", label="median")
+    right.legend(fontsize=7.5, loc="upper right", framealpha=0.8)
+    right.set_axisbelow(True)
+    right.grid(True, axis="y", color="#dddddd", lw=0.6)
     return fig

@@ -205,9 +205,10 @@ def test_suggest_lag_rules():
     assert lag is None and "keep changing" in reason and "no bootstrap intervals" in reason
     levels = np.array([[10.0], [15.0], [19.6], [20.0]])
     assert suggest_lag(lags, levels, nan, nan, dt=1.0, unit="ns")[0] == 4
-    # overlapping intervals count as agreement even beyond rtol
-    lo, hi = rising - 5, rising + 5
-    assert suggest_lag(lags, rising, lo, hi, dt=1.0, unit="ns")[0] == 1
+    # a later value inside the candidate's interval counts as agreement even beyond rtol ...
+    assert suggest_lag(lags, rising, rising - 10, rising + 10, dt=1.0, unit="ns")[0] == 1
+    # ... but merely overlapping intervals do not: with +-5, 16 leaves [5, 15] and 19 leaves [8, 18]
+    assert suggest_lag(lags, rising, rising - 5, rising + 5, dt=1.0, unit="ns")[0] == 4
     fast = np.array([[0.5], [0.6], [0.7], [0.8]])
     lag, reason = suggest_lag(lags, fast, nan, nan, dt=1.0, unit="ns")
     assert lag is None and "nothing is resolved" in reason
