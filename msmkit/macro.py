@@ -378,6 +378,9 @@ def suggest_n_macrostates(eigenvalues, *, max_sets: int = 10, min_timescale: flo
     t = _timescales_steps(lam)
     top = min(int(max_sets), t.size - 1)
     candidates = [n for n in range(2, top + 1) if t[n - 1] > min_timescale]
+    if not candidates and t.size == 2 and max_sets >= 2 and t[1] > min_timescale:
+        return 2, (f"the model has a single slow process ({_fmt_time(t[1], time_per_step, unit)}), "
+                   f"which lies between two macrostates")
     if not candidates:
         if t.size < 2:
             return 1, "only the stationary eigenvalue was given, so there is no process to split by"

@@ -297,3 +297,13 @@ def test_bad_input():
     with pytest.raises(InputError, match="temperature"):
         macro.populations(temperature=-1)
     assert isinstance(macro, Macrostates)
+
+
+def test_two_state_model_suggests_two_macrostates():
+    # A two-state chain has one relaxation process, -1/ln(1 - a - b) steps (analytic, common
+    # practice); it lies between the two states, so two macrostates are the only sensible split.
+    a, b = 0.01, 0.02
+    lam = [1.0, 1.0 - a - b]
+    n, reason = suggest_n_macrostates(lam, time_per_step=1.0, unit="ns")
+    assert n == 2
+    assert f"{-1 / np.log(1 - a - b):.3g} ns" in reason
