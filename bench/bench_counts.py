@@ -33,7 +33,7 @@ def main():
     ap.add_argument("--runs", type=int, default=100)
     ap.add_argument("--states", type=int, default=1000)
     ap.add_argument("--lag", type=int, default=10)
-    ap.add_argument("--stay", type=float, default=0.95, help="probability that a frame keeps its state")
+    ap.add_argument("--stay", type=float, default=0.95, help="probability that a frame keeps the state")
     a = ap.parse_args()
     rng = np.random.default_rng(0)
     per = int(a.frames) // a.runs

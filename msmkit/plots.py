@@ -11,6 +11,7 @@ import io
 import numpy as np
 
 __all__ = ["figure_png", "plot_chapman_kolmogorov", "plot_cross_validation", "plot_lag_flow", "plot_populations",
+           "plot_state_map",
            "plot_timescales", "PALETTE"]
 
 #: the project's colours for successive processes / series

@@ -1,7 +1,8 @@
 """The workbench in a real JupyterLab, driven in headless Chromium by Playwright.
 
 Opens example_notebooks/01_workbench.ipynb, runs it, clusters, scans, moves the lag slider with
-the keyboard, checks that the plot and the table changed, saves, and loads the saved file.
+the keyboard, checks that the plot and the table changed, saves, runs the Chapman-Kolmogorov test
+(a verdict in words must appear), and loads the saved file.
 
 With CI=true this test must run: a missing Chromium or Playwright is a failure, not a skip.
 """
@@ -202,6 +203,15 @@ def test_workbench_in_jupyterlab(lab):
             page.locator(".msmkit-save-button").click()
             page.wait_for_function("() => document.querySelector('.msmkit-save-status').innerText.includes('Saved')")
             _shot(page, "3-populations")
+
+            # Step 4: run the Chapman-Kolmogorov test; a verdict in words and the figure appear.
+            page.locator(".msmkit-steps .lm-TabBar-tab", has_text="Validate").click()
+            page.locator(".msmkit-validate-button").click()
+            page.wait_for_function(
+                "() => /(Passed|Failed):/.test(document.querySelector('.msmkit-ck-verdict').innerText)")
+            page.locator(".msmkit-ck-plot .jp-RenderedImage img").wait_for(state="visible")
+            assert "msmkit-error" not in page.locator(".msmkit-validate-status").inner_html()
+            _shot(page, "4-validate")
         finally:
             browser.close()
             for session in _api(lab.base, lab.token, "/api/sessions") or []:

@@ -326,3 +326,215 @@ def test_css_hooks_for_browser_tests(wb):
 def test_importing_msmkit_does_not_import_ipywidgets():
     code = "import sys, msmkit; assert 'ipywidgets' not in sys.modules, 'ipywidgets imported'"
     subprocess.run([sys.executable, "-c", code], check=True)
+
+
+# -- step 4: validation ------------------------------------------------------------------------
+# The reference for every number is the public function the panel calls: chapman_kolmogorov and
+# lag_flow (msmkit.validate), model.suggest_macrostates.
+
+CK_MULTIPLES = 3
+CK_SAMPLES = 6
+
+
+def test_validate_button_gives_the_public_ck_test(wb):
+    from msmkit.validate import chapman_kolmogorov, lag_flow
+
+    model = wb.select_lag(LAGS[2])
+    panel = wb.validation_panel
+    assert panel.ck is None and wb.ck is None  # a new model has no test yet
+    suggested, reason = model.suggest_macrostates()
+    n_sets = max(suggested, 2)
+    assert panel.n_sets.field.value == n_sets
+    assert html.escape(reason) in panel.n_sets.reason.value
+
+    panel.multiples.value, panel.n_samples.value = CK_MULTIPLES, CK_SAMPLES
+    panel.run_button.click()
+    ck = wb.ck
+    assert ck is not None and ck is panel.ck, status_text(panel.status)
+    want = chapman_kolmogorov(model, wb.labels, n_sets=n_sets, multiples=CK_MULTIPLES, n_samples=CK_SAMPLES,
+                              seed=0)
+    for name in ("predicted", "estimated", "lower", "upper"):
+        np.testing.assert_allclose(getattr(ck, name), getattr(want, name), equal_nan=True, err_msg=name)
+    pd.testing.assert_frame_equal(ck.table(), want.table())
+    assert ck.passed == want.passed
+    verdict = status_text(panel.verdict)
+    assert want.criterion in verdict
+    assert verdict.count("Passed:" if want.passed else "Failed:") == 1
+    assert ("msmkit-ok" if want.passed else "msmkit-failed") in panel.verdict.value
+    assert ("passed" if want.passed else "failed") in status_text(panel.status)
+    assert png_of(panel.ck_plot)[:4] == b"\x89PNG"
+
+    flow = lag_flow(want, pair=(0, 1))
+    np.testing.assert_allclose(panel.flow.estimated, flow.estimated)
+    np.testing.assert_allclose(panel.flow.predicted, flow.predicted)
+    assert html.escape(flow.summary) in panel.flow_summary.value
+    first_png = png_of(panel.flow_plot)
+    assert panel.pair.value == (0, 1)
+    assert [v for _, v in panel.pair.first.options] == list(range(n_sets))
+
+    # another pair: drawn from the same test, without running it again
+    other = n_sets - 1 if n_sets > 2 else 1
+    panel.pair.first.value = other
+    panel.pair.second.value = 0
+    assert panel.flow.pair == (other, 0) and panel.ck is ck
+    np.testing.assert_allclose(panel.flow.estimated, lag_flow(want, pair=(other, 0)).estimated)
+    assert png_of(panel.flow_plot) != first_png
+
+
+def test_validate_method_errors_and_new_models(wb, trajs):
+    from msmkit.validate import chapman_kolmogorov
+
+    model = wb.select_lag(LAGS[1])
+    panel = wb.validation_panel
+    ck = wb.validate(n_sets=2, multiples=2, n_samples=0)
+    assert ck is wb.ck and panel.n_sets.field.value == 2 and panel.n_samples.value == 0
+    want = chapman_kolmogorov(model, wb.labels, n_sets=2, multiples=2, n_samples=0, seed=0)
+    np.testing.assert_allclose(ck.estimated, want.estimated)
+    assert ck.criterion == want.criterion  # judged by the tolerance without bootstrap
+
+    # bad settings: an InputError from the method, a message in the panel, the last result kept
+    with pytest.raises(InputError, match="multiples"):
+        wb.validate(multiples=10 ** 5)
+    assert "multiples=100000" in status_text(panel.status)
+    assert panel.progress_bar.bar_style == "danger" and wb.ck is ck
+    panel.n_sets.field.value = 10 ** 3
+    panel.run_button.click()
+    assert "n_sets" in status_text(panel.status) and wb.ck is ck
+    panel.n_sets.field.value = 2
+    panel.pair.first.value = 1  # the same set twice
+    assert "two different sets" in status_text(panel.status)
+
+    # a new model drops the result; the number of sets follows each model's suggestion until
+    # another number is entered, and keeps that number until the suggestion is entered again
+    count = panel.n_sets
+    other = count.suggested + 1
+    count.field.value = other
+    wb.select_lag(LAGS[0])
+    assert wb.ck is None and panel.verdict.value == "" and panel.ck_plot.outputs == ()
+    assert count.field.value == other and not count.follows
+    count.field.value = count.suggested
+    assert count.follows
+    wb.select_lag(LAGS[2])
+    assert count.field.value == max(wb.model.suggest_macrostates()[0], 2)
+
+    bench = Workbench(trajs, n_states=6, lags=[1], n_samples=0, progress=False)
+    bench.validation_panel.run_button.click()
+    assert "no model to test" in status_text(bench.validation_panel.status)
+    with pytest.raises(InputError, match="no model"):
+        bench.validate()
+
+
+# -- step 5: kinetics --------------------------------------------------------------------------
+# References: model.macrostates (PCCA+), model.mfpt_matrix (Kemeny & Snell first-passage times),
+# model.reactive_flux (transition path theory) and its pathways_table.
+
+def test_kinetics_button_gives_the_public_numbers(wb):
+    model = wb.select_lag(LAGS[2])
+    panel = wb.kinetics_panel
+    assert wb.macrostates is None
+    n_sets = panel.n_sets.field.value
+    assert n_sets == max(model.suggest_macrostates()[0], 2)
+    panel.compute_button.click()
+    res = panel.result
+    assert res is not None, status_text(panel.status)
+    assert "msmkit-error" not in panel.status.value
+
+    macro = model.macrostates(n_sets)
+    np.testing.assert_allclose(wb.macrostates.memberships, macro.memberships)
+    pd.testing.assert_frame_equal(res.populations, macro.populations())
+    mfpt = model.mfpt_matrix(macro.sets)
+    for row in res.passage.itertuples():
+        a, b = row.from_macrostate, row.to_macrostate
+        np.testing.assert_allclose(row.mfpt, mfpt[a, b], rtol=1e-12)
+        np.testing.assert_allclose(row.rate, model.reactive_flux(macro.sets[a], macro.sets[b]).rate, rtol=1e-12)
+    assert len(res.passage) == n_sets * (n_sets - 1)
+    assert f"{mfpt[0, 1]:.4g}" in panel.passage_html.value and f"({model.unit})" in panel.passage_html.value
+    assert f"{macro.populations()['population'][0]:.4g}" in panel.populations_html.value
+
+    flux = model.reactive_flux(macro.sets[0], macro.sets[1])
+    assert (res.source, res.target) == (0, 1)
+    np.testing.assert_allclose(res.flux.rate, flux.rate, rtol=1e-12)
+    pd.testing.assert_frame_equal(res.pathways, flux.pathways_table(0.9, max_paths=20))
+    assert f"rate {flux.rate:.4g} per {model.unit}" in status_text(panel.flux_summary)
+    top = res.pathways["states"].iloc[0]
+    assert " → ".join(str(s) for s in top) in status_text(panel.pathways_html)
+
+    # choosing another pair recomputes the flux only
+    panel.pair.first.value, panel.pair.second.value = 1, 0
+    assert (panel.result.source, panel.result.target) == (1, 0)
+    assert panel.result.macrostates is res.macrostates
+    back = model.reactive_flux(macro.sets[1], macro.sets[0])
+    np.testing.assert_allclose(panel.result.flux.rate, back.rate, rtol=1e-12)
+    panel.max_paths.value = 3
+    assert len(panel.result.pathways) <= 3
+    pd.testing.assert_frame_equal(panel.result.pathways, back.pathways_table(0.9, max_paths=3))
+
+
+def test_kinetics_method_errors_and_saved_memberships(wb, tmp_path):
+    model = wb.select_lag(LAGS[2])
+    res = wb.kinetics(n_sets=2, source=1, target=0, max_paths=5)
+    assert wb.macrostates is res.macrostates and res.macrostates.n_sets == 2
+    macro = model.macrostates(2)
+    np.testing.assert_allclose(res.flux.rate, model.reactive_flux(macro.sets[1], macro.sets[0]).rate, rtol=1e-12)
+    assert "2 macrostates" in status_text(wb.saver.status)
+
+    path = wb.save(tmp_path / "with_sets.npz")
+    loaded = mk.load_model(path)
+    np.testing.assert_allclose(loaded.extras["memberships"], res.macrostates.memberships)
+    with np.load(path, allow_pickle=False) as data:
+        assert json.loads(str(data["metadata"]))["preparation"]["macrostates"]["n_sets"] == 2
+    assert "memberships of 2 macrostates" in status_text(wb.saver.status)
+
+    panel = wb.kinetics_panel
+    with pytest.raises(InputError, match="two different macrostates"):
+        wb.kinetics(source=0, target=0)
+    assert "two different macrostates" in status_text(panel.status)
+    with pytest.raises(InputError, match="source must be an integer not greater than 1"):
+        wb.kinetics(n_sets=2, source=5)
+    assert wb.macrostates is res.macrostates  # the last good result stays
+    panel.fraction.value = 1.5
+    assert "fraction must be a number in (0, 1]" in status_text(panel.status)
+    panel.fraction.value = 0.9
+    panel.n_sets.field.value = 10 ** 4
+    panel.compute_button.click()
+    assert "n_sets" in status_text(panel.status) and panel.progress_bar.bar_style == "danger"
+    panel.n_sets.field.value = 2
+
+    # a new model drops the macrostates: they would not fit it, and are not saved with it
+    wb.select_lag(LAGS[1])
+    assert wb.macrostates is None and panel.pathways_html.value == ""
+    path = wb.save(tmp_path / "without_sets.npz")
+    assert "memberships" not in mk.load_model(path).extras
+
+
+def test_new_steps_have_browser_hooks(wb):
+    hooks = {
+        "msmkit-validate-button": wb.validation_panel.run_button,
+        "msmkit-ck-verdict": wb.validation_panel.verdict,
+        "msmkit-ck-plot": wb.validation_panel.ck_plot,
+        "msmkit-lag-flow-plot": wb.validation_panel.flow_plot,
+        "msmkit-kinetics-button": wb.kinetics_panel.compute_button,
+        "msmkit-pathways-table": wb.kinetics_panel.pathways_html,
+        "msmkit-passage-table": wb.kinetics_panel.passage_html,
+    }
+    for cls, widget in hooks.items():
+        assert cls in widget._dom_classes, cls
+    assert wb.tabs.titles[3:5] == ("4 · Validate", "5 · Kinetics")
+
+
+def test_new_panels_work_on_their_own(reference):
+    from msmkit.validate import chapman_kolmogorov
+    from msmkit.widgets import KineticsPanel, ValidationPanel
+
+    _, micro, scan = reference
+    model = scan.model(LAGS[1])
+    panel = ValidationPanel(model, micro.labels_, multiples=2, n_samples=0, progress=False)
+    ck = panel.run(n_sets=2)
+    want = chapman_kolmogorov(model, micro.labels_, n_sets=2, multiples=2, n_samples=0)
+    np.testing.assert_allclose(ck.estimated, want.estimated)
+    kin = KineticsPanel(model, n_sets=2, progress=False)
+    assert kin.n_sets.field.value == 2 and not kin.n_sets.follows  # a number given is kept
+    res = kin.compute(target=0)  # the source defaults to the other macrostate
+    assert (res.source, res.target) == (1, 0)
+    np.testing.assert_allclose(res.passage["mfpt"], model.mfpt_matrix(model.macrostates(2).sets)[[0, 1], [1, 0]],
+                               rtol=1e-12)

@@ -8,9 +8,11 @@ a public function a script could call too.
 >>> from msmkit.widgets import Workbench                             # doctest: +SKIP
 >>> Workbench(demo.trajectories(seed=0), dt=demo.DT, unit=demo.UNIT)  # doctest: +SKIP
 """
+from .kinetics import KineticsPanel
 from .lags import LagPanel
 from .populations import PopulationsPanel
 from .states import StatesPanel
+from .validate import ValidationPanel
 from .workbench import Workbench
 
-__all__ = sorted(["LagPanel", "PopulationsPanel", "StatesPanel", "Workbench"])
+__all__ = sorted(["KineticsPanel", "LagPanel", "PopulationsPanel", "StatesPanel", "ValidationPanel", "Workbench"])

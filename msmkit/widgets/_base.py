@@ -6,13 +6,14 @@ import contextlib
 import re
 import warnings
 
-from .._checks import require_optional
+from .._checks import check_int, require_optional
 from ..errors import InputError
 from . import _render
 
 widgets = require_optional("ipywidgets", "lab", "The msmkit workbench")
 
-__all__ = ["FileRow", "Step", "action", "on_click", "parse_int_list", "report", "widgets"]
+__all__ = ["FileRow", "MacrostateCount", "SetPair", "Step", "action", "on_click", "parse_int_list", "report",
+           "widgets"]
 
 #: width of the descriptions in front of the input fields
 DESCRIPTION_WIDTH = "170px"
@@ -217,3 +218,114 @@ class FileRow(widgets.VBox):
         self.status.add_class("msmkit-status")
         self.status.add_class(f"{css_class}-status")
         super().__init__([widgets.HBox([self.name, self.overwrite, self.button]), self.status])
+
+
+class MacrostateCount:
+    """The number of macrostates: a field preset to the model's suggestion, and the reason in
+    an HTML widget (a panel places both).
+
+    The field follows the suggestion of each new model (:meth:`MarkovModel.suggest_macrostates`)
+    until a number other than the current suggestion is entered (typed, or given to a method);
+    it keeps that number until the suggestion is entered again.
+    """
+
+    def __init__(self, css_class: str, value=None):
+        self.field = field(widgets.IntText, 2 if value is None else int(value), "macrostates",
+                           "Number of PCCA+ macrostates (sets of states); preset to the suggestion "
+                           "from the gap in the model's timescales")
+        self.field.add_class(css_class)
+        self.reason = widgets.HTML()
+        self.reason.add_class(f"{css_class}-reason")
+        self.suggested = None
+        self.follows = value is None
+        self._presetting = False
+        self.field.observe(self._entered, names="value")
+
+    def _entered(self, change):
+        if not self._presetting:
+            self.follows = change["new"] == self.suggested
+
+    def update(self, model) -> None:
+        """Show the suggestion for ``model`` (None: nothing), and preset the field to it unless
+        another number was entered."""
+        if model is None:
+            self.reason.value = ""
+            return
+        n, reason = model.suggest_macrostates()
+        preset = min(max(n, 2), model.n_states)
+        self.suggested = preset
+        if self.follows:
+            self._presetting = True
+            try:
+                self.field.value = preset
+            finally:
+                self._presetting = False
+        text = f"Suggested: {n} macrostate{'' if n == 1 else 's'}, because {reason}."
+        if n < 2:
+            text += f" At least two sets are needed to compare, so the field is preset to {preset}."
+        self.reason.value = _render.message_html(text, "info")
+
+    def get(self, value, model, name: str = "n_sets") -> int:
+        """The number to use: ``value`` when given (it replaces the field), else the field's."""
+        if value is not None:
+            set_value(self.field, check_int(value, name, minimum=2), name)
+        return check_int(self.field.value, name, minimum=2, maximum=model.n_states)
+
+
+class SetPair(widgets.HBox):
+    """Two dropdowns that choose two different sets (macrostates) by their index.
+
+    Empty and disabled until :meth:`set_sets` gives the sets; ``on_change(a, b)`` is called when
+    a person changes either choice (not when the options are replaced).
+    """
+
+    def __init__(self, first: str, second: str, css_class: str, on_change, tooltip: str = ""):
+        self.first = field(widgets.Dropdown, None, first, tooltip, width="330px", options=[])
+        self.second = field(widgets.Dropdown, None, second, tooltip, width="330px", options=[])
+        self.first.add_class(f"{css_class}-first")
+        self.second.add_class(f"{css_class}-second")
+        self._on_change = on_change
+        self._syncing = False
+        for w in (self.first, self.second):
+            w.observe(self._changed, names="value")
+        super().__init__([self.first, self.second])
+        self.add_class(css_class)
+        self.clear()
+
+    @property
+    def value(self):
+        """The chosen pair (a, b) of set indices (None before the sets exist)."""
+        return None if not self.first.options else (self.first.value, self.second.value)
+
+    def set_sets(self, populations, pair) -> None:
+        """Offer sets 0..m-1 (labelled with their populations) and choose ``pair``."""
+        options = [(f"{j} (population {p:.3g})", j) for j, p in enumerate(populations)]
+        self._syncing = True
+        try:
+            for w in (self.first, self.second):
+                w.options = options
+                w.disabled = False
+        finally:
+            self._syncing = False
+        self.choose(pair)
+
+    def choose(self, pair) -> None:
+        """Select ``pair`` (indices among the offered sets) without calling ``on_change``."""
+        self._syncing = True
+        try:
+            self.first.value, self.second.value = int(pair[0]), int(pair[1])
+        finally:
+            self._syncing = False
+
+    def clear(self) -> None:
+        self._syncing = True
+        try:
+            for w in (self.first, self.second):
+                w.options = []
+                w.disabled = True
+        finally:
+            self._syncing = False
+
+    def _changed(self, change):
+        if not self._syncing and self.first.options:
+            self._on_change(self.first.value, self.second.value)

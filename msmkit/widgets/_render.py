@@ -31,6 +31,7 @@ _KINDS = {
     "ok": ("#4d8b31", "#f0f7ec", ""),
     "warning": ("#b5851b", "#fcf6e8", "Warning"),
     "error": ("#c44536", "#fbeeec", "Could not do that"),
+    "failed": ("#c44536", "#fbeeec", ""),  # a result that fails a test (not an error of use)
 }
 
 
@@ -58,7 +59,7 @@ def clear(out) -> None:
 
 
 def message_html(lines, kind: str = "info") -> str:
-    """A boxed message (``kind`` one of info, ok, warning, error); ``lines`` is a string or a
+    """A boxed message (``kind`` one of info, ok, warning, error, failed); ``lines`` is a string or a
     list of strings, shown escaped, one paragraph or bullet each."""
     if isinstance(lines, str):
         lines = [lines]

@@ -7,11 +7,11 @@ import traitlets
 from .._checks import as_float_trajectories, check_int, feature_names_of
 from ..errors import InputError
 from ..io import TrajectorySet, default_feature_names
+from ..plots import plot_state_map
 from ..reduce import TICA
 from ..states import Microstates
 from . import _render
 from ._base import DESCRIPTION_WIDTH, Step, button, field, set_value, widgets
-from ._figures import plot_state_map
 
 __all__ = ["StatesPanel"]
 

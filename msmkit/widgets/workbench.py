@@ -4,24 +4,30 @@ from __future__ import annotations
 import dataclasses
 from pathlib import Path
 
+import numpy as np
+
 from .._checks import check_dt, check_unit
 from ..errors import InputError
 from . import _render
 from ._base import FileRow, action, on_click, report, widgets
 from ._render import frames
+from .kinetics import KineticsPanel
 from .lags import LagPanel, default_lags
 from .populations import PopulationsPanel
 from .states import StatesPanel
+from .validate import ValidationPanel
 
 __all__ = ["Workbench"]
 
 
 class Workbench(widgets.VBox):
-    """From trajectories to a saved Markov model: microstates, lag choice, populations, save.
+    """From trajectories to a saved Markov model: microstates, lag choice, populations,
+    validation, kinetics, save.
 
     Each step is a panel in a tab; the save row below the tabs writes the chosen model. Every
     button is also a method (:meth:`make_states`, :meth:`scan`, :meth:`select_lag`,
-    :meth:`save`), and the chosen model is :attr:`model`.
+    :meth:`validate`, :meth:`kinetics`, :meth:`save`); the chosen model is :attr:`model`, the
+    last Chapman-Kolmogorov test :attr:`ck` and the macrostates :attr:`macrostates`.
 
     Parameters
     ----------
@@ -36,6 +42,12 @@ class Workbench(widgets.VBox):
         Starting settings of the lag step (see :class:`LagPanel`).
     temperature : float or None, default 300.0
         Kelvin, for free energies in kJ/mol.
+    n_sets : int, optional
+        Number of macrostates of the validation and kinetics steps (default: the model's
+        suggestion).
+    multiples, ck_samples
+        Lag multiples and bootstrap samples of the Chapman-Kolmogorov test (see
+        :class:`ValidationPanel`).
     file_name : str
         Default name of the saved model file.
     progress : bool, default True
@@ -49,8 +61,9 @@ class Workbench(widgets.VBox):
 
     def __init__(self, trajs, *, dt=None, unit=None, features=None, use_tica: bool = True, tica_lag: int = 10,
                  tica_dim: int = 2, n_states: int = 100, method: str = "kmeans", stride: int = 1, seed: int = 0,
-                 lags=None, n_processes: int = 4, n_samples: int = 20, temperature=300.0,
-                 file_name: str = "msmkit_model.npz", progress: bool = True):
+                 lags=None, n_processes: int = 4, n_samples: int = 20, temperature=300.0, n_sets=None,
+                 multiples: int = 5, ck_samples: int = 20, file_name: str = "msmkit_model.npz",
+                 progress: bool = True):
         super().__init__()
         self.add_class("msmkit-workbench")
         dt = dt if dt is not None else (getattr(trajs, "dt", None) or 1.0)
@@ -64,18 +77,24 @@ class Workbench(widgets.VBox):
                                   lags=lags if lags is not None else default_lags(lengths),
                                   n_processes=n_processes, n_samples=n_samples, seed=seed, progress=progress)
         self.populations_panel = PopulationsPanel(None, temperature=temperature, progress=progress)
+        self.validation_panel = ValidationPanel(n_sets=n_sets, multiples=multiples, n_samples=ck_samples,
+                                                seed=seed, progress=progress)
+        self.kinetics_panel = KineticsPanel(n_sets=n_sets, progress=progress)
         self.steps = []
         self.tabs = widgets.Tab()
         self.tabs.add_class("msmkit-steps")
         for title, panel in (("1 · Microstates", self.states_panel), ("2 · Lag time", self.lag_panel),
-                             ("3 · Populations", self.populations_panel)):
+                             ("3 · Populations", self.populations_panel), ("4 · Validate", self.validation_panel),
+                             ("5 · Kinetics", self.kinetics_panel)):
             self.add_step(title, panel)
         self.states_panel.observe(self._labels_changed, names="labels")
         self.lag_panel.observe(self._model_changed, names="model")
+        self.kinetics_panel.observe(self._macrostates_changed, names="result")
 
         self.saver = FileRow(file_name, description="model file", button_text="Save model",
                              css_class="msmkit-save", tooltip="Write the chosen model (.npz) with the states' "
-                                                              "centers and the TICA projection")
+                                                              "centers, the TICA projection and the "
+                                                              "macrostates of step 5")
         on_click(self.saver.button, self.save)
         _render.show_message(self.saver.status, "Nothing to save yet.")
         header = widgets.HTML(
@@ -106,10 +125,18 @@ class Workbench(widgets.VBox):
         for _, panel in self.steps:
             if panel is not self.lag_panel and hasattr(panel, "set_model"):
                 panel.set_model(change["new"])
-        if change["new"] is not None:
-            m = change["new"]
+        self._show_ready()
+
+    def _macrostates_changed(self, change):
+        self._show_ready()
+
+    def _show_ready(self):
+        m = self.model
+        if m is not None:
+            macro = self.macrostates
+            with_sets = f", with the memberships of {macro.n_sets} macrostates" if macro is not None else ""
             _render.show_message(self.saver.status, f"Ready to save the model at lag {frames(m.lag)} "
-                                                    f"({m.lag_time:g} {m.unit}), {m.n_states} states.")
+                                                    f"({m.lag_time:g} {m.unit}), {m.n_states} states{with_sets}.")
 
     # -- the chosen results ------------------------------------------------------------------
     @property
@@ -121,6 +148,16 @@ class Workbench(widgets.VBox):
     def scan_result(self):
         """The LagScan of the last scan (None before one)."""
         return self.lag_panel.scan_result
+
+    @property
+    def ck(self):
+        """The last Chapman-Kolmogorov test of the chosen model (None before one)."""
+        return self.validation_panel.ck
+
+    @property
+    def macrostates(self):
+        """The macrostates of the chosen model from the kinetics step (None before one)."""
+        return self.kinetics_panel.macrostates if hasattr(self, "kinetics_panel") else None
 
     @property
     def microstates(self):
@@ -150,8 +187,26 @@ class Workbench(widgets.VBox):
         """Step 2: choose a scanned lag (frames); returns the model."""
         return self.lag_panel.select_lag(lag)
 
+    def validate(self, n_sets=None, multiples=None, n_samples=None, *, seed=None):
+        """Step 4: the Chapman-Kolmogorov test of the chosen model (see :meth:`ValidationPanel.run`).
+
+        ``n_sets`` defaults to the field, preset to the model's suggested number of macrostates;
+        ``multiples`` and ``n_samples`` to the fields. Returns the test result (also :attr:`ck`).
+        """
+        return self.validation_panel.run(n_sets, multiples, n_samples, seed=seed)
+
+    def kinetics(self, n_sets=None, source=None, target=None, **settings):
+        """Step 5: macrostates, first-passage times, rates, and the reactive flux from macrostate
+        ``source`` to ``target`` (see :meth:`KineticsPanel.compute`).
+
+        Returns a :class:`~msmkit.widgets.kinetics.KineticsSummary` (``.macrostates``, ``.flux``,
+        ...); the macrostates are also :attr:`macrostates` and are saved with the model.
+        """
+        return self.kinetics_panel.compute(n_sets, source, target, **settings)
+
     def save(self, path=None, *, overwrite=None):
-        """Write the chosen model with the microstate centers and the TICA projection.
+        """Write the chosen model with the microstate centers, the TICA projection and, when the
+        kinetics step has found them for this model, the macrostate memberships.
 
         Parameters
         ----------
@@ -177,9 +232,15 @@ class Workbench(widgets.VBox):
             if not name:
                 raise InputError("model file: give a file name")
             extras, preparation = self._provenance()
+            macro = self.macrostates
+            if macro is not None and np.array_equal(macro.states, model.states):
+                extras["memberships"] = macro.memberships
+                preparation["macrostates"] = {"n_sets": int(macro.n_sets), "method": "PCCA+"}
             model = dataclasses.replace(model, metadata={**model.metadata, "preparation": preparation})
             written = model.save(Path(name).expanduser(), overwrite=self.saver.overwrite.value, **extras)
-        report(self.saver.status, f"Saved the model at lag {frames(model.lag)} to {written.resolve()} "
+        with_sets = (f" with the memberships of {extras['memberships'].shape[1]} macrostates"
+                     if "memberships" in extras else "")
+        report(self.saver.status, f"Saved the model at lag {frames(model.lag)}{with_sets} to {written.resolve()} "
                                   f"(load it with msmkit.load_model).", caught)
         return written
 
