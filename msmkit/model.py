@@ -6,6 +6,7 @@ Prinz et al., J. Chem. Phys. 134, 174105 (2011): construction and analysis of Ma
 """
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import hashlib
 import warnings
@@ -179,18 +180,69 @@ class MarkovModel:
         return pd.DataFrame(table)
 
     # ----------------------------------------------------------------- macrostates and kinetics
-    def macrostates(self, n_sets: int, *, optimize: bool = True, population_samples=None):
+    def macrostates(self, n_sets: int, *, optimize: bool = True, labels=None, n_samples: int = 0, seed=None):
         """PCCA+ macrostates (Deuflhard & Weber 2005; Roeblitz & Weber 2013).
 
-        Returns a :class:`~msmkit.macro.Macrostates` with memberships (rows sum to 1),
-        crisp assignments by original label, populations and the coarse transition matrix.
+        Parameters
+        ----------
+        n_sets : int
+            Number of macrostates.
+        optimize : bool
+            Optimise the memberships (the published objective); False keeps the inner-simplex guess.
+        labels : label trajectories, optional
+            The data of the model; with ``n_samples`` > 0 the macrostate populations get
+            bootstrap intervals (whole runs resampled, memberships held fixed).
+        n_samples : int
+            Bootstrap samples for the population intervals.
+        seed : int, optional
+
+        Returns
+        -------
+        Macrostates
+            Memberships (rows sum to 1), crisp assignments by original label, populations
+            (``.populations()``, with ``population_lower`` / ``population_upper`` when
+            bootstrapped) and the coarse transition matrix.
         """
         from .macro import find_macrostates
         n_sets = check_int(n_sets, "n_sets", minimum=1, maximum=self.n_states)
-        return find_macrostates(self.transition_matrix, self.stationary_distribution, n_sets,
-                                labels=self.states, time_per_step=self.lag_time, unit=self.unit,
-                                reversible=self.reversible, optimize=optimize,
-                                population_samples=population_samples)
+        n_samples = check_int(n_samples, "n_samples", minimum=0)
+        if n_samples and labels is None:
+            raise InputError("n_samples > 0 needs labels= (the label trajectories of the model) to resample")
+        macro = find_macrostates(self.transition_matrix, self.stationary_distribution, n_sets,
+                                 labels=self.states, time_per_step=self.lag_time, unit=self.unit,
+                                 reversible=self.reversible, optimize=optimize)
+        if n_samples:
+            pi = self.bootstrap_stationary(labels, n_samples=n_samples, seed=seed)
+            macro = dataclasses.replace(macro, population_samples=np.nan_to_num(pi) @ macro.memberships)
+        return macro
+
+    def bootstrap_stationary(self, labels, *, n_samples: int = 50, seed=None) -> np.ndarray:
+        """Stationary distributions re-estimated on resampled data, one row per sample.
+
+        Whole runs are drawn with replacement (contiguous blocks with fewer than 5 runs), counted
+        at this model's lag on its kept states, and estimated the same way (Efron 1979). A state
+        that falls out of a sample's connected set gets NaN in that row; the rest are renormalised.
+
+        Returns
+        -------
+        ndarray, shape (n_samples, n_states), columns in the order of :attr:`states`
+        """
+        from ._bootstrap import fit_sample, resampling_plan, sample_rows, unflatten
+        from .counts import run_count_rows
+        runs = as_label_trajectories(labels)
+        n_samples = check_int(n_samples, "n_samples", minimum=1)
+        n_lab = max(int(self.states.max()) + 1, max(int(r.max()) for r in runs if r.size) + 1)
+        blocks, weights, _ = resampling_plan(len(runs), n_samples, np.random.default_rng(seed))
+        rows, _ = run_count_rows(runs, self.lag, n_states=n_lab, blocks_per_run=blocks)
+        sampled = sample_rows(weights, rows)
+        out = np.full((n_samples, self.n_states), np.nan)
+        for b in range(n_samples):
+            C = unflatten(sampled.getrow(b), n_lab)[self.states][:, self.states]
+            fit = fit_sample(C, reversible=self.reversible, initial=self.stationary_distribution)
+            if fit is not None:
+                keep, _, pi = fit
+                out[b, keep] = pi
+        return out
 
     def suggest_macrostates(self, max_sets: int = 10):
         """A number of macrostates from the largest spectral gap, with the reason in words:

@@ -431,3 +431,29 @@ def test_metadata_records_parameters_and_fingerprint():
     # strided counting at lag 2 (by hand for the second run: pairs (1,0) and (0,1))
     expected = mk.count_transitions(runs, 2, sliding=False).toarray()
     np.testing.assert_array_equal(model.count_matrix.toarray(), expected)
+
+
+def test_macrostate_population_intervals_cover_the_truth(sample_chain, stationary_ref):
+    # Two blocks of two states, weakly coupled: the true macrostate populations are sums of the
+    # stationary distribution (scipy.linalg.eig) over each block. The bootstrap interval over
+    # runs (Efron 1979) must cover them, and the point estimate must lie inside its interval.
+    T = np.array([[0.90, 0.09, 0.01, 0.00],
+                  [0.06, 0.93, 0.00, 0.01],
+                  [0.02, 0.00, 0.88, 0.10],
+                  [0.00, 0.02, 0.08, 0.90]])
+    pi = stationary_ref(T)
+    runs = sample_chain(T, 2000, n_runs=30, seed=4)
+    model = mk.build_model(runs, 1)
+    macro = model.macrostates(2, labels=runs, n_samples=60, seed=0)
+    table = macro.populations()
+    for row in table.itertuples():
+        block = list(row.states)
+        assert sorted(block) in ([0, 1], [2, 3])
+        truth = pi[block].sum()
+        assert row.population_lower <= truth <= row.population_upper
+        assert row.population_lower <= row.population <= row.population_upper
+    samples = model.bootstrap_stationary(runs, n_samples=5, seed=1)
+    assert samples.shape == (5, 4)
+    assert np.allclose(np.nansum(samples, axis=1), 1.0)
+    with pytest.raises(mk.InputError, match="needs labels="):
+        model.macrostates(2, n_samples=10)

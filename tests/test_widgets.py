@@ -439,9 +439,11 @@ def test_kinetics_button_gives_the_public_numbers(wb):
     assert res is not None, status_text(panel.status)
     assert "msmkit-error" not in panel.status.value
 
-    macro = model.macrostates(n_sets)
+    from msmkit.widgets.kinetics import POPULATION_SAMPLES
+    macro = model.macrostates(n_sets, labels=wb.labels, n_samples=POPULATION_SAMPLES, seed=0)
     np.testing.assert_allclose(wb.macrostates.memberships, macro.memberships)
     pd.testing.assert_frame_equal(res.populations, macro.populations())
+    assert {"population_lower", "population_upper"} <= set(res.populations.columns)
     mfpt = model.mfpt_matrix(macro.sets)
     for row in res.passage.itertuples():
         a, b = row.from_macrostate, row.to_macrostate

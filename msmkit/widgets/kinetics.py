@@ -62,6 +62,10 @@ class KineticsSummary:
     unit: str
 
 
+#: bootstrap samples behind the macrostate population intervals
+POPULATION_SAMPLES = 30
+
+
 class KineticsPanel(Step):
     """Macrostates of the chosen model with their populations, first-passage times and rates
     between them, and the reactive flux and pathways from one macrostate to another.
@@ -91,6 +95,7 @@ class KineticsPanel(Step):
                  progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-kinetics")
         self.model = None
+        self.labels = None
         self._setting = False
         self.n_sets = MacrostateCount("msmkit-kinetics-sets", n_sets)
         self.fraction = field(widgets.FloatText, float(fraction), "flux share to explain",
@@ -130,6 +135,10 @@ class KineticsPanel(Step):
         self.set_model(model)
 
     # -- inputs ------------------------------------------------------------------------------
+    def set_labels(self, labels):
+        """The label trajectories of the model: macrostate populations then get bootstrap intervals."""
+        self.labels = labels
+
     def set_model(self, model):
         """A new model: the previous macrostates are dropped and the suggested number shown."""
         self.model = model
@@ -178,7 +187,8 @@ class KineticsPanel(Step):
             m = self.n_sets.get(n_sets, model)
             source, target = _check_pair(*_default_pair(source, target, self.pair.value, m), m)
             self._stage(1, 3, "macrostates")
-            macro = model.macrostates(m)
+            macro = (model.macrostates(m) if self.labels is None else
+                     model.macrostates(m, labels=self.labels, n_samples=POPULATION_SAMPLES, seed=0))
             empty = [j for j, s in enumerate(macro.sets) if s.size == 0]
             if empty:
                 raise InputError(f"n_sets={m}: macrostate(s) {empty} hold no state by largest membership, so no "
