@@ -47,7 +47,7 @@ def _extras(tica, micro) -> dict:
     out = {"centers": micro.centers_}
     if tica is not None:
         out["tica_mean"] = tica.mean_
-        out["tica_components"] = tica.components_
+        out["tica_components"] = tica.projection_  # rows as transform applies them, scaling included
     return out
 
 

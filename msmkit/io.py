@@ -259,6 +259,14 @@ class LazyRun:
         return out
 
 
+def _vanished(source: str, err: Exception) -> InputError:
+    """The error for a file that could be listed but no longer read (moved, deleted, or not
+    visible from this machine, e.g. a dask worker without the shared filesystem)."""
+    return InputError(f"{source}: cannot read the file any more ({err}); it was moved, deleted "
+                      f"or changed after loading, or it is not visible from this machine (on a "
+                      f"cluster every worker must see the same path); load the files again")
+
+
 class _NpyRun(LazyRun):
     """An .npy file read with file offsets; a memory map is opened per read only for
     Fortran-ordered files and dropped at once (a long-lived map would count every touched
@@ -272,16 +280,22 @@ class _NpyRun(LazyRun):
     def _read(self, start, stop):
         d = self._shape[1]
         if self._fortran:
-            mm = np.memmap(self.source, dtype=self._dtype, mode="r", offset=self._offset,
-                           shape=self._shape, order="F")
+            try:
+                mm = np.memmap(self.source, dtype=self._dtype, mode="r", offset=self._offset,
+                               shape=self._shape, order="F")
+            except (OSError, ValueError) as err:
+                raise _vanished(self.source, err) from None
             try:
                 return np.array(mm[start:stop])
             finally:
                 del mm
         count = (stop - start) * d
-        with open(self.source, "rb") as fh:
-            fh.seek(self._offset + start * d * self._dtype.itemsize)
-            flat = np.fromfile(fh, dtype=self._dtype, count=count)
+        try:
+            with open(self.source, "rb") as fh:
+                fh.seek(self._offset + start * d * self._dtype.itemsize)
+                flat = np.fromfile(fh, dtype=self._dtype, count=count)
+        except OSError as err:
+            raise _vanished(self.source, err) from None
         if flat.size != count:
             raise InputError(f"{self.source}: file ends before frame {stop - 1}; it is truncated "
                              f"or was changed after loading")
@@ -298,8 +312,11 @@ class _HDF5Run(LazyRun):
 
     def _read(self, start, stop):
         h5py = require_optional("h5py", "hdf5", "Reading HDF5 files")
-        with h5py.File(self._path, "r") as fh:
-            return np.asarray(fh[self._key][start:stop])
+        try:
+            with h5py.File(self._path, "r") as fh:
+                return np.asarray(fh[self._key][start:stop])
+        except (OSError, KeyError) as err:
+            raise _vanished(self.source, err) from None
 
 
 # ---------------------------------------------------------------------------------------------
@@ -411,8 +428,17 @@ class TrajectorySet(Sequence):
         return TrajectorySet([np.asarray(r) for r in self._runs], self.feature_names,
                              dt=self.dt, unit=self.unit, sources=self._sources)
 
-    def check_values(self, chunk_size: int | None = None) -> "TrajectorySet":
-        """Read every lazy run once, raising InputError at the first NaN/infinite frame."""
+    def check_values(self, chunk_size: int | None = None, *, client=None) -> "TrajectorySet":
+        """Read every lazy run once, raising InputError at the first NaN/infinite frame.
+
+        With ``client`` (a ``dask.distributed.Client``) the runs are read on the cluster's
+        workers, one task per run.
+        """
+        if client is not None:
+            from . import distributed as _dist
+
+            _dist.check_values(client, [r for r in self._runs if is_lazy_run(r)], chunk_size)
+            return self
         for run in self._runs:
             if is_lazy_run(run):
                 for _ in run.iter_chunks(chunk_size):
@@ -722,7 +748,7 @@ def _is_path(item) -> bool:
 
 def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=None,
                       topology=None, torsions=("phi", "psi"), atom_pairs=None,
-                      progress: bool = False) -> TrajectorySet:
+                      progress: bool = False, client=None) -> TrajectorySet:
     """Read trajectories (frames x features) into a :class:`TrajectorySet`.
 
     Parameters
@@ -746,6 +772,11 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
         MD formats: atom index pairs whose distances (nm, minimum image) become features.
     progress : bool
         Show a progress bar while reading many files.
+    client : dask.distributed.Client, optional
+        Open and check the files on the cluster's workers, one task per file (needs the extra
+        ``dask``; every worker must see the same paths). Lazy runs come back as file paths
+        and offsets; formats read into memory (npz, csv, MD files, whose features are computed
+        while reading) come back as arrays. Without a client nothing imports dask.
 
     Returns
     -------
@@ -800,6 +831,14 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
             plan.append((None, _as_float_run(item, where, None)))
 
     n_files = sum(p is not None for p, _ in plan)
+    read_remotely = None
+    if client is not None and n_files:
+        from . import distributed as _dist
+
+        options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs)
+        read_remotely = _dist.read_files(client, [p for p, _ in plan if p is not None], options,
+                                         progress=progress)
+        progress = False
     iterator = plan
     if progress and n_files > 1:
         from tqdm.auto import tqdm
@@ -816,7 +855,8 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
             runs.append(what)
             sources.append(None)
             continue
-        file_runs, file_names = what(path, **options)
+        file_runs, file_names = (what(path, **options) if read_remotely is None
+                                 else read_remotely[path])
         if file_names is not None:
             file_names = tuple(file_names)
             if names is None:

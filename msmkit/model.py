@@ -220,7 +220,7 @@ class MarkovModel:
         """Stationary distributions re-estimated on resampled data, one row per sample.
 
         Whole runs are drawn with replacement (contiguous blocks with fewer than 5 runs), counted
-        at this model's lag on its kept states, and estimated the same way (Efron 1979). A state
+        at the lag of this model on the kept states, and estimated the same way (Efron 1979). A state
         that falls out of a sample's connected set gets NaN in that row; the rest are renormalised.
 
         Returns

@@ -20,6 +20,8 @@ References
 """
 from __future__ import annotations
 
+import os
+import uuid
 import warnings
 from dataclasses import dataclass
 
@@ -35,7 +37,7 @@ from ._checks import (
     feature_names_of,
 )
 from .errors import DiagnosticWarning, InputError
-from .io import TrajectorySet, iter_chunks
+from .io import LazyRun, TrajectorySet, iter_chunks, load_trajectories
 
 __all__ = ["TICA", "LaggedMoments", "lagged_moments", "run_moments", "tica_covariances"]
 
@@ -324,16 +326,26 @@ class TICA:
         chunk = check_chunk_size(self.chunk_size, n_features)
         return lag, dim, kv, chunk
 
-    def fit(self, trajs, y=None) -> "TICA":
+    def fit(self, trajs, y=None, *, client=None) -> "TICA":
         """Estimate the components from one trajectory or a list of them.
 
         Parameters
         ----------
         trajs : 2-D array, list of 2-D arrays, or a TrajectorySet (lazy runs are streamed)
+        client : dask.distributed.Client, optional
+            Sum the moments of each run on the cluster's workers (a map-reduce; needs the
+            extra ``dask``). Lazy runs travel as file paths and offsets and are read by the
+            workers. The result equals the in-memory fit to rounding.
 
         Returns
         -------
         self
+
+        Notes
+        -----
+        Memory: one chunk of frames in the dtype of the input plus a float64 copy, i.e. about
+        ``chunk_size * n_features * (itemsize + 8)`` bytes, plus ``lag`` frames of context and
+        a few ``n_features**2`` matrices; independent of the number of frames.
         """
         names = feature_names_of(trajs)
         runs = as_float_trajectories(trajs, "trajs")
@@ -351,7 +363,12 @@ class TICA:
             warnings.warn(f"TICA: {n_short} of {len(runs)} runs are not longer than lag={lag} "
                           f"frames and are left out ({lost} frames discarded)",
                           DiagnosticWarning, stacklevel=2)
-        shift = np.array(used[0][0], dtype=np.float64)
+        if client is not None:
+            from . import distributed as _dist
+
+            shift = _dist.first_frame(client, used[0])  # the client need not see the files
+        else:
+            shift = np.array(used[0][0], dtype=np.float64)
 
         bar = None
         if self.progress:
@@ -359,8 +376,12 @@ class TICA:
             bar = tqdm(total=sum(r.shape[0] for r in used), desc="TICA", unit="frame")
         try:
             moments = _empty_moments(lag, shift)
-            for run in used:
-                moments = moments + run_moments(run, lag, shift, chunk, bar)
+            if client is not None:
+                for part in _dist.run_moments_each(client, used, lag, shift, chunk, bar):
+                    moments = moments + part  # in run order, as below
+            else:
+                for run in used:
+                    moments = moments + run_moments(run, lag, shift, chunk, bar)
         finally:
             if bar is not None:
                 bar.close()
@@ -441,23 +462,50 @@ class TICA:
             proj = proj * self.eigenvalues_[None, :]
         return proj
 
+    @property
+    def projection_(self) -> np.ndarray:
+        """The rows ``transform`` applies, shape (dim_, n_features): the components with the
+        kinetic-map scaling included, so that ``(x - mean_) @ projection_.T`` are the output
+        coordinates. This is what a model file stores as ``tica_components``."""
+        return self._projection().T
+
     def get_feature_names_out(self, input_features=None) -> tuple[str, ...]:
         """Names of the output coordinates: ``tic1, tic2, ...``."""
         self._projection()
         return tuple(f"tic{i + 1}" for i in range(self.dim_))
 
-    def transform(self, trajs):
+    def transform(self, trajs, *, lazy=False, out=None, client=None):
         """Project trajectories onto the kept components.
 
         Parameters
         ----------
         trajs : 2-D array, list of 2-D arrays, or a TrajectorySet
+        lazy : bool
+            Return lazy runs that project their frames when read (chunk by chunk) instead of
+            computing anything now; nothing is stored. Every later pass over them reads the
+            input again.
+        out : path, optional
+            A folder: write the projection of run ``i`` to ``out/tica_{i:05d}.npy`` (float64),
+            streaming chunk by chunk, and return lazy runs reading those files. Files are
+            written under temporary names and renamed only when every run succeeded, so a
+            failure leaves nothing half-written (files of the same name are replaced).
+        client : dask.distributed.Client, optional
+            Project the runs on the cluster's workers (needs the extra ``dask``); with ``out``
+            the workers write the files (the folder must be visible to every worker). Ignored
+            with ``lazy=True``: lazy runs are projected wherever they are read.
 
         Returns
         -------
         ndarray or TrajectorySet
-            A 2-D array ``(n_frames, dim_)`` for a single array; otherwise a
-            :class:`~msmkit.io.TrajectorySet` of in-memory runs named ``tic1, tic2, ...``.
+            A 2-D array ``(n_frames, dim_)`` for a single array without ``lazy``/``out``;
+            otherwise a :class:`~msmkit.io.TrajectorySet` named ``tic1, tic2, ...`` of
+            in-memory runs (default) or lazy runs (``lazy=True`` or ``out=``).
+
+        Notes
+        -----
+        Memory: the default keeps the whole projection in memory, ``n_frames * dim_ * 8``
+        bytes; with ``lazy`` or ``out`` only one chunk at a time, about
+        ``chunk_size * (n_features * (itemsize + 8) + dim_ * 8)`` bytes, for any data size.
         """
         proj = self._projection()
         single = isinstance(trajs, np.ndarray)
@@ -471,34 +519,55 @@ class TICA:
                 and tuple(names) != tuple(self.feature_names_in_)):
             raise InputError(f"trajs has features {names}, but this TICA was fitted on "
                              f"{self.feature_names_in_}; use the same features in the same order")
+        if lazy and out is not None:
+            raise InputError(f"give lazy=True or out={out!r}, not both: lazy runs store nothing, "
+                             f"out= writes files")
         chunk = check_chunk_size(self.chunk_size, d)
+        dt, unit = getattr(trajs, "dt", None), getattr(trajs, "unit", None)
+        if lazy:
+            return TrajectorySet([_ProjectedRun(r, self.mean_, proj, chunk) for r in runs],
+                                 self.get_feature_names_out(), dt=dt, unit=unit)
+        if client is not None:
+            from . import distributed as _dist
+
+            _dist.check_client(client)
+        if out is not None:
+            paths = _output_paths(out, len(runs))
         bar = None
         if self.progress:
             from tqdm.auto import tqdm
             bar = tqdm(total=sum(r.shape[0] for r in runs), desc="TICA transform", unit="frame")
-        out = []
         try:
-            for run in runs:
-                y = np.empty((run.shape[0], self.dim_))
-                start = 0
-                for block in iter_chunks(run, chunk):
-                    y[start:start + len(block)] = (np.asarray(block, dtype=np.float64)
-                                                   - self.mean_) @ proj
-                    start += len(block)
-                    if bar is not None:
-                        bar.update(len(block))
-                out.append(y)
+            if out is not None:
+                temps = [_temp_name(p) for p in paths]
+                try:
+                    if client is not None:
+                        _dist.project_runs(client, runs, self.mean_, proj, chunk, temps, bar)
+                    else:
+                        for run, tmp in zip(runs, temps):
+                            _project_run(run, self.mean_, proj, chunk, tmp, bar)
+                    for tmp, path in zip(temps, paths):
+                        os.replace(tmp, path)
+                finally:
+                    for tmp in temps:
+                        if os.path.exists(tmp):
+                            os.remove(tmp)
+                result = load_trajectories(paths, dt=dt, unit=unit, client=client)
+                return TrajectorySet(result.runs, self.get_feature_names_out(), dt=dt, unit=unit)
+            if client is not None:
+                out_runs = _dist.project_runs(client, runs, self.mean_, proj, chunk, None, bar)
+            else:
+                out_runs = [_project_run(run, self.mean_, proj, chunk, None, bar) for run in runs]
         finally:
             if bar is not None:
                 bar.close()
         if single:
-            return out[0]
-        return TrajectorySet(out, self.get_feature_names_out(), dt=getattr(trajs, "dt", None),
-                             unit=getattr(trajs, "unit", None))
+            return out_runs[0]
+        return TrajectorySet(out_runs, self.get_feature_names_out(), dt=dt, unit=unit)
 
-    def fit_transform(self, trajs, y=None):
+    def fit_transform(self, trajs, y=None, *, client=None):
         """``fit(trajs)`` then ``transform(trajs)``."""
-        return self.fit(trajs).transform(trajs)
+        return self.fit(trajs, client=client).transform(trajs, client=client)
 
     def __repr__(self) -> str:
         opts = [f"lag={self.lag!r}"]
@@ -508,3 +577,77 @@ class TICA:
         if self.scaling != "kinetic_map":
             opts.append(f"scaling={self.scaling!r}")
         return f"TICA({', '.join(opts)})"
+
+
+# ---------------------------------------------------------------------------------------------
+# Projection of one run: into memory, into an .npy file, or lazily
+# ---------------------------------------------------------------------------------------------
+
+def _project_run(run, mean, proj, chunk, path=None, bar=None):
+    """Project one run chunk by chunk; return the array, or stream it into ``path`` (.npy,
+    float64, C order) and return the number of frames written."""
+    n, dim = run.shape[0], proj.shape[1]
+    if path is None:
+        y = np.empty((n, dim))
+        start = 0
+        for block in iter_chunks(run, chunk):
+            y[start:start + len(block)] = (np.asarray(block, dtype=np.float64) - mean) @ proj
+            start += len(block)
+            if bar is not None:
+                bar.update(len(block))
+        return y
+    header = {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float64)),
+              "fortran_order": False, "shape": (n, dim)}
+    try:
+        with open(path, "wb") as fh:
+            np.lib.format.write_array_header_2_0(fh, header)
+            for block in iter_chunks(run, chunk):
+                np.ascontiguousarray((np.asarray(block, dtype=np.float64) - mean) @ proj).tofile(fh)
+                if bar is not None:
+                    bar.update(len(block))
+    except OSError as err:
+        raise InputError(f"out: cannot write {path} ({err}); give a folder that exists or can be "
+                         f"created, with room for {n * dim * 8} bytes (on a cluster: a folder "
+                         f"every worker sees)") from None
+    return n
+
+
+def _output_paths(out, n_runs: int) -> list[str]:
+    folder = os.fspath(out)
+    if os.path.exists(folder) and not os.path.isdir(folder):
+        raise InputError(f"out must be a folder for the projected runs, but {folder!r} is a file")
+    try:
+        os.makedirs(folder, exist_ok=True)
+    except OSError as err:
+        raise InputError(f"out: cannot create the folder {folder!r} ({err})") from None
+    return [os.path.join(folder, f"tica_{i:05d}.npy") for i in range(n_runs)]
+
+
+def _temp_name(path: str) -> str:
+    head, tail = os.path.split(path)
+    return os.path.join(head, f".{tail}.{uuid.uuid4().hex[:12]}.part")
+
+
+class _ProjectedRun(LazyRun):
+    """The TICA projection of a run, computed from the input each time frames are read.
+
+    Reads of any size are served in blocks of at most ``chunk`` input frames, so memory stays
+    bounded by the chunk even when a consumer asks for many projected frames at once.
+    """
+
+    def __init__(self, base, mean, projection, chunk):
+        src = getattr(base, "source", None)
+        super().__init__(f"{src or 'in-memory run'} (TICA projection)",
+                         (base.shape[0], projection.shape[1]), np.float64)
+        self.base = base
+        self.mean = np.asarray(mean, dtype=np.float64)
+        self.projection = np.asarray(projection, dtype=np.float64)
+        self.chunk = int(chunk)
+
+    def _read(self, start, stop):
+        out = np.empty((stop - start, self.projection.shape[1]))
+        for lo in range(start, stop, self.chunk):
+            hi = min(stop, lo + self.chunk)
+            out[lo - start:hi - start] = (np.asarray(self.base[lo:hi], dtype=np.float64)
+                                          - self.mean) @ self.projection
+        return out

@@ -207,20 +207,56 @@ def nearest_center(frames, centers, *, chunk_size=None, n_threads=None) -> np.nd
                        check_chunk_size(chunk_size, centers.shape[1]))
 
 
+#: Frames labelled per call of the assigner: its temporaries (distances, indices, a float64
+#: copy: about 80 bytes a frame) stay near 20 MB whatever the chunk size.
+ASSIGN_BLOCK = 1 << 18
+
+
 def _assign_run(run, assigner: _Assigner, chunk: int, bar=None) -> np.ndarray:
     out = np.empty(run.shape[0], dtype=np.int32)
     start = 0
     for block in iter_chunks(run, chunk):
-        out[start:start + len(block)] = assigner(block)
+        for lo in range(0, len(block), ASSIGN_BLOCK):
+            part = block[lo:lo + ASSIGN_BLOCK]
+            out[start + lo:start + lo + len(part)] = assigner(part)
         start += len(block)
         if bar is not None:
             bar.update(len(block))
     return out
 
 
-def _strided_frames(run, stride: int) -> np.ndarray:
-    """Frames 0, stride, 2*stride, ... of a run (a lazy run reads them in bounded blocks)."""
-    return np.asarray(run[::stride])
+def _label_counts(labels, k: int, block: int = 1 << 20) -> np.ndarray:
+    """Frames per state over all label runs, counted in slices (no concatenated copy)."""
+    counts = np.zeros(k, dtype=np.int64)
+    for run in labels:
+        for lo in range(0, run.size, block):
+            counts += np.bincount(run[lo:lo + block], minlength=k)
+    return counts
+
+
+def _strided_frames(run, stride: int, chunk_size: int | None = None, start: int = 0,
+                    stop: int | None = None) -> np.ndarray:
+    """Frames 0, stride, 2*stride, ... of a run that lie in ``start:stop``, read chunk by chunk.
+
+    Only one chunk of the run is held at a time besides the output (``1/stride`` of the
+    frames); in-memory runs give a copy of the strided view.
+    """
+    n = run.shape[0]
+    stop = n if stop is None else min(stop, n)
+    first = -(-start // stride) * stride  # first multiple of stride at or after start
+    if first >= stop:
+        return np.empty((0, run.shape[1]), dtype=getattr(run, "dtype", np.float64))
+    if isinstance(run, np.ndarray):
+        return np.array(run[first:stop:stride])
+    chunk = check_chunk_size(chunk_size, run.shape[1])
+    chunk = max(stride, chunk - chunk % stride)  # whole periods per read
+    out = np.empty((len(range(first, stop, stride)), run.shape[1]), dtype=run.dtype)
+    k = 0
+    for lo in range(first, stop, chunk):
+        part = run[lo:min(lo + chunk, stop)][::stride]
+        out[k:k + len(part)] = part
+        k += len(part)
+    return out
 
 
 class Microstates:
@@ -281,16 +317,30 @@ class Microstates:
         from tqdm.auto import tqdm
         return tqdm(total=total, desc=desc, unit="frame")
 
-    def fit(self, trajs, y=None) -> "Microstates":
+    def fit(self, trajs, y=None, *, client=None) -> "Microstates":
         """Cluster every ``stride``-th frame and label all frames of ``trajs``.
 
         Parameters
         ----------
         trajs : 2-D array, list of 2-D arrays, or a TrajectorySet (lazy runs are streamed)
+        client : dask.distributed.Client, optional
+            Cluster on a dask cluster (needs the extra ``dask``): the strided frames stay on
+            the workers, split into partitions, and only center arrays and per-center sums
+            travel. ``method="kmeans"`` runs Lloyd iterations whose partition sums add up to
+            exactly the full-sample update; ``method="minibatch"`` runs mini-batch k-means
+            [2]_ with each worker drawing a share of every batch. Both seed with k-means++
+            [1]_ on a random subsample of the strided frames. Centers can differ from the
+            in-memory fit (another seeding); labels given the centers are identical.
 
         Returns
         -------
         self
+
+        Notes
+        -----
+        Memory: the strided frames as float64, ``n_frames / stride * n_features * 8`` bytes
+        (on a cluster: spread over the workers), plus the clustering's working memory, one
+        chunk of frames while reading or assigning, and the labels, 4 bytes per frame.
         """
         from ._checks import feature_names_of
 
@@ -303,23 +353,39 @@ class Microstates:
         runs = as_float_trajectories(trajs, "trajs")
         d = runs[0].shape[1]
         chunk = check_chunk_size(self.chunk_size, d)
+        n_sample = sum(len(range(0, r.shape[0], stride)) for r in runs)
+        if n_sample < k:
+            total = sum(r.shape[0] for r in runs)
+            raise InputError(f"n_states={k} is more than the {n_sample} frames available to "
+                             f"cluster ({total} frames, stride={stride}); lower n_states"
+                             f"{' or stride' if stride > 1 else ''}")
+        if client is not None:
+            from . import distributed as _dist
+
+            fitted = _dist.fit_centers(client, runs, k, method=self.method, stride=stride,
+                                       seed=seed, max_iter=max_iter, chunk=chunk,
+                                       progress=self.progress)
+            if not fitted.converged:
+                warnings.warn(f"Microstates: clustering did not converge in max_iter={max_iter} "
+                              f"iterations; raise max_iter", DiagnosticWarning, stacklevel=2)
+            self.centers_ = fitted.centers
+            self.inertia_ = fitted.inertia
+            self.n_iter_ = fitted.n_iter
+            self.n_frames_fitted_ = fitted.n_frames
+            self.n_features_in_ = d
+            self.feature_names_in_ = feature_names_of(trajs)
+            return self._label_fitted(runs, chunk, k, client)
 
         bar = self._bar(sum(r.shape[0] for r in runs), "reading frames")
         parts = []
         for run in runs:
-            parts.append(_strided_frames(run, stride))
+            parts.append(_strided_frames(run, stride, chunk))
             if bar is not None:
                 bar.update(run.shape[0])
         if bar is not None:
             bar.close()
         sample = np.ascontiguousarray(np.concatenate(parts), dtype=np.float64)
         del parts
-        if len(sample) < k:
-            total = sum(r.shape[0] for r in runs)
-            raise InputError(f"n_states={k} is more than the {len(sample)} frames available to "
-                             f"cluster ({total} frames, stride={stride}); lower n_states"
-                             f"{' or stride' if stride > 1 else ''}")
-
         from sklearn.cluster import KMeans, MiniBatchKMeans
         from sklearn.exceptions import ConvergenceWarning
 
@@ -354,31 +420,42 @@ class Microstates:
         self.n_features_in_ = d
         self.feature_names_in_ = feature_names_of(trajs)
         del sample
-        self.labels_ = self._assign_runs(runs, chunk)
-        self.counts_ = np.bincount(np.concatenate(self.labels_), minlength=k).astype(np.int64)
+        return self._label_fitted(runs, chunk, k, None)
+
+    def _label_fitted(self, runs, chunk, k, client) -> "Microstates":
+        self.labels_ = self._assign_runs(runs, chunk, client)
+        self.counts_ = _label_counts(self.labels_, k)
         empty = np.flatnonzero(self.counts_ == 0)
         if empty.size:
             shown = ", ".join(map(str, empty[:10])) + (" ..." if empty.size > 10 else "")
             warnings.warn(f"Microstates: {empty.size} of {k} states received no frame "
                           f"(states {shown}); they will not appear in the label trajectories",
-                          DiagnosticWarning, stacklevel=2)
+                          DiagnosticWarning, stacklevel=3)
         return self
 
-    def _assign_runs(self, runs, chunk) -> list[np.ndarray]:
-        assigner = _Assigner(self.centers_)
+    def _assign_runs(self, runs, chunk, client=None) -> list[np.ndarray]:
         bar = self._bar(sum(r.shape[0] for r in runs), "assigning frames")
         try:
+            if client is not None:
+                from . import distributed as _dist
+
+                return _dist.assign_runs(client, runs, self.centers_, chunk, bar)
+            assigner = _Assigner(self.centers_)
             return [_assign_run(run, assigner, chunk, bar) for run in runs]
         finally:
             if bar is not None:
                 bar.close()
 
-    def assign(self, trajs) -> list[np.ndarray]:
+    def assign(self, trajs, *, client=None) -> list[np.ndarray]:
         """Label every frame with the index of the nearest center.
 
         Parameters
         ----------
         trajs : 2-D array, list of 2-D arrays, or a TrajectorySet (streamed in chunks)
+        client : dask.distributed.Client, optional
+            Assign on the cluster's workers (needs the extra ``dask``): only the centers and
+            file paths/offsets (or the in-memory runs) travel; long runs are split into
+            pieces. Labels are identical to the in-memory result.
 
         Returns
         -------
@@ -392,11 +469,11 @@ class Microstates:
         if d != self.n_features_in_:
             raise InputError(f"trajs has {d} features, but the microstates were fitted on "
                              f"{self.n_features_in_}; assign data with the same features")
-        return self._assign_runs(runs, check_chunk_size(self.chunk_size, d))
+        return self._assign_runs(runs, check_chunk_size(self.chunk_size, d), client)
 
-    def fit_assign(self, trajs) -> list[np.ndarray]:
+    def fit_assign(self, trajs, *, client=None) -> list[np.ndarray]:
         """``fit(trajs)`` and return ``labels_``."""
-        return self.fit(trajs).labels_
+        return self.fit(trajs, client=client).labels_
 
     def __repr__(self) -> str:
         opts = [repr(self.n_states)]

@@ -157,7 +157,7 @@ class CKResult:
 
 
 def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_samples=20, seed=None,
-                       confidence=0.95, tolerance=0.05, progress=False) -> CKResult:
+                       confidence=0.95, tolerance=0.05, progress=False, client=None) -> CKResult:
     """Chapman-Kolmogorov test: does T(tau)^k predict the data at lag k tau?
 
     For each pair of sets (a, b) and k = 1..``multiples``, compares
@@ -197,6 +197,10 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
         Largest absolute difference accepted where the data are too few for an interval.
     progress : bool
         Show a progress bar.
+    client : dask.distributed.Client, optional
+        Count the runs and fit the bootstrap samples on the cluster's workers, batches of
+        samples as tasks (needs the extra ``dask``); the same seed gives the same samples and
+        the same result as in memory.
 
     Returns
     -------
@@ -271,10 +275,20 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
     estimated = np.full((K, m, m), np.nan)
     samples = np.full((K, n_samples, m, m), np.nan)
     lost = []
+    remote = None
+    if client is not None:
+        from . import distributed as _dist
+
+        remote = _dist.scatter_labels(client, runs)
     bar = progress_bar(K * (1 + n_samples), progress, "Chapman-Kolmogorov test")
     try:
         for k in range(1, K + 1):
-            rows, _ = run_count_rows(runs, k * model.lag, n_states=n_lab, sliding=sliding, blocks_per_run=blocks)
+            if remote is not None:
+                rows = _dist.count_rows(client, remote, [r.size for r in runs], k * model.lag, n_lab,
+                                        sliding, blocks)
+            else:
+                rows, _ = run_count_rows(runs, k * model.lag, n_states=n_lab, sliding=sliding,
+                                         blocks_per_run=blocks)
             full = _on_model_states(unflatten(np.asarray(rows.sum(axis=0)).ravel(), n_lab), model)
             fit = fit_sample(full, reversible=model.reversible)
             bar.update(1)
@@ -291,12 +305,13 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
                 initial = np.zeros(n_kept)
                 initial[keep] = pi_k
                 sampled = sample_rows(weights, rows)
-                for b in range(n_samples):
-                    C = _on_model_states(unflatten(sampled.getrow(b), n_lab), model)
-                    got = fit_sample(C, reversible=model.reversible, initial=initial)
-                    if got is not None:
-                        samples[k - 1, b] = _set_to_set(got[1], got[0], pi, M)
-                    bar.update(1)
+                if remote is not None:
+                    samples[k - 1] = np.concatenate(_dist.map_sample_batches(
+                        client, sampled, _ck_samples, n_lab, model.states, model.reversible, initial,
+                        pi, M, what=f"Chapman-Kolmogorov samples at {k} lags", bar=bar))
+                else:
+                    samples[k - 1] = _ck_samples(sampled, n_lab, model.states, model.reversible,
+                                                 initial, pi, M, bar)
     finally:
         bar.close()
 
@@ -419,6 +434,22 @@ def _set_to_set(T, keep, pi, M) -> np.ndarray:
     P0 = _start_rows(pi[keep], Mk)
     out = P0 @ T @ Mk
     out[~np.isfinite(P0).all(axis=1)] = np.nan
+    return out
+
+
+def _ck_samples(rows, n_lab, states, reversible, initial, pi, M, bar=None) -> np.ndarray:
+    """Set-to-set probabilities of bootstrap samples given as flattened count rows, shape
+    (n_rows, m, m), NaN where a sample has no usable estimate. Module-level and free of model
+    objects, so that a dask worker can run it on a batch of rows."""
+    m = M.shape[1]
+    out = np.full((rows.shape[0], m, m), np.nan)
+    for b in range(rows.shape[0]):
+        C = unflatten(rows.getrow(b), n_lab)[states][:, states]
+        got = fit_sample(C, reversible=reversible, initial=initial)
+        if got is not None:
+            out[b] = _set_to_set(got[1], got[0], pi, M)
+        if bar is not None:
+            bar.update(1)
     return out
 
 

@@ -202,3 +202,14 @@ def test_bad_input_raises_input_error():
     fitted = TICA(2, dim=1).fit(x)
     with pytest.raises(InputError, match="trajs has 3 features, but this TICA was fitted on 2"):
         fitted.transform(np.zeros((5, 3)))
+
+
+def test_projection_rows_reproduce_transform():
+    # projection_ is what a model file stores as tica_components: (x - mean_) @ projection_.T must
+    # be exactly the transform (linear algebra, common practice), with and without scaling.
+    rng = np.random.default_rng(7)
+    x = np.cumsum(rng.normal(size=(3000, 4)), axis=0) * 0.01 + rng.normal(size=(3000, 4))
+    for scaling in ("kinetic_map", None):
+        tica = TICA(5, dim=2, scaling=scaling).fit(x)
+        np.testing.assert_allclose((x - tica.mean_) @ tica.projection_.T, tica.transform(x), rtol=1e-10, atol=1e-12)
+        assert tica.projection_.shape == (2, 4)

@@ -253,13 +253,8 @@ class Workbench(widgets.VBox):
                 "microstates": {k: used[k] for k in ("n_states", "method", "stride", "seed")},
                 "tica": None}
         if tica is not None:
-            # The file's tica_components (dim, n_features) are the rows TICA.transform applies, so that
             # (x - tica_mean) @ tica_components.T gives the coordinates the centers live in
-            # (kinetic-map scaling multiplies each component by the eigenvalue).
-            proj = tica.components_
-            if tica.scaling == "kinetic_map":
-                proj = proj * tica.eigenvalues_[:, None]
-            extras.update(tica_mean=tica.mean_, tica_components=proj)
+            extras.update(tica_mean=tica.mean_, tica_components=tica.projection_)
             prep["tica"] = {"lag": int(tica.lag_), "dim": int(tica.dim_), "scaling": tica.scaling,
                             "coordinates": "(x - tica_mean) @ tica_components.T, scaling included"}
         return extras, prep
