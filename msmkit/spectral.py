@@ -22,7 +22,7 @@ __all__ = [
 #: an eigenvalue this close to the unit circle counts as "on" it
 UNIT_CIRCLE_TOL = 1e-9
 #: above this many states, a few leading eigenvalues are found iteratively instead of by a full solve
-ITERATIVE_MIN_STATES = 200
+ITERATIVE_MIN_STATES = 1000
 #: states whose row holds fewer transitions than this are flagged as poorly sampled
 FEW_COUNTS = 10
 

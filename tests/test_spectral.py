@@ -218,3 +218,22 @@ def test_clean_chain_has_no_findings():
     X = np.array([[900.0, 30, 2], [30, 500, 25], [2, 25, 400]])
     T = X / X.sum(axis=1, keepdims=True)
     assert _diag(T, row_counts=np.array([1000, 1000, 1000])) == []
+
+
+def test_leading_eigenvalues_of_a_large_chain_match_the_dense_solver():
+    # Above ITERATIVE_MIN_STATES the k leading eigenpairs come from ARPACK; they must equal the
+    # dense symmetric solution (scipy.linalg.eigvalsh of D^1/2 T D^-1/2, a reference library).
+    from msmkit.spectral import ITERATIVE_MIN_STATES
+    n = ITERATIVE_MIN_STATES + 200
+    rng = np.random.default_rng(3)
+    V = 3 * np.cos(np.linspace(0, 4 * np.pi, n)) + rng.normal(scale=0.3, size=n)
+    up = 0.3 * np.minimum(1, np.exp(V[:-1] - V[1:]))      # Metropolis birth-death chain: reversible
+    down = 0.3 * np.minimum(1, np.exp(V[1:] - V[:-1]))
+    T = np.diag(up, 1) + np.diag(down, -1)
+    T[np.arange(n), np.arange(n)] = 1 - T.sum(axis=1)
+    pi = np.exp(-V) / np.exp(-V).sum()
+    w, v = eigen_decomposition(T, pi, k=5, vectors=True)
+    s = np.sqrt(pi)
+    ref = np.sort(la.eigvalsh(s[:, None] * T / s[None, :]))[::-1][:5]
+    np.testing.assert_allclose(w, ref, rtol=0, atol=1e-10)
+    np.testing.assert_allclose(T @ v, v * w, atol=1e-8)   # right eigenvectors
