@@ -13,7 +13,6 @@ no output file written), 2 a malformed command line.
 from __future__ import annotations
 
 import argparse
-import os
 import sys
 import tempfile
 import warnings
@@ -22,7 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import DiagnosticWarning, InputError, ModelFileError
-from .modelfile import _default_mode
+from .modelfile import atomic_write
 
 __all__ = ["main"]
 
@@ -124,22 +123,8 @@ class _Outputs:
         self.folder.mkdir(parents=True, exist_ok=True)
         written = []
         for name, data in self.files.items():
-            written.append(_atomic_write(self.folder / name, data))
+            written.append(atomic_write(self.folder / name, lambda fh, data=data: fh.write(data)))
         return written
-
-
-def _atomic_write(path: Path, data: bytes) -> Path:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        os.chmod(tmp, _default_mode())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return path
 
 
 # ----------------------------------------------------------------------------- commands

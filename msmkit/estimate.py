@@ -134,7 +134,6 @@ def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1
     balance to rounding error at every iterate, converged or not.
     """
     C = _as_counts(counts)
-    n = C.shape[0]
     if C.nnz == 0:
         raise InputError("counts hold no transitions")
     _check_connected(C)

@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from ._checks import as_label_trajectories, as_state_set, check_dt, check_int, check_lag, check_unit
+from ._checks import as_label_trajectories, as_state_set, check_dt, check_int, check_unit
 from .counts import _count_flat, _flat_to_csr, _prepare, largest_connected_set
 from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix

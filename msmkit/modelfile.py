@@ -90,10 +90,17 @@ def save_model(model, path, *, overwrite: bool = True, **extra_arrays) -> Path:
             if arr.dtype == object:
                 raise InputError(f"{key} must be a numeric array, not Python objects")
             arrays[key] = arr
+    return atomic_write(path, lambda fh: np.savez_compressed(fh, **arrays))
+
+
+def atomic_write(path: Path, write) -> Path:
+    """Write a file atomically: ``write(fh)`` fills a temporary file in the same folder, which
+    then replaces ``path`` in one step, so a crash never leaves half a file over a good one."""
+    path = Path(path)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         with os.fdopen(fd, "wb") as fh:
-            np.savez_compressed(fh, **arrays)
+            write(fh)
             fh.flush()
             os.fsync(fh.fileno())
         os.chmod(tmp, _default_mode())

@@ -11,7 +11,7 @@ import pytest
 
 from msmkit.errors import DiagnosticWarning
 from msmkit.lagscan import lag_scan
-from msmkit.model import MarkovModel, build_model
+from msmkit.model import MarkovModel
 from msmkit.plots import figure_png, plot_populations, plot_timescales
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
