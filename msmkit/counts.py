@@ -6,6 +6,9 @@ Prinz et al., J. Chem. Phys. 134, 174105 (2011): sliding-window counting, connec
 """
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 import scipy.sparse as sp
 from scipy.sparse import csgraph
@@ -106,8 +109,37 @@ def count_transitions(labels, lag, *, n_states=None, sliding=True, client=None) 
 COUNT_BLOCK = 1 << 22
 
 
+#: below this many pairs counting stays on one thread
+PARALLEL_MIN_PAIRS = 1 << 21
+
+
 def _count_flat(runs, lag, n_states, sliding) -> np.ndarray:
     """Counts of all runs as one flat int64 vector of length n_states**2.
+
+    Large inputs are split in two halves by pair index (each run's pairs 0..m/2 and m/2..m,
+    cut on the strided grid) counted on two threads: building the pair codes -- most of the
+    work -- runs in numpy loops that release the interpreter lock. The halves add up exactly.
+    """
+    step = 1 if sliding else lag
+    sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
+    if sum(sizes) < PARALLEL_MIN_PAIRS or (os.cpu_count() or 1) < 2:
+        return _count_flat_serial(runs, lag, n_states, sliding, COUNT_BLOCK)
+    halves = ([], [])
+    for run, m in zip(runs, sizes):
+        if m == 0:
+            continue
+        cut = m // 2  # pairs [0, cut) and [cut, m); a piece keeps the lag frames its pairs reach
+        halves[0].append(run[:(cut - 1) * step + lag + 1] if cut else run[:0])
+        halves[1].append(run[cut * step:])
+    with ThreadPoolExecutor(2) as pool:
+        first, second = pool.map(lambda part: _count_flat_serial(part, lag, n_states, sliding, COUNT_BLOCK // 2),
+                                 halves)
+    first += second
+    return first
+
+
+def _count_flat_serial(runs, lag, n_states, sliding, block) -> np.ndarray:
+    """Counts of all runs as one flat int64 vector of length n_states**2, on this thread.
 
     The pair codes are written into one preallocated buffer of at most :data:`COUNT_BLOCK`
     entries (two in-place passes per piece of a run, no temporaries, no concatenation), which
@@ -119,7 +151,7 @@ def _count_flat(runs, lag, n_states, sliding) -> np.ndarray:
     step = 1 if sliding else lag
     sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
     size = n_states * n_states
-    buf = np.empty(min(sum(sizes), COUNT_BLOCK), dtype=np.intp)
+    buf = np.empty(max(min(sum(sizes), block), 1), dtype=np.intp)
     total = None
     filled = 0
 
@@ -167,8 +199,11 @@ def _histogram(codes: np.ndarray, size: int) -> np.ndarray:
 
 
 def _flat_to_csr(flat: np.ndarray, n_states: int) -> sp.csr_matrix:
-    dense = flat.reshape(n_states, n_states).astype(np.int64, copy=False)
-    return sp.csr_matrix(dense)
+    """The flat row-major count vector as CSR, built from its nonzeros (already in CSR order)."""
+    nz = np.flatnonzero(flat)
+    indptr = np.searchsorted(nz, np.arange(n_states + 1, dtype=np.int64) * n_states)
+    return sp.csr_matrix((flat[nz].astype(np.int64, copy=False), nz % n_states, indptr),
+                         shape=(n_states, n_states))
 
 
 def run_count_rows(labels, lag, *, n_states=None, sliding=True, blocks_per_run=1):

@@ -101,9 +101,10 @@ def sticky_label_runs(draw, max_state=4, max_runs=3):
 
 @settings(max_examples=50, deadline=None)
 @given(runs=st.one_of(label_runs(max_len=60), sticky_label_runs()), lag=st.integers(1, 6), sliding=st.booleans(),
-       block=st.integers(1, 9))
-def test_counts_match_python_loop_in_small_blocks(runs, lag, sliding, block):
-    # a tiny buffer makes the counting flush many partial blocks (and split runs across them)
+       block=st.integers(1, 9), parallel=st.booleans())
+def test_counts_match_python_loop_in_small_blocks(runs, lag, sliding, block, parallel):
+    # a tiny buffer makes the counting flush many partial blocks (and split runs across them);
+    # parallel=True forces the two-thread split of every run's pairs, even for tiny inputs
     longest = max(r.size for r in runs)
     if lag >= longest or not any(np.any(r >= 0) for r in runs):
         return
@@ -111,6 +112,7 @@ def test_counts_match_python_loop_in_small_blocks(runs, lag, sliding, block):
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(counts_module, "COUNT_BLOCK", block)
         mp.setattr(counts_module, "RLE_PROBE", 8)  # decide on sticky encoding from a short probe
+        mp.setattr(counts_module, "PARALLEL_MIN_PAIRS", 0 if parallel else 1 << 60)
         C = count_transitions(runs, lag, sliding=sliding)
     np.testing.assert_array_equal(C.toarray(), loop_counts(runs, lag, n, sliding))
 
