@@ -19,7 +19,6 @@ import numpy as np
 import scipy.sparse as sp
 
 from .counts import largest_connected_set
-from .errors import DiagnosticWarning
 from .estimate import estimate_transition_matrix
 
 #: with fewer runs than this, the bootstrap resamples contiguous blocks instead of whole runs
@@ -73,7 +72,7 @@ def unflatten(flat, n: int) -> sp.csr_matrix:
 def fit_sample(C: sp.csr_matrix, *, reversible: bool, initial=None):
     """Estimate a transition matrix on the largest connected set of a (resampled) count matrix.
 
-    Diagnostics are silenced (a resample is not shown to the user). ``initial`` (a stationary
+    Diagnostics are not issued (a resample is not shown to the user). ``initial`` (a stationary
     vector over the rows of ``C``) warm-starts the reversible estimate where it is positive.
 
     Returns
@@ -88,9 +87,8 @@ def fit_sample(C: sp.csr_matrix, *, reversible: bool, initial=None):
     init = None if initial is None else np.asarray(initial)[keep]
     if init is not None and not np.all(init > 0):
         init = None
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", DiagnosticWarning)
-        T, info = estimate_transition_matrix(Ck, reversible=reversible, return_info=True, initial=init)
+    # no warnings.catch_warnings here: samples run on threads, and the filters are process-wide
+    T, info = estimate_transition_matrix(Ck, reversible=reversible, return_info=True, initial=init, warn=False)
     return keep, T, info.stationary_distribution
 
 

@@ -91,7 +91,7 @@ def _check_connected(C: sp.csr_matrix) -> None:
 
 
 def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1_000_000,
-                               accelerate=True, initial=None, return_info=False):
+                               accelerate=True, initial=None, return_info=False, warn=True):
     """Maximum-likelihood transition matrix from a strongly connected count matrix.
 
     Parameters
@@ -116,6 +116,10 @@ def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1
         Starting stationary vector (e.g. from a neighbouring lag or the full data).
     return_info : bool
         Also return an :class:`EstimationInfo`.
+    warn : bool, default True
+        Issue a DiagnosticWarning when the iteration cap is reached (``info.converged`` says so
+        either way). False is for callers on worker threads, where changing the global warning
+        filters is not safe.
 
     Returns
     -------
@@ -144,7 +148,7 @@ def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1
         info = EstimationInfo("row-normalised", 0, True, log_likelihood(C, T), pi)
         return (T, info) if return_info else T
     T, info = _reversible_mle(C, row, tol=tol, max_iter=max_iter, accelerate=accelerate, initial=initial)
-    if not info.converged:
+    if warn and not info.converged:
         warnings.warn(f"reversible estimate did not converge in {info.iterations} iterations (tol={tol:g}); "
                       f"the matrix is reversible but not yet the maximum-likelihood one", DiagnosticWarning,
                       stacklevel=2)

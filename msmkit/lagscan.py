@@ -8,6 +8,8 @@ Prinz et al., J. Chem. Phys. 134, 174105 (2011): choosing the lag where timescal
 """
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -175,6 +177,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
         n_states = _prepare(runs, lags[0], n_states)[2]
         remote = _dist.scatter_labels(client, runs)
     bar = _progress(L * (1 + n_samples), progress, "lag scan")
+    pool = ThreadPoolExecutor(min(2, os.cpu_count() or 1))
     try:
         for a, lag in enumerate(lags):
             if remote is not None:
@@ -200,11 +203,15 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
                     samples[a] = _dist.bootstrap_timescales(client, sampled, n, lag, dt, reversible,
                                                             initial, n_processes, bar)
                     continue
-                for b in range(n_samples):
-                    got = _sample_timescales(sampled.getrow(b), n, lag, dt, reversible, initial, n_processes)
+                def one(b, sampled=sampled, n=n, lag=lag, initial=initial):
+                    return _sample_timescales(sampled.getrow(b), n, lag, dt, reversible, initial, n_processes)
+
+                # samples are independent; the estimate and eigen-solve release the interpreter lock
+                for b, got in enumerate(pool.map(one, range(n_samples))):
                     samples[a, b, :got.size] = got
                     bar.update(1)
     finally:
+        pool.shutdown()
         bar.close()
 
     if n_samples:

@@ -240,3 +240,14 @@ def test_lags_sorted_and_unique(sample_chain):
     runs = sample_chain(true_chain(), 300, n_runs=5, seed=0)
     assert lag_scan(runs, [4, 1, 4, 2], n_processes=1).lags.tolist() == [1, 2, 4]
     assert lag_scan(runs, 3, n_processes=1).lags.tolist() == [3]
+
+
+def test_bootstrap_on_threads_leaves_warning_filters_alone(sample_chain, reversible_chain):
+    # Samples are fitted on worker threads; the process-wide warning filters must come out of a
+    # scan exactly as they went in (warnings.catch_warnings is not thread-safe; common practice).
+    runs = sample_chain(reversible_chain, 400, n_runs=8, seed=2)
+    before = list(warnings.filters)
+    a = lag_scan(runs, [1, 2], n_samples=12, seed=5)
+    assert warnings.filters == before
+    b = lag_scan(runs, [1, 2], n_samples=12, seed=5)  # threads do not change the answer
+    np.testing.assert_array_equal(a.samples, b.samples)
