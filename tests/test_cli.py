@@ -1,0 +1,128 @@
+"""The msmkit command line: the whole job end to end, and clean failures on bad input."""
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import msmkit as mk
+from msmkit import demo
+from msmkit.cli import main
+
+
+@pytest.fixture(scope="module")
+def demo_files(tmp_path_factory):
+    """A slice of the demo scenario written as one .npy file per run."""
+    folder = tmp_path_factory.mktemp("runs")
+    trajs = demo.trajectories(seed=1, n_runs=8, max_frames=3000)
+    for i, run in enumerate(trajs):
+        np.save(folder / f"run{i:02d}.npy", np.asarray(run))
+    return folder
+
+
+@pytest.fixture(scope="module")
+def demo_output(tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo") / "out"
+    assert main(["demo", "--out", str(out), "-q", "--samples", "20"]) == 0
+    return out
+
+
+def test_demo_writes_every_output(demo_output):
+    names = {p.name for p in demo_output.iterdir()}
+    assert {"model.npz", "implied_timescales.png", "implied_timescales.csv", "populations.csv", "summary.txt",
+            "chapman_kolmogorov.png", "chapman_kolmogorov.csv", "lag_flow.png", "macrostates.csv",
+            "mfpt_macrostates.csv"} <= names
+    assert not [n for n in names if n.endswith(".tmp")]
+    model = mk.load_model(demo_output / "model.npz")
+    assert model.unit == demo.UNIT and model.dt == demo.DT
+    assert model.extras["memberships"].shape == (model.n_states, 3)
+    summary = (demo_output / "summary.txt").read_text()
+    assert "Chapman-Kolmogorov test" in summary and "macrostates (PCCA+): 3" in summary
+
+
+def test_demo_recovers_the_slow_process_of_the_three_basins(demo_output):
+    # The demo's slowest relaxation time from a grid discretisation of its Smoluchowski operator
+    # (demo.reference_timescales, an independent computation); the simulated dynamics relax a few
+    # per cent slower (finite integrator step, see msmkit.demo), so 25 % is allowed. The timescale
+    # must also be stable across lags: the value at every larger scanned lag inside the chosen
+    # lag's bootstrap interval (Prinz et al. 2011, implied-timescale test).
+    model = mk.load_model(demo_output / "model.npz")
+    reference = demo.reference_timescales(1)[0]
+    slowest = model.timescales(1)[0]
+    assert abs(slowest - reference) / reference < 0.25, (slowest, reference)
+    table = pd.read_csv(demo_output / "implied_timescales.csv")
+    first = table[table.process == 1].set_index("lag")
+    chosen = first.loc[model.lag]
+    later = first[first.index > model.lag]
+    assert len(later) >= 1
+    assert np.all((later.timescale >= chosen.lower) & (later.timescale <= chosen.upper))
+
+
+def test_build_scan_and_info_on_files(demo_files, tmp_path, capsys):
+    files = sorted(str(p) for p in demo_files.glob("*.npy"))
+    target = tmp_path / "model.npz"
+    code = main(["build", *files, "--lag", "5", "--states", "20", "--tica-dim", "2", "--dt", "0.1", "--unit", "ns",
+                 "-o", str(target), "-q"])
+    assert code == 0
+    model = mk.load_model(target)
+    assert (model.lag, model.dt, model.unit) == (5, 0.1, "ns")
+    assert model.extras["centers"].shape == (20, 2)
+    assert model.extras["tica_components"].shape == (2, len(demo.FEATURE_NAMES))
+
+    scan_dir = tmp_path / "scan"
+    assert main(["scan", str(demo_files / "*.npy"), "--lags", "1,2,5,10", "--states", "20", "--samples", "5",
+                 "--dt", "0.1", "--unit", "ns", "-o", str(scan_dir), "-q"]) == 0
+    table = pd.read_csv(scan_dir / "implied_timescales.csv")
+    assert sorted(table.lag.unique()) == [1, 2, 5, 10]
+    assert (scan_dir / "implied_timescales.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+    capsys.readouterr()
+    assert main(["info", str(target)]) == 0
+    out = capsys.readouterr().out
+    assert "states kept:       20" in out or "states kept:" in out
+    assert "lag:               5 frames = 0.5 ns" in out
+
+
+@pytest.mark.parametrize("args, message", [
+    (["build", "{missing}", "--lag", "2", "-o", "{out}"], "no such file"),
+    (["build", "{runs}/*.npy", "--lag", "100000", "--states", "5", "-o", "{out}"], "lag"),
+    (["build", "{runs}/*.npy", "--lag", "2", "--states", "100000", "-o", "{out}"], "cluster"),
+    (["build", "{bad}", "--lag", "2", "-o", "{out}"], "file type"),
+    (["scan", "{runs}/*.npy", "--lags", "1,x", "-o", "{out}"], "--lags"),
+])
+def test_bad_input_is_one_line_exit_1_and_writes_nothing(args, message, demo_files, tmp_path, capsys):
+    bad = tmp_path / "notes.docx"
+    bad.write_text("not a trajectory")
+    out = tmp_path / "result"
+    filled = [a.format(missing=tmp_path / "nope.npy", runs=demo_files, out=out, bad=bad) for a in args]
+    assert main(filled + ["-q"]) == 1
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "error:" in err and "Traceback" not in err
+    assert message.lower() in err.lower()
+    assert not out.exists() and not (tmp_path / "result.npz").exists()
+
+
+def test_existing_model_file_is_not_overwritten_without_force(demo_files, tmp_path, capsys):
+    target = tmp_path / "model.npz"
+    target.write_bytes(b"precious")
+    code = main(["build", str(demo_files / "*.npy"), "--lag", "2", "--states", "5", "-o", str(target), "-q"])
+    assert code == 1 and "--force" in capsys.readouterr().err
+    assert target.read_bytes() == b"precious"
+
+
+def test_malformed_command_line_exits_2(capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["build", "x.npy", "--lag", "-3", "-o", "m.npz"])
+    assert exc.value.code == 2
+
+
+def test_installed_command_help_and_error_without_traceback(tmp_path):
+    # the console-script entry point, as a user runs it
+    exe = [sys.executable, "-m", "msmkit.cli"]
+    for sub in ("demo", "build", "scan", "info"):
+        done = subprocess.run(exe + [sub, "--help"], capture_output=True, text=True)
+        assert done.returncode == 0 and "usage:" in done.stdout
+    done = subprocess.run(exe + ["info", str(tmp_path / "none.npz")], capture_output=True, text=True)
+    assert done.returncode == 1
+    assert "Traceback" not in done.stderr and done.stderr.strip().startswith("msmkit info: error:")
