@@ -128,7 +128,7 @@ def _count_flat(runs, lag, n_states, sliding) -> np.ndarray:
     for run, m in zip(runs, sizes):
         if m == 0:
             continue
-        cut = m // 2  # pairs [0, cut) and [cut, m); a piece keeps the lag frames its pairs reach
+        cut = m // 2  # pairs [0, cut) and [cut, m); a piece keeps the lag frames the pairs reach
         halves[0].append(run[:(cut - 1) * step + lag + 1] if cut else run[:0])
         halves[1].append(run[cut * step:])
     with ThreadPoolExecutor(2) as pool:
@@ -199,7 +199,7 @@ def _histogram(codes: np.ndarray, size: int) -> np.ndarray:
 
 
 def _flat_to_csr(flat: np.ndarray, n_states: int) -> sp.csr_matrix:
-    """The flat row-major count vector as CSR, built from its nonzeros (already in CSR order)."""
+    """The flat row-major count vector as CSR, built from the nonzeros (already in CSR order)."""
     nz = np.flatnonzero(flat)
     indptr = np.searchsorted(nz, np.arange(n_states + 1, dtype=np.int64) * n_states)
     return sp.csr_matrix((flat[nz].astype(np.int64, copy=False), nz % n_states, indptr),
