@@ -25,6 +25,7 @@ __all__ = [
     "check_probability",
     "check_unit",
     "as_state_set",
+    "as_transition_matrix",
     "feature_names_of",
     "is_lazy_run",
     "require_optional",
@@ -151,6 +152,41 @@ def as_label_trajectories(labels, name: str = "labels") -> list[np.ndarray]:
     if all(r.size == 0 for r in out):
         raise InputError(f"{name} holds no frames: every trajectory is empty")
     return out
+
+
+def as_transition_matrix(T, name: str = "T", *, tol: float = 1e-6, irreducible: bool = False) -> np.ndarray:
+    """A square, finite, non-negative, row-stochastic float matrix (a dense copy).
+
+    Rows must sum to 1 within ``tol``; tiny negative round-off above ``-tol`` is clipped to 0.
+    With ``irreducible=True`` every state must be reachable from every other.
+    """
+    import scipy.sparse as sp
+    if sp.issparse(T):
+        T = T.toarray()
+    try:
+        arr = np.array(T, dtype=float)
+    except (TypeError, ValueError):
+        raise InputError(f"{name} must be a square row-stochastic matrix of numbers, but got {_short(T)}") from None
+    if arr.ndim != 2 or arr.shape[0] != arr.shape[1] or arr.shape[0] == 0:
+        raise InputError(f"{name} must be a square (n x n) transition matrix with n >= 1, but has shape {arr.shape}")
+    if not np.all(np.isfinite(arr)):
+        raise InputError(f"{name} holds NaN or infinite entries; a transition matrix holds probabilities")
+    if arr.min() < -tol:
+        i, j = np.unravel_index(np.argmin(arr), arr.shape)
+        raise InputError(f"{name} must be non-negative, but {name}[{i}, {j}] = {arr[i, j]:.3g}")
+    np.clip(arr, 0.0, None, out=arr)
+    dev = np.abs(arr.sum(axis=1) - 1.0)
+    if dev.max() > tol:
+        i = int(np.argmax(dev))
+        raise InputError(f"{name} must be row-stochastic (every row sums to 1), but row {i} sums to "
+                         f"{arr[i].sum():.6g}; normalise the rows first")
+    if irreducible:
+        from scipy.sparse import csgraph
+        n_comp, _ = csgraph.connected_components(sp.csr_matrix(arr > 0), directed=True, connection="strong")
+        if n_comp > 1:
+            raise InputError(f"{name} must be irreducible (every state reachable from every other), "
+                             f"but it splits into {n_comp} strongly connected sets")
+    return arr
 
 
 def as_state_set(states, name: str, valid_labels: np.ndarray) -> np.ndarray:

@@ -26,6 +26,7 @@ import numpy as np
 import scipy.linalg as la
 import scipy.sparse as sp
 
+from ._checks import as_transition_matrix
 from .errors import DiagnosticWarning, InputError
 
 __all__ = [
@@ -53,29 +54,7 @@ def _short(value, limit: int = 60) -> str:
 
 
 def _as_transition_matrix(T, name: str = "T") -> np.ndarray:
-    """A square, finite, non-negative, row-stochastic float matrix (dense copy)."""
-    if sp.issparse(T):
-        T = T.toarray()
-    try:
-        arr = np.array(T, dtype=float)
-    except (TypeError, ValueError):
-        raise InputError(f"{name} must be a square row-stochastic matrix of numbers, "
-                         f"but got {_short(T)}") from None
-    if arr.ndim != 2 or arr.shape[0] != arr.shape[1] or arr.shape[0] == 0:
-        raise InputError(f"{name} must be a square (n x n) transition matrix with n >= 1, "
-                         f"but has shape {arr.shape}")
-    if not np.all(np.isfinite(arr)):
-        raise InputError(f"{name} holds NaN or infinite entries; a transition matrix holds probabilities")
-    if arr.min() < -_STOCHASTIC_TOL:
-        i, j = np.unravel_index(np.argmin(arr), arr.shape)
-        raise InputError(f"{name} must be non-negative, but {name}[{i}, {j}] = {arr[i, j]:.3g}")
-    np.clip(arr, 0.0, None, out=arr)
-    dev = np.abs(arr.sum(axis=1) - 1.0)
-    if dev.max() > _STOCHASTIC_TOL:
-        i = int(np.argmax(dev))
-        raise InputError(f"{name} must be row-stochastic (every row sums to 1), but row {i} sums to "
-                         f"{arr[i].sum():.6g}; normalise the rows first")
-    return arr
+    return as_transition_matrix(T, name, tol=_STOCHASTIC_TOL)
 
 
 def _as_stationary(pi, T: np.ndarray, name: str = "pi") -> np.ndarray:

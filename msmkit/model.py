@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from ._checks import as_label_trajectories, as_state_set, check_dt, check_int, check_unit
+from ._checks import as_label_trajectories, as_state_set, as_transition_matrix, check_dt, check_int, check_unit
 from .counts import _count_flat, _flat_to_csr, _prepare, largest_connected_set
 from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix
@@ -315,7 +315,7 @@ class MarkovModel:
         reversible : bool, optional
             Default: detected from detailed balance.
         """
-        T = _check_transition_matrix(transition_matrix)
+        T = as_transition_matrix(transition_matrix, "transition_matrix", tol=1e-8, irreducible=True)
         dt, unit = check_dt(dt), check_unit(unit)
         n = T.shape[0]
         labels = np.arange(n) if states is None else np.asarray(states)
@@ -336,26 +336,6 @@ class MarkovModel:
 
 def _now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
-
-
-def _check_transition_matrix(T) -> np.ndarray:
-    from scipy.sparse import csgraph
-    T = np.asarray(T.toarray() if sp.issparse(T) else T)
-    if T.dtype.kind not in "iuf":
-        raise InputError(f"transition_matrix must be numeric, but has dtype {T.dtype}")
-    T = T.astype(float)
-    if T.ndim != 2 or T.shape[0] != T.shape[1] or T.shape[0] == 0:
-        raise InputError(f"transition_matrix must be a square matrix, but has shape {T.shape}")
-    if not np.all(np.isfinite(T)) or T.min() < 0:
-        raise InputError("transition_matrix must be finite and non-negative")
-    worst = np.max(np.abs(T.sum(axis=1) - 1))
-    if worst > 1e-8:
-        raise InputError(f"transition_matrix rows must sum to 1, but one is off by {worst:.3g}")
-    n_comp, _ = csgraph.connected_components(sp.csr_matrix(T > 0), directed=True, connection="strong")
-    if n_comp > 1:
-        raise InputError(f"transition_matrix must be irreducible (every state reachable from every other), "
-                         f"but it splits into {n_comp} strongly connected sets")
-    return T
 
 
 def fingerprint(runs) -> str:

@@ -400,11 +400,12 @@ def test_from_transition_matrix_periodic_is_flagged():
 
 
 @pytest.mark.parametrize("T, kw, message", [
-    ([[0.5, 0.4], [0.2, 0.8]], {}, r"rows must sum to 1, but one is off by 0\.1"),
-    ([[1.2, -0.2], [0.2, 0.8]], {}, r"finite and non-negative"),
-    ([[0.5, 0.5, 0.0]], {}, r"square matrix, but has shape \(1, 3\)"),
+    ([[0.5, 0.4], [0.2, 0.8]], {}, r"must be row-stochastic \(every row sums to 1\), but row 0 sums to 0\.9"),
+    ([[1.2, -0.2], [0.2, 0.8]], {}, r"must be non-negative, but transition_matrix\[0, 1\] = -0\.2"),
+    ([[np.nan, 1.0], [0.2, 0.8]], {}, r"holds NaN or infinite entries"),
+    ([[0.5, 0.5, 0.0]], {}, r"square \(n x n\) transition matrix with n >= 1, but has shape \(1, 3\)"),
     ([[1.0, 0.0], [0.0, 1.0]], {}, r"irreducible .* splits into 2 strongly connected sets"),
-    ([["a"]], {}, r"must be numeric"),
+    ([["a"]], {}, r"must be a square row-stochastic matrix of numbers"),
     ([[0.5, 0.5], [0.2, 0.8]], {"states": [1, 1]}, r"states must be 2 distinct integer labels"),
     ([[0.5, 0.5], [0.2, 0.8]], {"states": [1.5, 2]}, r"states must be 2 distinct integer labels"),
     ([[0.5, 0.5], [0.2, 0.8]], {"dt": 0}, r"dt \(time between frames\) must be a finite positive number"),
