@@ -503,3 +503,31 @@ def test_default_path_limit_warns_when_it_stops_the_search(monkeypatch):
     with pytest.warns(DiagnosticWarning, match=r"stopped after 2 pathways carrying 70.0% .*asked for 100.0%"):
         paths = rf.pathways(1.0)
     assert [p.states for p in paths] == [(0, 1, 5), (0, 2, 5)]
+
+
+def test_flux_coarse_grained_onto_blocks_keeps_the_total_flux():
+    # Lumping the gross flux onto sets (Noé et al., PNAS 106, 19011 (2009)): the net flux out of
+    # the source set equals the total flux F of the fine network, flux is conserved at the middle
+    # set, and a complete pathway decomposition of the coarse flux adds up to F.
+    T = np.array([[0.80, 0.15, 0.05, 0.00, 0.00, 0.00],
+                  [0.10, 0.80, 0.05, 0.05, 0.00, 0.00],
+                  [0.02, 0.03, 0.80, 0.10, 0.05, 0.00],
+                  [0.00, 0.02, 0.08, 0.80, 0.05, 0.05],
+                  [0.00, 0.00, 0.05, 0.05, 0.80, 0.10],
+                  [0.00, 0.00, 0.00, 0.05, 0.15, 0.80]])
+    pi = stationary(T)
+    labels = np.array([10, 11, 20, 21, 30, 31])
+    fine = reactive_flux(T, pi, [0, 1], [4, 5], labels=labels)
+    coarse = fine.coarse_grain([[10, 11], [20, 21], [30, 31]])
+    net = coarse.net_flux
+    assert net[0].sum() == pytest.approx(fine.total_flux, rel=1e-10)
+    assert net[:, 2].sum() == pytest.approx(fine.total_flux, rel=1e-10)
+    assert net[1].sum() == pytest.approx(net[:, 1].sum(), rel=1e-10)
+    assert coarse.stationary_distribution == pytest.approx([pi[:2].sum(), pi[2:4].sum(), pi[4:].sum()])
+    paths = coarse.pathways(fraction=1.0)
+    assert sum(p.flux for p in paths) == pytest.approx(fine.total_flux, rel=1e-9)
+    assert paths[0].states[0] == 0 and paths[0].states[-1] == 2
+    with pytest.raises(InputError, match="union of whole sets"):
+        fine.coarse_grain([[10], [11, 20, 21], [30, 31]])
+    with pytest.raises(InputError, match="cover every state"):
+        fine.coarse_grain([[10, 11], [30, 31]])
