@@ -444,6 +444,10 @@ def test_kinetics_button_gives_the_public_numbers(wb):
     np.testing.assert_allclose(wb.macrostates.memberships, macro.memberships)
     pd.testing.assert_frame_equal(res.populations, macro.populations())
     assert {"population_lower", "population_upper"} <= set(res.populations.columns)
+    # routes between macrostates: the flux lumped onto them (Noé et al. PNAS 2009)
+    routes = res.flux.coarse_grain(macro.sets).pathways(fraction=1.0)
+    assert f"{' → '.join(str(j) for j in routes[0].states)} carries {100 * routes[0].share:.3g}%" \
+        in panel.flux_summary.value
     mfpt = model.mfpt_matrix(macro.sets)
     for row in res.passage.itertuples():
         a, b = row.from_macrostate, row.to_macrostate

@@ -62,6 +62,8 @@ class KineticsSummary:
     unit: str
 
 
+#: most routes between macrostates listed above the pathway table
+MACRO_ROUTES = 6
 #: bootstrap samples behind the macrostate population intervals
 POPULATION_SAMPLES = 30
 
@@ -354,6 +356,9 @@ def _flux_html(result) -> str:
     lines = [f"From macrostate {result.source} to {result.target}: rate {flux.rate:.4g} per {unit}; one reactive "
              f"event every {flux.mean_time_between_events:.4g} {unit} on average (total flux "
              f"{flux.total_flux:.4g} per lag step)."]
+    routes = flux.coarse_grain(result.macrostates.sets).pathways(fraction=1.0, max_paths=MACRO_ROUTES)
+    lines.append("Routes between macrostates (flux lumped onto them): " + "; ".join(
+        f"{' → '.join(str(j) for j in r.states)} carries {100 * r.share:.3g}%" for r in routes) + ".")
     if len(paths) and carried < result.fraction * (1 - 1e-9):
         lines.append(f"The {len(paths)} strongest pathways carry {100 * carried:.3g}% of the flux, short of the "
                      f"{100 * result.fraction:g}% asked for: the flux is spread over many routes; raise "
