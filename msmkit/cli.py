@@ -252,24 +252,21 @@ def cmd_info(args) -> int:
 
 
 # ----------------------------------------------------------------------------- parser
-def _positive_float(text):
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not np.isfinite(value) or value <= 0:
-        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
-    return value
+def _positive(kind, word):
+    """An argparse type: ``kind(text)`` that must be finite and > 0 (>= 1 for whole numbers)."""
+    def parse(text):
+        try:
+            value = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected {word}, got {text!r}") from None
+        if not np.isfinite(value) or value <= 0:
+            raise argparse.ArgumentTypeError(f"expected a positive {word.split(' ', 1)[1]}, got {text!r}")
+        return value
+    return parse
 
 
-def _positive_int(text):
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}")
-    return value
+_positive_float = _positive(float, "a number")
+_positive_int = _positive(int, "a whole number")
 
 
 def build_parser() -> argparse.ArgumentParser:
