@@ -136,6 +136,14 @@ def _check_disjoint(a: np.ndarray, b: np.ndarray, names: tuple[str, str], labels
                          f"{shown}; remove them from one of the two sets")
 
 
+def _source_and_target(source, target, n: int, labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Source and target as non-empty, disjoint index sets (errors name states by label)."""
+    source = _as_index_set(source, "source", n)
+    target = _as_index_set(target, "target", n)
+    _check_disjoint(source, target, ("source", "target"), labels)
+    return source, target
+
+
 def _as_time_per_step(time_per_step, unit) -> tuple[float, str]:
     if isinstance(time_per_step, (bool, np.bool_)) or not isinstance(time_per_step, numbers.Real) \
             or not np.isfinite(time_per_step) or time_per_step <= 0:
@@ -284,9 +292,7 @@ def mean_first_passage_time(T, pi, source, target, *, labels=None, time_per_step
     pi = _as_stationary(pi, T)
     labels = _as_labels(labels, n)
     time_per_step, _ = _as_time_per_step(time_per_step, "step")
-    source = _as_index_set(source, "source", n)
-    target = _as_index_set(target, "target", n)
-    _check_disjoint(source, target, ("source", "target"), labels)
+    source, target = _source_and_target(source, target, n, labels)
     m = _mfpt_steps(T, _mask(n, target))
     w = pi[source]
     return float(time_per_step * (w @ m[source]) / w.sum())
@@ -397,9 +403,7 @@ def committor(T, source, target, *, backward: bool = False, pi=None, labels=None
     T = _as_transition_matrix(T)
     n = T.shape[0]
     labels = _as_labels(labels, n)
-    source = _as_index_set(source, "source", n)
-    target = _as_index_set(target, "target", n)
-    _check_disjoint(source, target, ("source", "target"), labels)
+    source, target = _source_and_target(source, target, n, labels)
     a, b = _mask(n, source), _mask(n, target)
     if not backward:
         return _committor_forward(T, a, b)
@@ -687,9 +691,7 @@ def reactive_flux(T, pi, source, target, *, labels=None, time_per_step: float = 
     pi = _as_stationary(pi, T)
     labels = _as_labels(labels, n)
     time_per_step, unit = _as_time_per_step(time_per_step, unit)
-    source = _as_index_set(source, "source", n)
-    target = _as_index_set(target, "target", n)
-    _check_disjoint(source, target, ("source", "target"), labels)
+    source, target = _source_and_target(source, target, n, labels)
     a, b = _mask(n, source), _mask(n, target)
     qf = _committor_forward(T, a, b)
     qb = _committor_forward(_time_reversed(T, pi), b, a)
