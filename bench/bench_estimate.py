@@ -34,7 +34,7 @@ def metastable_counts(n=1000, seed=0, height=2.5):
     rows.append(np.arange(nx * ny)); cols.append(np.arange(nx * ny)); vals.append(rng.poisson(pi * 2e7) + 1)
     m = nx * ny
     C = sp.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(m, m))
-    keep = mk.largest_connected_set(C)
+    keep = mk.kept_states(C)
     return C[keep][:, keep]
 
 

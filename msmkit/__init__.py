@@ -6,19 +6,19 @@ dependencies (ipywidgets, dask, mdtraj, h5py) are imported only where they are u
 __version__ = "0.1.0"
 
 from . import demo
-from .counts import connected_sets, count_transitions, largest_connected_set
+from .counts import communicating_classes, count_transitions, kept_states
 from .errors import DiagnosticWarning, InputError, ModelFileError
 from .estimate import estimate_transition_matrix, log_likelihood
 from .io import LazyRun, TrajectorySet, iter_chunks, load_trajectories
-from .kinetics import (Pathway, ReactiveFlux, committor, mean_first_passage_time, mfpt_matrix, mfpt_to_set,
-                       reactive_flux)
+from .kinetics import (Route, TransitionPaths, splitting_probability, mean_passage_time, passage_time_matrix, hitting_steps,
+                       transition_paths)
 from .lagscan import LagScan, lag_scan, suggest_lag
-from .macro import (Macrostates, check_macrostate_gap, coarse_transition_matrix, find_macrostates,
-                    pcca_memberships, suggest_n_macrostates)
+from .macro import (Macrostates, check_macrostate_gap, lumped_propagator, find_macrostates,
+                    pcca_affinity, suggest_n_macrostates)
 from .model import MarkovModel, build_model
 from .modelfile import load_model, save_model
 from .reduce import TICA
-from .spectral import eigen_decomposition, implied_timescales, stationary_distribution
+from .spectral import eigen_decomposition, implied_timescales, equilibrium_distribution
 from .states import Microstates, nearest_center
 from .validate import (CKResult, CrossValidation, LagFlow, chapman_kolmogorov, cross_validate, lag_flow,
                        vamp2_score, vamp2_score_on)
@@ -40,15 +40,15 @@ __all__ = sorted([
     "MarkovModel",
     "Microstates",
     "ModelFileError",
-    "Pathway",
-    "ReactiveFlux",
+    "Route",
+    "TransitionPaths",
     "TICA",
     "TrajectorySet",
     "build_model",
     "check_macrostate_gap",
-    "coarse_transition_matrix",
+    "lumped_propagator",
     "committor",
-    "connected_sets",
+    "communicating_classes",
     "count_transitions",
     "demo",
     "eigen_decomposition",
@@ -57,18 +57,18 @@ __all__ = sorted([
     "implied_timescales",
     "iter_chunks",
     "lag_scan",
-    "largest_connected_set",
+    "kept_states",
     "load_model",
     "load_trajectories",
     "log_likelihood",
-    "mean_first_passage_time",
-    "mfpt_matrix",
-    "mfpt_to_set",
+    "mean_passage_time",
+    "passage_time_matrix",
+    "hitting_steps",
     "nearest_center",
-    "pcca_memberships",
-    "reactive_flux",
+    "pcca_affinity",
+    "transition_paths",
     "save_model",
-    "stationary_distribution",
+    "equilibrium",
     "suggest_lag",
     "suggest_n_macrostates",
 ])

@@ -18,7 +18,7 @@ import warnings
 import numpy as np
 import scipy.sparse as sp
 
-from .counts import largest_connected_set
+from .counts import kept_states
 from .estimate import estimate_transition_matrix
 
 #: with fewer runs than this, the bootstrap resamples contiguous blocks instead of whole runs
@@ -80,7 +80,7 @@ def fit_sample(C: sp.csr_matrix, *, reversible: bool, initial=None):
     (keep, T, pi) with ``keep`` the indices of the connected set, or None when fewer than two
     states remain.
     """
-    keep = largest_connected_set(C) if C.nnz else np.empty(0, dtype=np.intp)
+    keep = kept_states(C) if C.nnz else np.empty(0, dtype=np.intp)
     if keep.size < 2:
         return None
     Ck = C[keep][:, keep]
@@ -89,7 +89,7 @@ def fit_sample(C: sp.csr_matrix, *, reversible: bool, initial=None):
         init = None
     # no warnings.catch_warnings here: samples run on threads, and the filters are process-wide
     T, info = estimate_transition_matrix(Ck, reversible=reversible, return_info=True, initial=init, warn=False)
-    return keep, T, info.stationary_distribution
+    return keep, T, info.equilibrium
 
 
 def percentile_interval(samples: np.ndarray, confidence: float, axis: int = 0):

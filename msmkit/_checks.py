@@ -185,7 +185,7 @@ def as_transition_matrix(T, name: str = "T", *, tol: float = 1e-6, irreducible: 
         n_comp, _ = csgraph.connected_components(sp.csr_matrix(arr > 0), directed=True, connection="strong")
         if n_comp > 1:
             raise InputError(f"{name} must be irreducible (every state reachable from every other), "
-                             f"but it splits into {n_comp} strongly connected sets")
+                             f"but it splits into {n_comp} communicating classes")
     return arr
 
 

@@ -72,7 +72,7 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
         f"  estimator:         {'reversible' if model.reversible else 'non-reversible'} maximum likelihood",
         f"  counts kept:       {100 * model.kept_fraction:.4g}% of transitions",
     ]
-    ts = model.timescales(min(5, model.n_states - 1))
+    ts = model.relaxation_times(min(5, model.n_states - 1))
     lines.append(f"  slowest implied timescales [{model.unit}]: " + ", ".join(f"{t:.4g}" for t in ts))
     pops = model.populations().nlargest(5, "population")
     lines.append("  most populated states (label: population):")
@@ -86,7 +86,7 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
         pops = macro.populations()
         lines += [f"    {int(r.macrostate)}: population {r.population:.4f}, {len(r.states)} microstates"
                   for r in pops.itertuples()]
-        mfpt = macro.mfpt_table()
+        mfpt = macro.passage_time_table()
         lines.append(f"  mean first-passage times between macrostates [{model.unit}] (row -> column):")
         lines += ["    " + line for line in mfpt.to_string(float_format=lambda v: f"{v:.4g}").splitlines()]
     if ck is not None:
@@ -152,9 +152,9 @@ def _validate(model, labels, args, out: _Outputs):
     """Macrostates (suggested number), the Chapman-Kolmogorov test and the lag-flow view."""
     from .plots import plot_chapman_kolmogorov, plot_lag_flow
     from .validate import chapman_kolmogorov, lag_flow
-    n_sets, reason = model.suggest_macrostates()
+    n_sets, reason = model.suggest_n_macrostates()
     n_sets = max(2, n_sets)
-    macro = model.macrostates(n_sets)
+    macro = model.find_macrostates(n_sets)
     longest = max(len(r) for r in labels)
     multiples = max(1, min(args.multiples, (longest - 1) // model.lag))
     ck = chapman_kolmogorov(model, labels, n_sets=n_sets, multiples=multiples, n_samples=args.samples,
@@ -163,7 +163,7 @@ def _validate(model, labels, args, out: _Outputs):
     out.add_text("chapman_kolmogorov.csv", ck.table().to_csv(index=False))
     out.add_figure("lag_flow.png", plot_lag_flow(lag_flow(ck)))
     out.add_text("macrostates.csv", macro.populations().to_csv(index=False))
-    out.add_text("mfpt_macrostates.csv", macro.mfpt_table().to_csv())
+    out.add_text("mfpt_macrostates.csv", macro.passage_time_table().to_csv())
     return macro, reason, ck
 
 
@@ -183,7 +183,7 @@ def cmd_demo(args) -> int:
     macro, reason, ck = _validate(model, labels, args, out)
     out.add_text("summary.txt", summary_text(model, scan, macro=macro, macro_reason=reason, ck=ck))
     with tempfile.TemporaryDirectory() as tmp:
-        path = save_model(model, Path(tmp) / "model.npz", memberships=macro.memberships, **_extras(tica, micro))
+        path = save_model(model, Path(tmp) / "model.npz", affinity=macro.affinity, **_extras(tica, micro))
         out.files["model.npz"] = path.read_bytes()
     for p in out.write():
         _say(args, f"wrote {p}")
@@ -236,10 +236,10 @@ def cmd_info(args) -> int:
     model = load_model(args.model)
     macro, reason = None, ""
     if model.n_states > 2:
-        n_sets, reason = model.suggest_macrostates()
-        if "memberships" in model.extras:
-            n_sets, reason = model.extras["memberships"].shape[1], "as stored with the model"
-        macro = model.macrostates(max(2, n_sets))
+        n_sets, reason = model.suggest_n_macrostates()
+        if "affinity" in model.extras:
+            n_sets, reason = model.extras["affinity"].shape[1], "as stored with the model"
+        macro = model.find_macrostates(max(2, n_sets))
     print(summary_text(model, macro=macro, macro_reason=reason), end="")
     meta = model.metadata
     if "created" in meta:

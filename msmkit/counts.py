@@ -1,4 +1,4 @@
-"""Transition counting at a lag time, and strongly connected sets of states.
+"""Transition counting at a lag time, and communicating classes of states.
 
 References
 ----------
@@ -16,21 +16,21 @@ from scipy.sparse import csgraph
 from ._checks import as_label_trajectories, check_int, check_lag
 from .errors import InputError
 
-__all__ = ["count_transitions", "connected_sets", "largest_connected_set", "run_count_rows"]
+__all__ = ["count_transitions", "communicating_classes", "kept_states", "run_count_rows"]
 
 #: codes inspected to decide whether run-length encoding pays off, and the change rate below which it does
 RLE_PROBE = 100_000
 RLE_CHANGE_FRACTION = 0.35
 
 
-def _pair_codes(run: np.ndarray, lag: int, n_states: int, sliding: bool) -> np.ndarray:
+def _pair_codes(run: np.ndarray, lag: int, n_states: int, every_frame: bool) -> np.ndarray:
     """Flat codes ``i * n_states + j`` of the counted pairs (i at t, j at t + lag) of one run.
 
     Pairs with either end labelled -1 are left out. Returns an intp array.
     """
     if run.size <= lag:
         return np.empty(0, dtype=np.intp)
-    step = 1 if sliding else lag
+    step = 1 if every_frame else lag
     start = run[:-lag:step]
     end = run[lag::step]
     codes = start.astype(np.intp)
@@ -61,7 +61,7 @@ def _prepare(labels, lag, n_states):
     return runs, lag, n_states
 
 
-def count_transitions(labels, lag, *, n_states=None, sliding=True, client=None) -> sp.csr_matrix:
+def count_transitions(labels, lag, *, n_states=None, every_frame=True, client=None) -> sp.csr_matrix:
     """Count transitions between states at a lag time.
 
     Parameters
@@ -74,7 +74,7 @@ def count_transitions(labels, lag, *, n_states=None, sliding=True, client=None) 
         Lag time in frames (>= 1). Runs no longer than the lag contribute nothing.
     n_states : int, optional
         Size of the count matrix; default is the largest label + 1.
-    sliding : bool, default True
+    every_frame : bool, default True
         Count every pair (t, t + lag) (sliding window); otherwise only t = 0, lag, 2 lag, ...
         (strided, statistically independent counts for a Markov chain).
     client : dask.distributed.Client, optional
@@ -98,9 +98,9 @@ def count_transitions(labels, lag, *, n_states=None, sliding=True, client=None) 
     if client is not None:
         from . import distributed as _dist
 
-        flat = _dist.count_flat(client, runs, lag, n_states, sliding)
+        flat = _dist.count_flat(client, runs, lag, n_states, every_frame)
     else:
-        flat = _count_flat(runs, lag, n_states, sliding)
+        flat = _count_flat(runs, lag, n_states, every_frame)
     return _flat_to_csr(flat, n_states)
 
 
@@ -113,17 +113,17 @@ COUNT_BLOCK = 1 << 22
 PARALLEL_MIN_PAIRS = 1 << 21
 
 
-def _count_flat(runs, lag, n_states, sliding) -> np.ndarray:
+def _count_flat(runs, lag, n_states, every_frame) -> np.ndarray:
     """Counts of all runs as one flat int64 vector of length n_states**2.
 
     Large inputs are split in two halves by pair index (each run's pairs 0..m/2 and m/2..m,
     cut on the strided grid) counted on two threads: building the pair codes -- most of the
     work -- runs in numpy loops that release the interpreter lock. The halves add up exactly.
     """
-    step = 1 if sliding else lag
+    step = 1 if every_frame else lag
     sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
     if sum(sizes) < PARALLEL_MIN_PAIRS or (os.cpu_count() or 1) < 2:
-        return _count_flat_serial(runs, lag, n_states, sliding, COUNT_BLOCK)
+        return _count_flat_serial(runs, lag, n_states, every_frame, COUNT_BLOCK)
     halves = ([], [])
     for run, m in zip(runs, sizes):
         if m == 0:
@@ -132,13 +132,13 @@ def _count_flat(runs, lag, n_states, sliding) -> np.ndarray:
         halves[0].append(run[:(cut - 1) * step + lag + 1] if cut else run[:0])
         halves[1].append(run[cut * step:])
     with ThreadPoolExecutor(2) as pool:
-        first, second = pool.map(lambda part: _count_flat_serial(part, lag, n_states, sliding, COUNT_BLOCK // 2),
+        first, second = pool.map(lambda part: _count_flat_serial(part, lag, n_states, every_frame, COUNT_BLOCK // 2),
                                  halves)
     first += second
     return first
 
 
-def _count_flat_serial(runs, lag, n_states, sliding, block) -> np.ndarray:
+def _count_flat_serial(runs, lag, n_states, every_frame, block) -> np.ndarray:
     """Counts of all runs as one flat int64 vector of length n_states**2, on this thread.
 
     The pair codes are written into one preallocated buffer of at most :data:`COUNT_BLOCK`
@@ -148,7 +148,7 @@ def _count_flat_serial(runs, lag, n_states, sliding, block) -> np.ndarray:
     state, so consecutive pair codes repeat -- and then the codes are run-length encoded
     first, which makes the scattered histogram update (the costly part) several times shorter.
     """
-    step = 1 if sliding else lag
+    step = 1 if every_frame else lag
     sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
     size = n_states * n_states
     buf = np.empty(max(min(sum(sizes), block), 1), dtype=np.intp)
@@ -206,7 +206,7 @@ def _flat_to_csr(flat: np.ndarray, n_states: int) -> sp.csr_matrix:
                          shape=(n_states, n_states))
 
 
-def run_count_rows(labels, lag, *, n_states=None, sliding=True, blocks_per_run=1):
+def run_count_rows(labels, lag, *, n_states=None, every_frame=True, blocks_per_run=1):
     """Per-run (or per-block) count matrices, stacked as rows of one sparse matrix.
 
     Row r holds the flattened (n_states * n_states) count matrix of run r, so that a
@@ -221,21 +221,21 @@ def run_count_rows(labels, lag, *, n_states=None, sliding=True, blocks_per_run=1
     """
     runs, lag, n_states = _prepare(labels, lag, n_states)
     blocks_per_run = check_int(blocks_per_run, "blocks_per_run", minimum=1)
-    return _stack_rows([_run_rows(run, lag, n_states, sliding, blocks_per_run) for run in runs],
+    return _stack_rows([_run_rows(run, lag, n_states, every_frame, blocks_per_run) for run in runs],
                             n_states), n_states
 
 
-def _run_rows(run, lag, n_states, sliding, blocks_per_run) -> list:
+def _run_rows(run, lag, n_states, every_frame, blocks_per_run) -> list:
     """The rows of one run for :func:`run_count_rows`: one (codes, counts) pair per block."""
     out = []
     n_pairs = max(run.size - lag, 0)
     edges = np.linspace(0, n_pairs, blocks_per_run + 1).astype(np.intp)
     for b in range(blocks_per_run):
         start = int(edges[b])
-        if not sliding:  # stay on the strided grid t = 0, lag, 2 lag, ... of the whole run
+        if not every_frame:  # stay on the strided grid t = 0, lag, 2 lag, ... of the whole run
             start = -(-start // lag) * lag
         piece = run[start: edges[b + 1] + lag] if edges[b + 1] > start else run[:0]
-        out.append(np.unique(_pair_codes(piece, lag, n_states, sliding), return_counts=True))
+        out.append(np.unique(_pair_codes(piece, lag, n_states, every_frame), return_counts=True))
     return out
 
 
@@ -248,8 +248,8 @@ def _stack_rows(per_run, n_states) -> sp.csr_matrix:
                          shape=(len(pieces), n_states * n_states))
 
 
-def connected_sets(counts) -> list[np.ndarray]:
-    """Strongly connected sets of the count graph, largest number of counts first.
+def communicating_classes(counts) -> list[np.ndarray]:
+    """Communicating classes of the count graph, largest number of counts first.
 
     States with no counts at all are left out. Ties in counts go to the set holding the
     lowest label.
@@ -282,9 +282,9 @@ def connected_sets(counts) -> list[np.ndarray]:
     return [members[bounds[k]:bounds[k + 1]] for k in order]
 
 
-def largest_connected_set(counts) -> np.ndarray:
+def kept_states(counts) -> np.ndarray:
     """The strongly connected set holding the most transition counts (ties: lowest label)."""
-    sets = connected_sets(counts)
+    sets = communicating_classes(counts)
     if not sets:
         raise InputError("counts hold no transitions: there is no connected set of states")
     return sets[0]

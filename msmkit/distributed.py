@@ -495,20 +495,20 @@ def assign_runs(client, runs, centers, chunk, bar=None) -> list[np.ndarray]:
     return out
 
 
-def _task_count(items, lag, n_states, sliding):
+def _task_count(items, lag, n_states, every_frame):
     from .counts import _count_flat
-    flat = _count_flat(list(items), lag, n_states, sliding)
+    flat = _count_flat(list(items), lag, n_states, every_frame)
     nz = np.flatnonzero(flat)
     return nz, flat[nz], [int(np.asarray(r).size) for r in items]
 
 
-def count_flat(client, runs, lag, n_states, sliding) -> np.ndarray:
+def count_flat(client, runs, lag, n_states, every_frame) -> np.ndarray:
     """The summed flat count vector of :func:`msmkit.counts._count_flat`, runs counted on the
     workers (whole runs: pairs never span two tasks)."""
     check_client(client)
     groups = _groups([r.size for r in runs], TASKS_PER_THREAD * _n_threads(client))
     items = _items(client, runs)
-    futures = [client.submit(_task_count, [items[i] for i in g], lag, n_states, sliding, pure=False)
+    futures = [client.submit(_task_count, [items[i] for i in g], lag, n_states, every_frame, pure=False)
                for g in groups]
     got = _collect(client, futures, [f"label runs {g[0]}..{g[-1]}" for g in groups])
     _check_label_lengths(runs, [n for _, _, sizes in got for n in sizes], "count_transitions")
@@ -532,16 +532,16 @@ def scatter_labels(client, runs) -> list:
     return _items(client, runs)
 
 
-def _task_rows(items, lag, n_states, sliding, blocks):
+def _task_rows(items, lag, n_states, every_frame, blocks):
     from .counts import _run_rows
-    return [_run_rows(item, lag, n_states, sliding, blocks) for item in items]
+    return [_run_rows(item, lag, n_states, every_frame, blocks) for item in items]
 
 
-def count_rows(client, items, sizes, lag, n_states, sliding, blocks):
+def count_rows(client, items, sizes, lag, n_states, every_frame, blocks):
     """:func:`msmkit.counts.run_count_rows` with the runs counted on the workers."""
     from .counts import _stack_rows
     groups = _groups(sizes, TASKS_PER_THREAD * _n_threads(client))
-    futures = [client.submit(_task_rows, [items[i] for i in g], lag, n_states, sliding, blocks,
+    futures = [client.submit(_task_rows, [items[i] for i in g], lag, n_states, every_frame, blocks,
                              pure=False) for g in groups]
     per_run = [r for part in _collect(client, futures, [f"label runs {g[0]}..{g[-1]}" for g in groups])
                for r in part]

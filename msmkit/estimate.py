@@ -36,13 +36,13 @@ class EstimationInfo:
     converged : bool
     log_likelihood : float
         sum_ij C_ij log T_ij of the returned matrix (natural log).
-    stationary_distribution : ndarray
+    equilibrium : ndarray
     """
     method: str
     iterations: int
     converged: bool
     log_likelihood: float
-    stationary_distribution: np.ndarray
+    equilibrium: np.ndarray
 
 
 def _as_counts(counts) -> sp.csr_matrix:
@@ -68,13 +68,13 @@ def _as_counts(counts) -> sp.csr_matrix:
     return C
 
 
-def log_likelihood(counts, transition_matrix) -> float:
+def log_likelihood(counts, propagator) -> float:
     """Log-likelihood sum_ij C_ij ln T_ij of a transition matrix given counts (natural log).
 
     Returns -inf when a counted transition has probability zero.
     """
     C = sp.coo_matrix(counts)
-    T = transition_matrix
+    T = propagator
     vals = T[C.row, C.col] if isinstance(T, np.ndarray) else np.asarray(T[C.row, C.col]).ravel()
     with np.errstate(divide="ignore"):
         return float(np.sum(C.data * np.log(vals)))
@@ -87,7 +87,7 @@ def _check_connected(C: sp.csr_matrix) -> None:
         raise InputError(
             f"counts must be strongly connected (every state reachable from every other), but they form "
             f"{n_comp} separate sets of sizes {sorted(sizes.tolist(), reverse=True)[:5]}; restrict them to "
-            f"msmkit.largest_connected_set(counts) first, or use build_model(), which does it for you")
+            f"msmkit.kept_states(counts) first, or use build_model(), which does it for you")
 
 
 def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1_000_000,
@@ -150,14 +150,14 @@ def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1
     T, info = _reversible_mle(C, row, tol=tol, max_iter=max_iter, accelerate=accelerate, initial=initial)
     if warn and not info.converged:
         warnings.warn(f"reversible estimate did not converge in {info.iterations} iterations (tol={tol:g}); "
-                      f"the matrix is reversible but not yet the maximum-likelihood one", DiagnosticWarning,
+                      f"the matrix obeys detailed balance but not yet the maximum-likelihood one", DiagnosticWarning,
                       stacklevel=2)
     return (T, info) if return_info else T
 
 
 def _stationary_nonreversible(T: np.ndarray) -> np.ndarray:
-    from .spectral import stationary_distribution
-    return stationary_distribution(T)
+    from .spectral import equilibrium_distribution
+    return equilibrium_distribution(T)
 
 
 class _SymmetricCounts:

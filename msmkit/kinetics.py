@@ -1,4 +1,4 @@
-"""Kinetics of a Markov chain: mean first-passage times, committors, reactive flux, pathways.
+"""Kinetics of a Markov chain: mean first-passage times, committors, reactive flux, routes.
 
 Every function here works on plain arrays: a row-stochastic transition matrix ``T`` (one row
 per state of the kept set, one step = one lag time), the stationary distribution ``pi`` and
@@ -13,7 +13,7 @@ fundamental matrix.
 E & Vanden-Eijnden, J. Stat. Phys. 123, 503 (2006): transition path theory.
 Metzner, Schütte & Vanden-Eijnden, Multiscale Model. Simul. 7, 1192 (2009): transition path
 theory for Markov jump processes and chains; reactive flux, rate, pathway decomposition.
-Noé, Schütte, Vanden-Eijnden, Reich & Weikl, PNAS 106, 19011 (2009): folding pathways from
+Noé, Schütte, Vanden-Eijnden, Reich & Weikl, PNAS 106, 19011 (2009): folding routes from
 the net flux of a Markov model.
 """
 from __future__ import annotations
@@ -30,18 +30,18 @@ from ._checks import as_transition_matrix
 from .errors import DiagnosticWarning, InputError
 
 __all__ = [
-    "Pathway",
-    "ReactiveFlux",
+    "Route",
+    "TransitionPaths",
     "committor",
-    "mean_first_passage_time",
-    "mfpt_matrix",
-    "mfpt_to_set",
-    "reactive_flux",
+    "mean_passage_time",
+    "passage_time_matrix",
+    "hitting_steps",
+    "transition_paths",
 ]
 
 #: tolerance on row sums of T and on the normalisation / stationarity of pi
 _STOCHASTIC_TOL = 1e-6
-#: pathways found at most when no ``max_paths`` is given (a DiagnosticWarning says when hit)
+#: routes found at most when no ``max_paths`` is given (a DiagnosticWarning says when hit)
 DEFAULT_MAX_PATHS = 1000
 
 
@@ -187,12 +187,12 @@ def _surely_hits(T: np.ndarray, absorbing: np.ndarray) -> np.ndarray:
 
 
 def _time_reversed(T: np.ndarray, pi: np.ndarray) -> np.ndarray:
-    """The time-reversed chain R_ij = pi_j T_ji / pi_i (equal to T when T is reversible)."""
+    """The time-reversed chain R_ij = pi_j T_ji / pi_i (equal to T when T obeys detailed balance)."""
     return T.T * pi[None, :] / pi[:, None]
 
 
 def _mfpt_steps(T: np.ndarray, target_mask: np.ndarray) -> np.ndarray:
-    """Trusting helper of :func:`mfpt_to_set`: m_i in steps, 0 on the target, inf if unreachable."""
+    """Trusting helper of :func:`hitting_steps`: m_i in steps, 0 on the target, inf if unreachable."""
     n = T.shape[0]
     m = np.full(n, np.inf)
     m[target_mask] = 0.0
@@ -228,7 +228,7 @@ def _committor_forward(T: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarra
 
 # --------------------------------------------------------------------------- first passage
 
-def mfpt_to_set(T, target) -> np.ndarray:
+def hitting_steps(T, target) -> np.ndarray:
     """Mean first-passage time from every state to a target set, in steps of the chain.
 
     Solves (I - T_cc) m_c = 1 on the complement c of the target, with m = 0 on the target
@@ -250,7 +250,7 @@ def mfpt_to_set(T, target) -> np.ndarray:
 
     Examples
     --------
-    >>> mfpt_to_set([[0.9, 0.1], [0.5, 0.5]], [1])
+    >>> hitting_steps([[0.9, 0.1], [0.5, 0.5]], [1])
     array([10.,  0.])
     """
     T = _as_transition_matrix(T)
@@ -258,7 +258,7 @@ def mfpt_to_set(T, target) -> np.ndarray:
     return _mfpt_steps(T, _mask(T.shape[0], target))
 
 
-def mean_first_passage_time(T, pi, source, target, *, labels=None, time_per_step: float = 1.0) -> float:
+def mean_passage_time(T, pi, source, target, *, labels=None, time_per_step: float = 1.0) -> float:
     """Mean first-passage time from a source set to a target set.
 
     The first-passage times of the source states are averaged with their stationary weights
@@ -298,7 +298,7 @@ def mean_first_passage_time(T, pi, source, target, *, labels=None, time_per_step
     return float(time_per_step * (w @ m[source]) / w.sum())
 
 
-def mfpt_matrix(T, pi, sets, *, labels=None, time_per_step: float = 1.0) -> np.ndarray:
+def passage_time_matrix(T, pi, sets, *, labels=None, time_per_step: float = 1.0) -> np.ndarray:
     """Mean first-passage times between every pair of disjoint sets (macrostates, say).
 
     Entry (a, b) is the mean first-passage time from set a (averaged with stationary weights
@@ -356,13 +356,13 @@ def mfpt_matrix(T, pi, sets, *, labels=None, time_per_step: float = 1.0) -> np.n
 
 # --------------------------------------------------------------------------- committors
 
-def committor(T, source, target, *, backward: bool = False, pi=None, labels=None) -> np.ndarray:
-    """Forward or backward committor between two disjoint sets of states.
+def splitting_probability(T, source, target, *, reverse_time: bool = False, pi=None, labels=None) -> np.ndarray:
+    """Committor, forward or backward in time, between two disjoint sets of states.
 
-    The forward committor q+_i is the probability that the chain, started in state i, enters
-    the target before the source (0 on the source, 1 on the target). The backward committor
-    q-_i is the probability that the chain, observed in state i, came last from the source
-    rather than the target (1 on the source, 0 on the target); it is the forward committor of
+    The committor q+_i (forward in time) is the probability that the chain, started in state i, enters
+    the target before the source (0 on the source, 1 on the target). The counterpart backward in time,
+    q-_i, is the probability that the chain, observed in state i, came last from the source
+    rather than the target (1 on the source, 0 on the target); it is the committor q+ of
     the time-reversed chain pi_j T_ji / pi_i towards the source, and equals 1 - q+ for a
     reversible chain.
 
@@ -372,10 +372,10 @@ def committor(T, source, target, *, backward: bool = False, pi=None, labels=None
         Row-stochastic transition matrix.
     source, target : int, sequence of int or boolean mask
         Positions (row indices) of two disjoint, non-empty sets (A and B).
-    backward : bool
-        Return the backward committor q- instead of the forward one.
+    reverse_time : bool
+        Return the committor backward in time q- instead of the forward one.
     pi : array_like, shape (n,), optional
-        Stationary distribution of T; required for ``backward=True``.
+        Stationary distribution of T; required for ``reverse_time=True``.
     labels : array_like of int, shape (n,), optional
         Original label of every row, used in error messages.
 
@@ -397,7 +397,7 @@ def committor(T, source, target, *, backward: bool = False, pi=None, labels=None
     ...               [0.09, 0.90, 0.00, 0.01],
     ...               [0.01, 0.00, 0.90, 0.09],
     ...               [0.00, 0.01, 0.09, 0.90]])
-    >>> committor(T, [0], [3]).round(3)
+    >>> splitting_probability(T, [0], [3]).round(3)
     array([0. , 0.1, 0.9, 1. ])
     """
     T = _as_transition_matrix(T)
@@ -405,11 +405,11 @@ def committor(T, source, target, *, backward: bool = False, pi=None, labels=None
     labels = _as_labels(labels, n)
     source, target = _source_and_target(source, target, n, labels)
     a, b = _mask(n, source), _mask(n, target)
-    if not backward:
+    if not reverse_time:
         return _committor_forward(T, a, b)
     if pi is None:
-        raise InputError("pi (the stationary distribution) is required for the backward committor "
-                         "(backward=True), which uses the time-reversed chain")
+        raise InputError("pi (the stationary distribution) is required for the committor backward in time "
+                         "(reverse_time=True), which uses the time-reversed chain")
     pi = _as_stationary(pi, T)
     return _committor_forward(_time_reversed(T, pi), b, a)
 
@@ -417,7 +417,7 @@ def committor(T, source, target, *, backward: bool = False, pi=None, labels=None
 # --------------------------------------------------------------------------- reactive flux
 
 @dataclass(frozen=True)
-class Pathway:
+class Route:
     """One A -> B pathway of a net-flux decomposition.
 
     Attributes
@@ -436,11 +436,11 @@ class Pathway:
 
 
 @dataclass(frozen=True, eq=False)
-class ReactiveFlux:
+class TransitionPaths:
     """Transition path theory between a source set A and a target set B.
 
     Matrices and per-state vectors are indexed like the transition matrix: row/column i is the
-    state with original label ``states[i]``. Tables and pathways name states by label.
+    state with original label ``states[i]``. Tables and routes name states by label.
 
     Attributes
     ----------
@@ -448,14 +448,14 @@ class ReactiveFlux:
         Original labels of the states of A and B.
     states : ndarray of int, shape (n,)
         Original label of each row of the matrices below.
-    stationary_distribution : ndarray, shape (n,)
-    forward_committor, backward_committor : ndarray, shape (n,)
+    equilibrium : ndarray, shape (n,)
+    reach_target, came_from_source : ndarray, shape (n,)
         q+ (probability to reach B before A) and q- (probability to have come last from A).
-    gross_flux : ndarray, shape (n, n)
+    reactive_current : ndarray, shape (n, n)
         f_ij = pi_i q-_i T_ij q+_j for i != j: probability per step of a reactive i -> j jump.
-    net_flux : ndarray, shape (n, n)
+    net_current : ndarray, shape (n, n)
         max(f_ij - f_ji, 0), probability per step.
-    total_flux : float
+    throughput : float
         Reactive A -> B events per step: the net flux out of A (= into B).
     rate : float
         A -> B rate constant k_AB = F / (tau sum_i pi_i q-_i), in 1/``unit``.
@@ -473,30 +473,30 @@ class ReactiveFlux:
     source: np.ndarray
     target: np.ndarray
     states: np.ndarray
-    stationary_distribution: np.ndarray = field(repr=False)
-    forward_committor: np.ndarray = field(repr=False)
-    backward_committor: np.ndarray = field(repr=False)
-    gross_flux: np.ndarray = field(repr=False)
-    net_flux: np.ndarray = field(repr=False)
-    total_flux: float
-    rate: float
+    equilibrium: np.ndarray = field(repr=False)
+    reach_target: np.ndarray = field(repr=False)
+    came_from_source: np.ndarray = field(repr=False)
+    reactive_current: np.ndarray = field(repr=False)
+    net_current: np.ndarray = field(repr=False)
+    throughput: float
+    rate_constant: float
     time_per_step: float = 1.0
     unit: str = "step"
 
     @property
     def event_frequency(self) -> float:
         """Reactive A -> B events per unit of time (total flux / tau), in 1/``unit``."""
-        return self.total_flux / self.time_per_step
+        return self.throughput / self.time_per_step
 
     @property
     def mean_time_between_events(self) -> float:
         """Mean time between two consecutive A -> B events (tau / total flux), in ``unit``."""
-        return np.inf if self.total_flux == 0 else self.time_per_step / self.total_flux
+        return np.inf if self.throughput == 0 else self.time_per_step / self.throughput
 
-    def coarse_grain(self, sets) -> "ReactiveFlux":
-        """The flux lumped onto sets of states (e.g. macrostates), as a flux between the sets.
+    def lump(self, sets) -> "TransitionPaths":
+        """The current lumped onto sets of states (e.g. macrostates), as a flux between the sets.
 
-        Gross flux between sets I and J is the sum of f_ij over i in I, j in J; the net flux is
+        The reactive current between sets I and J is the sum of f_ij over i in I, j in J; the net flux is
         max(F_IJ - F_JI, 0); committors are averaged with the stationary weights inside each
         set (Noé et al., PNAS 106, 19011 (2009)). Total flux and rate are unchanged. Pathways
         of the result run through sets: ``states`` of the result are the set numbers 0..k-1.
@@ -509,7 +509,7 @@ class ReactiveFlux:
 
         Returns
         -------
-        ReactiveFlux
+        TransitionPaths
         """
         n = len(self.states)
         index = {int(lab): i for i, lab in enumerate(self.states)}
@@ -540,17 +540,17 @@ class ReactiveFlux:
             if whole.size != members.size:
                 raise InputError(f"the {name} must be a union of whole sets, but sets {ids.tolist()} hold states "
                                  f"outside it")
-        gross = lump.T @ self.gross_flux @ lump
+        gross = lump.T @ self.reactive_current @ lump
         np.fill_diagonal(gross, 0.0)
-        pi = lump.T @ self.stationary_distribution
+        pi = lump.T @ self.equilibrium
         with np.errstate(invalid="ignore", divide="ignore"):
-            qf = lump.T @ (self.stationary_distribution * self.forward_committor) / pi
-            qb = lump.T @ (self.stationary_distribution * self.backward_committor) / pi
-        return ReactiveFlux(src_sets, tgt_sets, np.arange(k), pi, qf, qb, gross, np.maximum(gross - gross.T, 0.0),
-                            self.total_flux, self.rate, self.time_per_step, self.unit)
+            qf = lump.T @ (self.equilibrium * self.reach_target) / pi
+            qb = lump.T @ (self.equilibrium * self.came_from_source) / pi
+        return TransitionPaths(src_sets, tgt_sets, np.arange(k), pi, qf, qb, gross, np.maximum(gross - gross.T, 0.0),
+                            self.throughput, self.rate_constant, self.time_per_step, self.unit)
 
-    def pathways(self, fraction: float = 0.99, *, max_paths: int | None = None) -> list[Pathway]:
-        """Decompose the net flux into A -> B pathways, strongest first.
+    def routes(self, fraction: float = 0.99, *, max_paths: int | None = None) -> list[Route]:
+        """Decompose the net flux into A -> B routes, strongest first.
 
         Repeatedly finds the path whose smallest net-flux edge (the bottleneck) is largest,
         records that bottleneck flux for the path and subtracts it from every edge along the
@@ -570,7 +570,7 @@ class ReactiveFlux:
 
         Returns
         -------
-        list of Pathway
+        list of Route
             States as original labels; ``flux`` per step; ``share`` of the total flux.
 
         Notes
@@ -591,19 +591,19 @@ class ReactiveFlux:
         a = _mask(len(self.states), np.array([index[int(x)] for x in self.source]))
         b = _mask(len(self.states), np.array([index[int(x)] for x in self.target]))
         limit = DEFAULT_MAX_PATHS if max_paths is None else int(max_paths)
-        found = _decompose(self.net_flux, a, b, fraction * self.total_flux, limit)
-        total = self.total_flux
+        found = _decompose(self.net_current, a, b, fraction * self.throughput, limit)
+        total = self.throughput
         carried = sum(f for _, f in found)
         if max_paths is None and len(found) == limit and carried < fraction * total * (1 - 1e-9):
-            warnings.warn(f"stopped after {limit} pathways carrying {carried / total:.1%} of the "
+            warnings.warn(f"stopped after {limit} routes carrying {carried / total:.1%} of the "
                           f"reactive flux (asked for {fraction:.1%}); the flux is widely branched. "
                           f"Pass max_paths= to look further or a smaller fraction",
                           DiagnosticWarning, stacklevel=2)
-        return [Pathway(tuple(int(self.states[i]) for i in path), float(f),
+        return [Route(tuple(int(self.states[i]) for i in path), float(f),
                         float(f / total) if total > 0 else 0.0) for path, f in found]
 
-    def pathways_table(self, fraction: float = 0.99, *, max_paths: int | None = None):
-        """The pathways of :meth:`pathways` as a pandas DataFrame.
+    def routes_table(self, fraction: float = 0.99, *, max_paths: int | None = None):
+        """The routes of :meth:`routes` as a pandas DataFrame.
 
         Columns: ``pathway`` (1 = strongest), ``states`` (tuple of original labels), ``length``
         (number of jumps), ``flux`` (per step), ``share`` and ``cumulative_share`` of the total
@@ -611,7 +611,7 @@ class ReactiveFlux:
         """
         import pandas as pd
 
-        paths = self.pathways(fraction, max_paths=max_paths)
+        paths = self.routes(fraction, max_paths=max_paths)
         shares = np.array([p.share for p in paths])
         return pd.DataFrame({
             "pathway": np.arange(1, len(paths) + 1),
@@ -622,29 +622,29 @@ class ReactiveFlux:
             "cumulative_share": np.cumsum(shares),
         })
 
-    def flux_table(self, min_share: float = 0.0):
+    def current_table(self, min_share: float = 0.0):
         """Edges of the net flux as a pandas DataFrame, largest first.
 
-        Columns: ``from_state``, ``to_state`` (original labels), ``net_flux`` (per step) and
+        Columns: ``from_state``, ``to_state`` (original labels), ``net_current`` (per step) and
         ``share`` (of the total flux). Edges with a share below ``min_share`` are left out.
         """
         import pandas as pd
 
-        i, j = np.nonzero(self.net_flux)
-        f = self.net_flux[i, j]
-        share = f / self.total_flux if self.total_flux > 0 else np.zeros_like(f)
+        i, j = np.nonzero(self.net_current)
+        f = self.net_current[i, j]
+        share = f / self.throughput if self.throughput > 0 else np.zeros_like(f)
         keep = share >= min_share
         order = np.argsort(-f[keep], kind="stable")
         return pd.DataFrame({
             "from_state": self.states[i[keep][order]],
             "to_state": self.states[j[keep][order]],
-            "net_flux": f[keep][order],
+            "net_current": f[keep][order],
             "share": share[keep][order],
         })
 
 
-def reactive_flux(T, pi, source, target, *, labels=None, time_per_step: float = 1.0,
-                  unit: str = "step") -> ReactiveFlux:
+def transition_paths(T, pi, source, target, *, labels=None, time_per_step: float = 1.0,
+                  unit: str = "step") -> TransitionPaths:
     """Reactive flux from a source set A to a target set B (transition path theory).
 
     Parameters
@@ -664,7 +664,7 @@ def reactive_flux(T, pi, source, target, *, labels=None, time_per_step: float = 
 
     Returns
     -------
-    ReactiveFlux
+    TransitionPaths
         Committors, gross and net flux (per step), total flux (per step), the rate
         k_AB = F / (tau sum_i pi_i q-_i) (per ``unit``) and the pathway decomposition.
 
@@ -680,10 +680,10 @@ def reactive_flux(T, pi, source, target, *, labels=None, time_per_step: float = 
     ...               [0.09, 0.90, 0.00, 0.01],
     ...               [0.01, 0.00, 0.90, 0.09],
     ...               [0.00, 0.01, 0.09, 0.90]])
-    >>> flux = reactive_flux(T, np.full(4, 0.25), [0], [3], time_per_step=0.1, unit="ns")
-    >>> round(flux.rate, 6)  # per ns
+    >>> flux = transition_paths(T, np.full(4, 0.25), [0], [3], time_per_step=0.1, unit="ns")
+    >>> round(flux.rate_constant, 6)  # per ns
     0.09
-    >>> [(p.states, round(p.share, 3)) for p in flux.pathways()]
+    >>> [(p.states, round(p.share, 3)) for p in flux.routes()]
     [((0, 1, 3), 0.5), ((0, 2, 3), 0.5)]
     """
     T = _as_transition_matrix(T)
@@ -703,9 +703,9 @@ def reactive_flux(T, pi, source, target, *, labels=None, time_per_step: float = 
     total = float(gross[a].sum())
     reactive_weight = float(pi @ qb0)
     rate = total / (time_per_step * reactive_weight) if reactive_weight > 0 else 0.0
-    return ReactiveFlux(source=labels[source], target=labels[target], states=labels,
-                        stationary_distribution=pi, forward_committor=qf, backward_committor=qb,
-                        gross_flux=gross, net_flux=net, total_flux=total, rate=rate,
+    return TransitionPaths(source=labels[source], target=labels[target], states=labels,
+                        equilibrium=pi, reach_target=qf, came_from_source=qb,
+                        reactive_current=gross, net_current=net, throughput=total, rate_constant=rate,
                         time_per_step=time_per_step, unit=unit)
 
 

@@ -102,7 +102,7 @@ class LagScan:
 
 def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: int = 5,
              reversible: bool = True, n_samples: int = 0, seed=None, confidence: float = 0.95,
-             sliding: bool = True, n_states: int | None = None, n_slow: int = 2, rtol: float = 0.05,
+             every_frame: bool = True, n_states: int | None = None, n_slow: int = 2, rtol: float = 0.05,
              progress: bool = False, client=None) -> LagScan:
     """Estimate models at several lags and report their implied timescales with uncertainty.
 
@@ -125,7 +125,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
         Seeds the resampling; the same seed gives the same intervals.
     confidence : float, default 0.95
         Coverage of the percentile interval.
-    sliding : bool, default True
+    every_frame : bool, default True
         Sliding-window counting.
     n_states : int, optional
     n_slow : int, default 2
@@ -182,22 +182,22 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
         for a, lag in enumerate(lags):
             if remote is not None:
                 n = n_states
-                rows = _dist.count_rows(client, remote, [r.size for r in runs], lag, n, sliding, blocks)
+                rows = _dist.count_rows(client, remote, [r.size for r in runs], lag, n, every_frame, blocks)
             else:
-                rows, n = run_count_rows(runs, lag, n_states=n_states, sliding=sliding, blocks_per_run=blocks)
+                rows, n = run_count_rows(runs, lag, n_states=n_states, every_frame=every_frame, blocks_per_run=blocks)
             full = _unflatten(np.asarray(rows.sum(axis=0)).ravel(), n)
             meta = dict(metadata, created=_now(),
                         parameters={"lag": int(lag), "dt": dt, "unit": unit, "reversible": bool(reversible),
-                                    "sliding": bool(sliding), "n_states": n})
+                                    "every_frame": bool(every_frame), "n_states": n})
             model = model_from_counts(full, lag, dt=dt, unit=unit, reversible=reversible, metadata=meta,
                                       warn=False)
             models[int(lag)] = model
-            got = model.timescales(n_processes)
+            got = model.relaxation_times(n_processes)
             ts[a, :got.size] = got
             bar.update(1)
             if n_samples:
                 initial = np.zeros(n)
-                initial[model.states] = model.stationary_distribution
+                initial[model.states] = model.equilibrium
                 sampled = sample_rows(weights, rows)  # (n_samples, n*n): all samples in one product
                 if remote is not None:
                     samples[a] = _dist.bootstrap_timescales(client, sampled, n, lag, dt, reversible,

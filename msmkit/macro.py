@@ -1,4 +1,4 @@
-"""Macrostates by PCCA+: fuzzy memberships of microstates in a few long-lived groups.
+"""Macrostates by PCCA+: fuzzy affinity of microstates in a few long-lived groups.
 
 The functions work on plain arrays: a row-stochastic transition matrix ``T`` of the kept set
 (one step = one lag time) and the stationary distribution ``pi``. Results meant for people
@@ -10,7 +10,7 @@ Deuflhard & Weber, Linear Algebra Appl. 398, 161 (2005): robust Perron cluster a
 (PCCA+), the inner simplex algorithm and the feasibility conditions.
 Röblitz & Weber, Adv. Data Anal. Classif. 7, 147 (2013): the crispness objective, the
 optimisation over the free entries of the transformation matrix, Schur vectors for
-non-reversible chains, and the Galerkin projection onto the memberships.
+non-reversible chains, and the Galerkin projection onto the affinity.
 """
 from __future__ import annotations
 
@@ -24,15 +24,15 @@ import scipy.optimize as opt
 
 from .errors import DiagnosticWarning, InputError
 from .kinetics import (_as_labels, _as_stationary, _as_time_per_step,
-                       _as_transition_matrix, _short, mfpt_matrix)
-from .spectral import is_reversible
+                       _as_transition_matrix, _short, passage_time_matrix)
+from .spectral import obeys_detailed_balance
 
 __all__ = [
     "Macrostates",
     "check_macrostate_gap",
-    "coarse_transition_matrix",
+    "lumped_propagator",
     "find_macrostates",
-    "pcca_memberships",
+    "pcca_affinity",
     "suggest_n_macrostates",
 ]
 
@@ -144,7 +144,7 @@ def _feasible(A: np.ndarray, X: np.ndarray) -> np.ndarray:
 def _crispness(A: np.ndarray) -> float:
     """Röblitz & Weber 2013 objective: sum_j (chi_j, chi_j)_pi / (chi_j, 1)_pi = sum_ij A_ij^2 / A_0j.
 
-    Equals the number of sets m exactly when the memberships are crisp (0 or 1); smaller
+    Equals the number of sets m exactly when the affinity are crisp (0 or 1); smaller
     values mean fuzzier sets. Requires pi-orthonormal X with X[:, 0] = 1.
     """
     if not np.all(np.isfinite(A)) or np.any(A[0] <= 0):
@@ -153,7 +153,7 @@ def _crispness(A: np.ndarray) -> float:
 
 
 def _pcca(T: np.ndarray, pi: np.ndarray, m: int, reversible: bool, optimize: bool):
-    """Trusting core of PCCA+: (memberships sorted by population, eigenvalues, crispness/m)."""
+    """Trusting core of PCCA+: (affinity sorted by population, eigenvalues, crispness/m)."""
     n = T.shape[0]
     X, eig = _leading_subspace(T, pi, m, reversible)
     if m == 1:
@@ -182,7 +182,7 @@ def _pcca(T: np.ndarray, pi: np.ndarray, m: int, reversible: bool, optimize: boo
             A = _feasible(B, X)
     elif optimize and m > MAX_OPTIMISED_SETS:
         warnings.warn(f"PCCA+ with {m} sets: the {(m - 1) ** 2} free parameters were not optimised "
-                      f"(more than {MAX_OPTIMISED_SETS} sets); memberships come from the inner "
+                      f"(more than {MAX_OPTIMISED_SETS} sets); affinity come from the inner "
                       f"simplex vertices and may be fuzzier than necessary", DiagnosticWarning,
                       stacklevel=3)
     crisp = _crispness(A) / m
@@ -202,17 +202,17 @@ def _gates(T, pi, n_sets, reversible):
         raise InputError(f"n_sets (number of macrostates) must be an integer from 1 to the number of "
                          f"states ({n}), but got {_short(n_sets)}")
     if reversible is None:
-        reversible = is_reversible(T, pi)
+        reversible = obeys_detailed_balance(T, pi)
     return T, pi, int(n_sets), bool(reversible)
 
 
-def pcca_memberships(T, pi, n_sets: int, *, reversible: bool | None = None,
+def pcca_affinity(T, pi, n_sets: int, *, reversible: bool | None = None,
                      optimize: bool = True) -> np.ndarray:
-    """Fuzzy memberships of every state in ``n_sets`` macrostates (PCCA+).
+    """Fuzzy affinity of every state in ``n_sets`` macrostates (PCCA+).
 
     The leading ``n_sets`` right eigenvectors of T (Schur vectors for a non-reversible T),
     orthonormal in the pi-weighted inner product, are mapped by a linear transformation A onto
-    memberships chi = X A that are non-negative and sum to 1 in every row. A starts from the
+    affinity chi = X A that are non-negative and sum to 1 in every row. A starts from the
     inner simplex algorithm and is optimised for crispness (Nelder-Mead on the free entries),
     then made feasible.
 
@@ -250,11 +250,11 @@ def pcca_memberships(T, pi, n_sets: int, *, reversible: bool | None = None,
     return _pcca(T, pi, n_sets, reversible, optimize)[0]
 
 
-def coarse_transition_matrix(T, pi, memberships) -> np.ndarray:
-    """Transition matrix between macrostates by Galerkin projection onto the memberships.
+def lumped_propagator(T, pi, affinity) -> np.ndarray:
+    """Transition matrix between macrostates by Galerkin projection onto the affinity.
 
     T_c = (chi^T D chi)^-1 chi^T D T chi with D = diag(pi). Rows sum to 1 and the macrostate
-    populations chi^T pi are stationary for T_c. For very fuzzy memberships single entries may
+    populations chi^T pi are stationary for T_c. For very fuzzy affinity single entries may
     come out slightly negative (a DiagnosticWarning says so).
 
     Parameters
@@ -263,8 +263,8 @@ def coarse_transition_matrix(T, pi, memberships) -> np.ndarray:
         Row-stochastic transition matrix; one step is one lag time.
     pi : array_like, shape (n,)
         Stationary distribution of T.
-    memberships : array_like, shape (n, m)
-        Non-negative memberships whose rows sum to 1.
+    affinity : array_like, shape (n, m)
+        Non-negative affinity whose rows sum to 1.
 
     Returns
     -------
@@ -278,23 +278,23 @@ def coarse_transition_matrix(T, pi, memberships) -> np.ndarray:
     """
     T = _as_transition_matrix(T)
     pi = _as_stationary(pi, T)
-    chi = _as_memberships(memberships, T.shape[0])
+    chi = _as_affinity(affinity, T.shape[0])
     return _coarse(T, pi, chi)
 
 
-def _as_memberships(memberships, n: int) -> np.ndarray:
+def _as_affinity(affinity, n: int) -> np.ndarray:
     try:
-        chi = np.array(memberships, dtype=float)
+        chi = np.array(affinity, dtype=float)
     except (TypeError, ValueError):
-        raise InputError(f"memberships must be an (n, m) array of numbers, but got {_short(memberships)}") from None
+        raise InputError(f"affinity must be an (n, m) array of numbers, but got {_short(affinity)}") from None
     if chi.ndim != 2 or chi.shape[0] != n or chi.shape[1] < 1:
-        raise InputError(f"memberships must have shape ({n}, m): one row per state of T, but has "
+        raise InputError(f"affinity must have shape ({n}, m): one row per state of T, but has "
                          f"shape {chi.shape}")
     if not np.all(np.isfinite(chi)) or chi.min() < -1e-8:
-        raise InputError("memberships must be finite and non-negative")
+        raise InputError("affinity must be finite and non-negative")
     dev = np.abs(chi.sum(axis=1) - 1.0)
     if dev.max() > 1e-6:
-        raise InputError(f"every row of memberships must sum to 1, but row {int(np.argmax(dev))} sums "
+        raise InputError(f"every row of affinity must sum to 1, but row {int(np.argmax(dev))} sums "
                          f"to {chi[np.argmax(dev)].sum():.6g}")
     return chi
 
@@ -305,11 +305,11 @@ def _coarse(T: np.ndarray, pi: np.ndarray, chi: np.ndarray) -> np.ndarray:
     try:
         Tc = la.solve(overlap, W.T @ T @ chi, assume_a="sym")
     except la.LinAlgError:
-        raise InputError("the memberships are linearly dependent (two macrostates coincide); "
+        raise InputError("the affinity are linearly dependent (two macrostates coincide); "
                          "use fewer macrostates") from None
     if Tc.min() < -1e-8:
         warnings.warn(f"the coarse transition matrix has negative entries (down to {Tc.min():.2g}): "
-                      f"the memberships are very fuzzy, so the macrostates are poorly separated",
+                      f"the affinity are very fuzzy, so the macrostates are poorly separated",
                       DiagnosticWarning, stacklevel=3)
     return Tc
 
@@ -462,70 +462,70 @@ class Macrostates:
 
     Attributes
     ----------
-    memberships : ndarray, shape (n, m)
+    affinity : ndarray, shape (n, m)
         Membership of state ``states[i]`` in macrostate j (0..1, rows sum to 1). Macrostates
         are ordered by population, largest first.
     states : ndarray of int, shape (n,)
-        Original label of each row of ``memberships``.
-    stationary_distribution : ndarray, shape (n,)
-    coarse_transition_matrix : ndarray, shape (m, m)
+        Original label of each row of ``affinity``.
+    equilibrium : ndarray, shape (n,)
+    lumped_propagator : ndarray, shape (m, m)
         Transition probabilities between macrostates per step (Galerkin projection).
     eigenvalues : ndarray
         Leading eigenvalues of T (at least m + 1 when m < n; all for a non-reversible T),
         sorted by real part, largest first (real parts).
     crispness : float
-        The PCCA+ objective divided by m: 1 for crisp memberships, lower for fuzzier ones.
+        The PCCA+ objective divided by m: 1 for crisp affinity, lower for fuzzier ones.
     time_per_step : float
         Physical duration of one step of T (lag x dt), in ``unit``.
     unit : str
     population_samples : ndarray, shape (n_samples, m), optional
         Macrostate populations from resampled models (macrostates matched to these), for
         the uncertainty columns of :meth:`populations`.
-    transition_matrix : ndarray, shape (n, n), optional
-        The microstate matrix, for :meth:`mfpt_table`.
+    propagator : ndarray, shape (n, n), optional
+        The microstate matrix, for :meth:`passage_time_table`.
     """
 
-    memberships: np.ndarray = field(repr=False)
+    affinity: np.ndarray = field(repr=False)
     states: np.ndarray = field(repr=False)
-    stationary_distribution: np.ndarray = field(repr=False)
-    coarse_transition_matrix: np.ndarray
+    equilibrium: np.ndarray = field(repr=False)
+    lumped_propagator: np.ndarray
     eigenvalues: np.ndarray = field(repr=False)
     crispness: float
     time_per_step: float = 1.0
     unit: str = "step"
     population_samples: np.ndarray | None = field(default=None, repr=False)
-    transition_matrix: np.ndarray | None = field(default=None, repr=False)
+    propagator: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def n_sets(self) -> int:
         """Number of macrostates m."""
-        return self.memberships.shape[1]
+        return self.affinity.shape[1]
 
     @property
     def stationary_populations(self) -> np.ndarray:
         """Population of each macrostate, sum_i pi_i chi_ij (dimensionless, sums to 1)."""
-        return self.stationary_distribution @ self.memberships
+        return self.equilibrium @ self.affinity
 
     @property
-    def crisp_assignment(self) -> np.ndarray:
+    def macro_index(self) -> np.ndarray:
         """Macrostate of largest membership for each row (aligned with ``states``)."""
-        return np.argmax(self.memberships, axis=1)
+        return np.argmax(self.affinity, axis=1)
 
     @property
-    def assignments(self) -> dict[int, int]:
+    def macro_of(self) -> dict[int, int]:
         """{original label: macrostate of largest membership} for every state."""
-        return {int(s): int(j) for s, j in zip(self.states, self.crisp_assignment)}
+        return {int(s): int(j) for s, j in zip(self.states, self.macro_index)}
 
     @property
-    def sets(self) -> list[np.ndarray]:
+    def members(self) -> list[np.ndarray]:
         """Original labels of the states assigned (by largest membership) to each macrostate."""
-        crisp = self.crisp_assignment
+        crisp = self.macro_index
         return [self.states[crisp == j] for j in range(self.n_sets)]
 
     def populations(self, *, confidence: float = 0.95, temperature: float | None = None):
         """Macrostate populations as a pandas DataFrame.
 
-        Columns: ``macrostate``, ``population`` (sum of pi weighted by memberships),
+        Columns: ``macrostate``, ``population`` (sum of pi weighted by affinity),
         ``free_energy_kT`` (-ln of the population relative to the most populated macrostate,
         in units of kT), ``free_energy_kJ_per_mol`` when ``temperature`` (kelvin) is given,
         ``states`` (labels assigned by largest membership), and ``population_lower`` /
@@ -544,7 +544,7 @@ class Macrostates:
                 raise InputError(f"temperature must be a positive number in kelvin, but got "
                                  f"{_short(temperature)}")
             data["free_energy_kJ_per_mol"] = g * _R_KJ * float(temperature)
-        data["states"] = [tuple(int(x) for x in s) for s in self.sets]
+        data["states"] = [tuple(int(x) for x in s) for s in self.members]
         if self.population_samples is not None:
             if isinstance(confidence, (bool, np.bool_)) or not isinstance(confidence, numbers.Real) \
                     or not 0 < confidence < 1:
@@ -555,32 +555,32 @@ class Macrostates:
             data["population_upper"] = np.percentile(self.population_samples, 100.0 - half, axis=0)
         return pd.DataFrame(data)
 
-    def memberships_table(self):
+    def affinity_table(self):
         """Memberships as a pandas DataFrame: one row per state (index = original label),
         one column per macrostate."""
         import pandas as pd
 
-        return pd.DataFrame(self.memberships, index=pd.Index(self.states, name="state"),
+        return pd.DataFrame(self.affinity, index=pd.Index(self.states, name="state"),
                             columns=pd.Index(np.arange(self.n_sets), name="macrostate"))
 
-    def mfpt_table(self):
+    def passage_time_table(self):
         """Mean first-passage times between macrostates (crisp sets), in ``unit``.
 
         Row a, column b: mean time to first enter macrostate b from macrostate a, starting from
-        the stationary distribution inside a (Kemeny & Snell 1960). Needs ``transition_matrix``.
+        the stationary distribution inside a (Kemeny & Snell 1960). Needs ``propagator``.
         """
         import pandas as pd
 
-        if self.transition_matrix is None:
-            raise InputError("mfpt_table needs the transition matrix; build the macrostates with "
+        if self.propagator is None:
+            raise InputError("passage_time_table needs the transition matrix; build the macrostates with "
                              "find_macrostates (or model.macrostates)")
-        crisp = self.crisp_assignment
+        crisp = self.macro_index
         sets = [np.flatnonzero(crisp == j) for j in range(self.n_sets)]
         if any(s.size == 0 for s in sets):
             empty = [j for j, s in enumerate(sets) if s.size == 0]
             raise InputError(f"macrostate(s) {empty} hold no state by largest membership, so their "
                              f"first-passage times are undefined; use fewer macrostates")
-        M = mfpt_matrix(self.transition_matrix, self.stationary_distribution, sets,
+        M = passage_time_matrix(self.propagator, self.equilibrium, sets,
                         labels=self.states, time_per_step=self.time_per_step)
         idx = pd.Index(np.arange(self.n_sets), name="from")
         return pd.DataFrame(M, index=idx, columns=pd.Index(np.arange(self.n_sets), name="to"))
@@ -635,9 +635,9 @@ def find_macrostates(T, pi, n_sets: int, *, labels=None, time_per_step: float = 
     ...               [0.01, 0.00, 0.90, 0.09],
     ...               [0.00, 0.01, 0.09, 0.90]])
     >>> macro = find_macrostates(T, np.full(4, 0.25), 2, labels=[10, 11, 20, 21])
-    >>> sorted(s.tolist() for s in macro.sets)
+    >>> sorted(s.tolist() for s in macro.members)
     [[10, 11], [20, 21]]
-    >>> macro.coarse_transition_matrix.round(3)
+    >>> macro.lumped_propagator.round(3)
     array([[0.99, 0.01],
            [0.01, 0.99]])
     """
@@ -653,7 +653,7 @@ def find_macrostates(T, pi, n_sets: int, *, labels=None, time_per_step: float = 
     chi, eig, crisp = _pcca(T, pi, n_sets, reversible, optimize)
     check_macrostate_gap(eig, n_sets, time_per_step=time_per_step, unit=unit)
     Tc = _coarse(T, pi, chi)
-    return Macrostates(memberships=chi, states=labels, stationary_distribution=pi,
-                       coarse_transition_matrix=Tc, eigenvalues=np.real(eig), crispness=crisp,
+    return Macrostates(affinity=chi, states=labels, equilibrium=pi,
+                       lumped_propagator=Tc, eigenvalues=np.real(eig), crispness=crisp,
                        time_per_step=time_per_step, unit=unit, population_samples=population_samples,
-                       transition_matrix=T)
+                       propagator=T)

@@ -16,10 +16,10 @@ import numpy as np
 import scipy.sparse as sp
 
 from ._checks import as_label_trajectories, as_state_set, as_transition_matrix, check_dt, check_int, check_unit
-from .counts import _count_flat, _flat_to_csr, _prepare, largest_connected_set
+from .counts import _count_flat, _flat_to_csr, _prepare, kept_states
 from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix
-from .spectral import chain_diagnostics, eigen_decomposition, implied_timescales, is_reversible, stationary_distribution
+from .spectral import chain_diagnostics, eigen_decomposition, implied_timescales, obeys_detailed_balance, equilibrium_distribution
 
 __all__ = ["MarkovModel", "build_model", "GAS_CONSTANT_KJ"]
 
@@ -44,10 +44,10 @@ class MarkovModel:
 
     Attributes
     ----------
-    transition_matrix : ndarray, shape (n, n)
+    propagator : ndarray, shape (n, n)
         Row-stochastic; entry (i, j) is the probability to be in ``states[j]`` one lag after
         being in ``states[i]``.
-    stationary_distribution : ndarray, shape (n,)
+    equilibrium : ndarray, shape (n,)
         Equilibrium probabilities, summing to 1.
     states : ndarray of int, shape (n,)
         Original label of each row/column.
@@ -59,7 +59,7 @@ class MarkovModel:
         Time unit of ``dt`` and of every time the model reports.
     reversible : bool
         Whether the estimate enforced detailed balance.
-    count_matrix : scipy.sparse.csr_matrix or None
+    transition_counts : scipy.sparse.csr_matrix or None
         Transition counts among the kept states at this lag (None for a model built from a
         matrix).
     kept_fraction : float
@@ -73,17 +73,17 @@ class MarkovModel:
     estimation : EstimationInfo or None
     extras : dict
         Optional arrays saved with the model: ``centers``, ``tica_mean``, ``tica_components``,
-        ``memberships``.
+        ``affinity``.
     """
 
-    transition_matrix: np.ndarray
-    stationary_distribution: np.ndarray
+    propagator: np.ndarray
+    equilibrium: np.ndarray
     states: np.ndarray
     lag: int
     dt: float
     unit: str
     reversible: bool
-    count_matrix: sp.csr_matrix | None = None
+    transition_counts: sp.csr_matrix | None = None
     kept_fraction: float = 1.0
     dropped_states: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))
     diagnostics: list = field(default_factory=list)
@@ -98,7 +98,7 @@ class MarkovModel:
     @property
     def n_states(self) -> int:
         """Number of kept states."""
-        return self.transition_matrix.shape[0]
+        return self.propagator.shape[0]
 
     @property
     def lag_time(self) -> float:
@@ -106,7 +106,7 @@ class MarkovModel:
         return self.lag * self.dt
 
     def __repr__(self) -> str:
-        ts = self.timescales(1)
+        ts = self.relaxation_times(1)
         slow = f", slowest timescale {ts[0]:.4g} {self.unit}" if ts.size else ""
         return (f"MarkovModel({self.n_states} states, lag {self.lag} frames = {self.lag_time:g} {self.unit}, "
                 f"{'reversible' if self.reversible else 'non-reversible'}{slow}, "
@@ -124,28 +124,28 @@ class MarkovModel:
         n = self.n_states
         k = n if k is None else min(check_int(k, "k", minimum=1), n)
         if self._spectrum is None or self._spectrum[0].size < k:
-            self._spectrum = eigen_decomposition(self.transition_matrix, self.stationary_distribution,
+            self._spectrum = eigen_decomposition(self.propagator, self.equilibrium,
                                                  k=None if k == n else k, reversible=self.reversible,
                                                  vectors=True)
         w, v = self._spectrum
         return w[:k], v[:, :k]
 
-    def eigenvalues(self, k: int | None = None) -> np.ndarray:
+    def spectrum(self, k: int | None = None) -> np.ndarray:
         """The ``k`` largest-magnitude eigenvalues (all by default); the first is 1.
 
         Real for a reversible model; may be complex for a non-reversible one.
         """
         return self._decomposition(k)[0]
 
-    def eigenvectors(self, k: int | None = None) -> np.ndarray:
+    def modes(self, k: int | None = None) -> np.ndarray:
         """Right eigenvectors (columns) belonging to :meth:`eigenvalues`; for a reversible model
         normalised so that sum_i pi_i r_i^2 = 1."""
         return self._decomposition(k)[1]
 
-    def timescales(self, k: int | None = None) -> np.ndarray:
+    def relaxation_times(self, k: int | None = None) -> np.ndarray:
         """The ``k`` slowest implied timescales -lag*dt/ln|lambda_i|, in :attr:`unit`
         (the stationary eigenvalue is left out)."""
-        w = self.eigenvalues(None if k is None else check_int(k, "k", minimum=1) + 1)[1:]
+        w = self.spectrum(None if k is None else check_int(k, "k", minimum=1) + 1)[1:]
         return implied_timescales(w, self.lag, self.dt)
 
     # ----------------------------------------------------------------- populations
@@ -166,7 +166,7 @@ class MarkovModel:
             (with ``temperature``), and ``transitions_out`` (counts at this lag, when known).
         """
         import pandas as pd
-        p = self.stationary_distribution
+        p = self.equilibrium
         with np.errstate(divide="ignore"):
             f = np.log(p.max()) - np.log(p)
         table = {"state": self.states, "population": p, "free_energy_kT": f}
@@ -175,12 +175,12 @@ class MarkovModel:
                     or not np.isfinite(temperature) or temperature <= 0:
                 raise InputError(f"temperature must be a positive number in kelvin, but got {temperature!r}")
             table["free_energy_kJ_per_mol"] = f * GAS_CONSTANT_KJ * float(temperature)
-        if self.count_matrix is not None:
-            table["transitions_out"] = np.asarray(self.count_matrix.sum(axis=1)).ravel().astype(np.int64)
+        if self.transition_counts is not None:
+            table["transitions_out"] = np.asarray(self.transition_counts.sum(axis=1)).ravel().astype(np.int64)
         return pd.DataFrame(table)
 
     # ----------------------------------------------------------------- macrostates and kinetics
-    def macrostates(self, n_sets: int, *, optimize: bool = True, labels=None, n_samples: int = 0, seed=None):
+    def find_macrostates(self, n_sets: int, *, optimize: bool = True, labels=None, n_samples: int = 0, seed=None):
         """PCCA+ macrostates (Deuflhard & Weber 2005; Roeblitz & Weber 2013).
 
         Parameters
@@ -188,10 +188,10 @@ class MarkovModel:
         n_sets : int
             Number of macrostates.
         optimize : bool
-            Optimise the memberships (the published objective); False keeps the inner-simplex guess.
+            Optimise the affinity (the published objective); False keeps the inner-simplex guess.
         labels : label trajectories, optional
             The data of the model; with ``n_samples`` > 0 the macrostate populations get
-            bootstrap intervals (whole runs resampled, memberships held fixed).
+            bootstrap intervals (whole runs resampled, affinity held fixed).
         n_samples : int
             Bootstrap samples for the population intervals.
         seed : int, optional
@@ -208,12 +208,12 @@ class MarkovModel:
         n_samples = check_int(n_samples, "n_samples", minimum=0)
         if n_samples and labels is None:
             raise InputError("n_samples > 0 needs labels= (the label trajectories of the model) to resample")
-        macro = find_macrostates(self.transition_matrix, self.stationary_distribution, n_sets,
+        macro = find_macrostates(self.propagator, self.equilibrium, n_sets,
                                  labels=self.states, time_per_step=self.lag_time, unit=self.unit,
                                  reversible=self.reversible, optimize=optimize)
         if n_samples:
             pi = self.bootstrap_stationary(labels, n_samples=n_samples, seed=seed)
-            macro = dataclasses.replace(macro, population_samples=np.nan_to_num(pi) @ macro.memberships)
+            macro = dataclasses.replace(macro, population_samples=np.nan_to_num(pi) @ macro.affinity)
         return macro
 
     def bootstrap_stationary(self, labels, *, n_samples: int = 50, seed=None) -> np.ndarray:
@@ -238,52 +238,52 @@ class MarkovModel:
         out = np.full((n_samples, self.n_states), np.nan)
         for b in range(n_samples):
             C = unflatten(sampled.getrow(b), n_lab)[self.states][:, self.states]
-            fit = fit_sample(C, reversible=self.reversible, initial=self.stationary_distribution)
+            fit = fit_sample(C, reversible=self.reversible, initial=self.equilibrium)
             if fit is not None:
                 keep, _, pi = fit
                 out[b, keep] = pi
         return out
 
-    def suggest_macrostates(self, max_sets: int = 10):
+    def suggest_n_macrostates(self, max_sets: int = 10):
         """A number of macrostates from the largest spectral gap, with the reason in words:
         ``(n, reason)``."""
         from .macro import suggest_n_macrostates
         max_sets = check_int(max_sets, "max_sets", minimum=1)
         k = min(max_sets + 1, self.n_states)
-        return suggest_n_macrostates(self.eigenvalues(k), max_sets=min(max_sets, self.n_states),
+        return suggest_n_macrostates(self.spectrum(k), max_sets=min(max_sets, self.n_states),
                                      time_per_step=self.lag_time, unit=self.unit)
 
-    def mfpt(self, source, target) -> float:
+    def passage_time(self, source, target) -> float:
         """Mean first-passage time from ``source`` to ``target`` (lists of original labels), in
         :attr:`unit`; over several sources averaged with the stationary weights inside the set
         (Kemeny & Snell 1960)."""
-        from .kinetics import mean_first_passage_time
-        return mean_first_passage_time(self.transition_matrix, self.stationary_distribution,
+        from .kinetics import mean_passage_time
+        return mean_passage_time(self.propagator, self.equilibrium,
                                        self.index_of(source, "source"), self.index_of(target, "target"),
                                        labels=self.states, time_per_step=self.lag_time)
 
-    def mfpt_matrix(self, sets):
+    def passage_time_matrix(self, sets):
         """Mean first-passage times between disjoint sets of labels (e.g. macrostates), as a
         (k, k) ndarray in :attr:`unit`; entry (a, b) is the time from set a to set b."""
-        from .kinetics import mfpt_matrix
-        return mfpt_matrix(self.transition_matrix, self.stationary_distribution,
+        from .kinetics import passage_time_matrix
+        return passage_time_matrix(self.propagator, self.equilibrium,
                            [self.index_of(s, f"sets[{i}]") for i, s in enumerate(sets)],
                            labels=self.states, time_per_step=self.lag_time)
 
-    def committor(self, source, target, *, backward: bool = False) -> np.ndarray:
+    def splitting_probability(self, source, target, *, reverse_time: bool = False) -> np.ndarray:
         """Committor per kept state (in the order of :attr:`states`): forward, the probability to
         reach ``target`` before ``source``; backward, to have come from ``source`` last."""
-        from .kinetics import committor
-        return committor(self.transition_matrix, self.index_of(source, "source"),
-                         self.index_of(target, "target"), backward=backward,
-                         pi=self.stationary_distribution, labels=self.states)
+        from .kinetics import splitting_probability
+        return splitting_probability(self.propagator, self.index_of(source, "source"),
+                         self.index_of(target, "target"), reverse_time=backward,
+                         pi=self.equilibrium, labels=self.states)
 
-    def reactive_flux(self, source, target):
+    def transition_paths(self, source, target):
         """Transition path theory from ``source`` to ``target`` (E & Vanden-Eijnden 2006; Metzner,
         Schuette & Vanden-Eijnden 2009): gross and net flux, total flux, rate per :attr:`unit`,
-        and the pathway decomposition (``.pathways()``)."""
-        from .kinetics import reactive_flux
-        return reactive_flux(self.transition_matrix, self.stationary_distribution,
+        and the pathway decomposition (``.routes()``)."""
+        from .kinetics import transition_paths
+        return transition_paths(self.propagator, self.equilibrium,
                              self.index_of(source, "source"), self.index_of(target, "target"),
                              labels=self.states, time_per_step=self.lag_time, unit=self.unit)
 
@@ -292,20 +292,20 @@ class MarkovModel:
         """Write the model to a ``.npz`` file (atomic; plain arrays only).
 
         ``extra_arrays`` may hold the optional keys of the file format: ``centers``,
-        ``tica_mean``, ``tica_components``, ``memberships``. See :mod:`msmkit.modelfile`.
+        ``tica_mean``, ``tica_components``, ``affinity``. See :mod:`msmkit.modelfile`.
         """
         from .modelfile import save_model
         return save_model(self, path, overwrite=overwrite, **extra_arrays)
 
     # ----------------------------------------------------------------- constructors
     @classmethod
-    def from_transition_matrix(cls, transition_matrix, *, dt: float = 1.0, unit: str = "step",
+    def from_transition_matrix(cls, propagator, *, dt: float = 1.0, unit: str = "step",
                                states=None, reversible: bool | None = None) -> "MarkovModel":
         """A model from a transition matrix you already have; one step (lag 1) spans ``dt``.
 
         Parameters
         ----------
-        transition_matrix : array_like, shape (n, n)
+        propagator : array_like, shape (n, n)
             Row-stochastic, non-negative, irreducible.
         dt : float
             Physical time of one step, in ``unit``.
@@ -315,19 +315,19 @@ class MarkovModel:
         reversible : bool, optional
             Default: detected from detailed balance.
         """
-        T = as_transition_matrix(transition_matrix, "transition_matrix", tol=1e-8, irreducible=True)
+        T = as_transition_matrix(propagator, "propagator", tol=1e-8, irreducible=True)
         dt, unit = check_dt(dt), check_unit(unit)
         n = T.shape[0]
         labels = np.arange(n) if states is None else np.asarray(states)
         if labels.shape != (n,) or labels.dtype.kind not in "iu" or np.unique(labels).size != n:
-            raise InputError(f"states must be {n} distinct integer labels, one per row of transition_matrix")
-        pi = stationary_distribution(T)
+            raise InputError(f"states must be {n} distinct integer labels, one per row of propagator")
+        pi = equilibrium_distribution(T)
         if reversible is None:
-            reversible = is_reversible(T, pi)
+            reversible = obeys_detailed_balance(T, pi)
         model = cls(T, pi, labels.astype(np.int64), 1, dt, unit, bool(reversible),
                     metadata={"source": "transition matrix", "package_version": _version(),
                               "created": _now()})
-        model.diagnostics = chain_diagnostics(model.eigenvalues(REPORTED + 1), lag=1, dt=dt, unit=unit,
+        model.diagnostics = chain_diagnostics(model.spectrum(REPORTED + 1), lag=1, dt=dt, unit=unit,
                                               n_reported=min(REPORTED, n - 1))
         for line in model.diagnostics:
             warnings.warn(line, DiagnosticWarning, stacklevel=2)
@@ -348,7 +348,7 @@ def fingerprint(runs) -> str:
 
 
 def build_model(labels, lag, *, dt: float = 1.0, unit: str = "step", reversible: bool = True,
-                sliding: bool = True, n_states: int | None = None) -> MarkovModel:
+                every_frame: bool = True, n_states: int | None = None) -> MarkovModel:
     """Estimate a Markov model from label trajectories at one lag time.
 
     Counts transitions at ``lag`` (sliding window by default), keeps the largest strongly
@@ -368,7 +368,7 @@ def build_model(labels, lag, *, dt: float = 1.0, unit: str = "step", reversible:
     unit : str, default "step"
         Time unit, e.g. "ns".
     reversible : bool, default True
-    sliding : bool, default True
+    every_frame : bool, default True
         Sliding-window counting (see :func:`count_transitions`).
     n_states : int, optional
         Number of microstates (default: largest label + 1).
@@ -382,15 +382,15 @@ def build_model(labels, lag, *, dt: float = 1.0, unit: str = "step", reversible:
     >>> import numpy as np, msmkit as mk
     >>> labels = [np.array([0, 0, 1, 1, 1, 0, 0, 1])]
     >>> model = mk.build_model(labels, lag=1, dt=0.1, unit="ns")
-    >>> model.stationary_distribution.round(3)
+    >>> model.equilibrium.round(3)
     array([0.5, 0.5])
     """
     runs, lag, n = _prepare(labels, lag, n_states)
     dt, unit = check_dt(dt), check_unit(unit)
-    flat = _count_flat(runs, lag, n, sliding)
+    flat = _count_flat(runs, lag, n, every_frame)
     metadata = {
         "parameters": {"lag": lag, "dt": dt, "unit": unit, "reversible": bool(reversible),
-                       "sliding": bool(sliding), "n_states": n},
+                       "every_frame": bool(every_frame), "n_states": n},
         "package_version": _version(),
         "created": _now(),
         "labels_sha256": fingerprint(runs),
@@ -417,7 +417,7 @@ def model_from_counts(counts: sp.csr_matrix, lag: int, *, dt: float, unit: str, 
     if visited.size < 2:
         raise InputError(f"labels visit a single state ({int(visited[0])}); a Markov model needs at least "
                          f"two states with transitions between them")
-    keep = largest_connected_set(C)
+    keep = kept_states(C)
     if keep.size < 2:
         raise InputError(f"no two states exchange at lag {lag}: the largest strongly connected set is the "
                          f"single state {int(keep[0])}; use a smaller lag, fewer states or more data")
@@ -431,18 +431,18 @@ def model_from_counts(counts: sp.csr_matrix, lag: int, *, dt: float, unit: str, 
             warnings.simplefilter("ignore", DiagnosticWarning)
         T, info = estimate_transition_matrix(Ck, reversible=reversible, initial=init, return_info=True)
     dropped = np.setdiff1d(visited, keep)
-    model = MarkovModel(T, info.stationary_distribution, keep.astype(np.int64), int(lag), float(dt), unit,
-                        bool(reversible), count_matrix=sp.csr_matrix(Ck, dtype=np.int64),
+    model = MarkovModel(T, info.equilibrium, keep.astype(np.int64), int(lag), float(dt), unit,
+                        bool(reversible), transition_counts=sp.csr_matrix(Ck, dtype=np.int64),
                         kept_fraction=kept_fraction, dropped_states=dropped.astype(np.int64),
                         metadata=dict(metadata or {}), estimation=info)
     model.metadata["kept_fraction"] = kept_fraction
     model.metadata["n_dropped_states"] = int(dropped.size)
     if not info.converged:
         model.diagnostics.append(f"The reversible estimate stopped after {info.iterations} iterations without "
-                                 "converging; the matrix is reversible but not exactly the maximum-likelihood one.")
+                                 "converging; the matrix obeys detailed balance but not exactly the maximum-likelihood one.")
     if spectrum:
         row_counts = np.asarray(Ck.sum(axis=1)).ravel()
-        model.diagnostics += chain_diagnostics(model.eigenvalues(REPORTED + 1), lag=lag, dt=dt, unit=unit,
+        model.diagnostics += chain_diagnostics(model.spectrum(REPORTED + 1), lag=lag, dt=dt, unit=unit,
                                                row_counts=row_counts, states=model.states,
                                                dropped_states=dropped, kept_fraction=kept_fraction,
                                                n_reported=min(REPORTED, model.n_states - 1))

@@ -7,17 +7,17 @@ Keys
 ----
 format                 the string "msmkit-model"
 format_version         int, currently 1
-transition_matrix      (n, n) float64, row-stochastic
-count_matrix           (n, n) int64 counts at the lag among the kept states (omitted for a model
+propagator      (n, n) float64, row-stochastic
+transition_counts           (n, n) int64 counts at the lag among the kept states (omitted for a model
                        built from a matrix)
-stationary_distribution (n,) float64, sums to 1
+equilibrium (n,) float64, sums to 1
 states                 (n,) int64, original labels
 lag                    int, frames
 dt                     float, physical time per frame
 unit                   str
 reversible             bool
 metadata               JSON string (parameters, version, creation time, fingerprint, ...)
-optional: centers (k, d), tica_mean (f,), tica_components (d, f), memberships (n, m)
+optional: centers (k, d), tica_mean (f,), tica_components (d, f), affinity (n, m)
 """
 from __future__ import annotations
 
@@ -37,8 +37,8 @@ __all__ = ["FORMAT", "FORMAT_VERSION", "load_model", "save_model"]
 
 FORMAT = "msmkit-model"
 FORMAT_VERSION = 1
-OPTIONAL_KEYS = ("centers", "tica_mean", "tica_components", "memberships")
-REQUIRED_KEYS = ("format", "format_version", "transition_matrix", "stationary_distribution", "states",
+OPTIONAL_KEYS = ("centers", "tica_mean", "tica_components", "affinity")
+REQUIRED_KEYS = ("format", "format_version", "propagator", "equilibrium", "states",
                  "lag", "dt", "unit", "reversible", "metadata")
 ROW_TOL = 1e-8
 
@@ -54,7 +54,7 @@ def save_model(model, path, *, overwrite: bool = True, **extra_arrays) -> Path:
     overwrite : bool, default True
         If False and the file exists, raise InputError and touch nothing.
     **extra_arrays
-        Optional keys: ``centers``, ``tica_mean``, ``tica_components``, ``memberships``.
+        Optional keys: ``centers``, ``tica_mean``, ``tica_components``, ``affinity``.
 
     Returns
     -------
@@ -73,8 +73,8 @@ def save_model(model, path, *, overwrite: bool = True, **extra_arrays) -> Path:
     arrays = {
         "format": np.array(FORMAT),
         "format_version": np.array(FORMAT_VERSION, dtype=np.int64),
-        "transition_matrix": np.asarray(model.transition_matrix, dtype=np.float64),
-        "stationary_distribution": np.asarray(model.stationary_distribution, dtype=np.float64),
+        "propagator": np.asarray(model.propagator, dtype=np.float64),
+        "equilibrium": np.asarray(model.equilibrium, dtype=np.float64),
         "states": np.asarray(model.states, dtype=np.int64),
         "lag": np.array(model.lag, dtype=np.int64),
         "dt": np.array(model.dt, dtype=np.float64),
@@ -82,8 +82,8 @@ def save_model(model, path, *, overwrite: bool = True, **extra_arrays) -> Path:
         "reversible": np.array(bool(model.reversible)),
         "metadata": np.array(json.dumps(_jsonable(_file_metadata(model)), sort_keys=True)),
     }
-    if model.count_matrix is not None:
-        arrays["count_matrix"] = np.asarray(model.count_matrix.toarray(), dtype=np.int64)
+    if model.transition_counts is not None:
+        arrays["transition_counts"] = np.asarray(model.transition_counts.toarray(), dtype=np.int64)
     for key, value in {**model.extras, **extra_arrays}.items():
         if value is not None:
             arr = np.asarray(value)
@@ -151,7 +151,7 @@ def load_model(path):
     Returns
     -------
     MarkovModel
-        With ``.extras`` (dict) holding any optional arrays (centers, TICA, memberships).
+        With ``.extras`` (dict) holding any optional arrays (centers, TICA, affinity).
     """
     from .model import MarkovModel
     path = Path(path)
@@ -188,22 +188,22 @@ def load_model(path):
     if version > FORMAT_VERSION or version < 1:
         raise ModelFileError(f"{path}: format_version {version} is not supported (this msmkit reads "
                              f"up to {FORMAT_VERSION}); upgrade msmkit")
-    T = _float_array(data, "transition_matrix", 2, path)
+    T = _float_array(data, "propagator", 2, path)
     n = T.shape[0]
     if T.shape != (n, n) or n == 0:
-        raise ModelFileError(f"{path}: transition_matrix must be square, but has shape {T.shape}")
+        raise ModelFileError(f"{path}: propagator must be square, but has shape {T.shape}")
     if not np.all(np.isfinite(T)) or T.min() < 0:
-        raise ModelFileError(f"{path}: transition_matrix has negative or non-finite entries")
+        raise ModelFileError(f"{path}: propagator has negative or non-finite entries")
     off = np.max(np.abs(T.sum(axis=1) - 1))
     if off > ROW_TOL:
-        raise ModelFileError(f"{path}: transition_matrix rows do not sum to 1 (worst off by {off:.3g})")
-    pi = _float_array(data, "stationary_distribution", 1, path)
+        raise ModelFileError(f"{path}: propagator rows do not sum to 1 (worst off by {off:.3g})")
+    pi = _float_array(data, "equilibrium", 1, path)
     if pi.shape != (n,):
-        raise ModelFileError(f"{path}: stationary_distribution has shape {pi.shape}, expected ({n},)")
+        raise ModelFileError(f"{path}: equilibrium has shape {pi.shape}, expected ({n},)")
     if not np.all(np.isfinite(pi)) or pi.min() < 0 or abs(pi.sum() - 1) > ROW_TOL:
-        raise ModelFileError(f"{path}: stationary_distribution must be non-negative and sum to 1")
+        raise ModelFileError(f"{path}: equilibrium must be non-negative and sum to 1")
     if np.max(np.abs(pi @ T - pi)) > 1e-8:
-        raise ModelFileError(f"{path}: stationary_distribution is not stationary for transition_matrix")
+        raise ModelFileError(f"{path}: equilibrium is not stationary for propagator")
     states = data["states"]
     if states.shape != (n,) or states.dtype.kind not in "iu" or np.unique(states).size != n:
         raise ModelFileError(f"{path}: states must be {n} distinct integer labels")
@@ -222,10 +222,10 @@ def load_model(path):
     if not isinstance(metadata, dict):
         raise ModelFileError(f"{path}: metadata must be a JSON object")
     counts = None
-    if "count_matrix" in data:
-        C = data["count_matrix"]
+    if "transition_counts" in data:
+        C = data["transition_counts"]
         if C.shape != (n, n) or C.dtype.kind not in "iu" or (C.size and C.min() < 0):
-            raise ModelFileError(f"{path}: count_matrix must be a non-negative ({n}, {n}) integer array")
+            raise ModelFileError(f"{path}: transition_counts must be a non-negative ({n}, {n}) integer array")
         counts = sp.csr_matrix(C.astype(np.int64))
     extras = {}
     for key in OPTIONAL_KEYS:
@@ -234,16 +234,16 @@ def load_model(path):
             if arr.dtype.kind not in "iuf" or not np.all(np.isfinite(arr)):
                 raise ModelFileError(f"{path}: {key} must be a finite numeric array")
             extras[key] = arr
-    if "memberships" in extras:
-        M = extras["memberships"]
+    if "affinity" in extras:
+        M = extras["affinity"]
         if M.ndim != 2 or M.shape[0] != n or M.min() < -1e-12 or np.max(np.abs(M.sum(axis=1) - 1)) > 1e-6:
-            raise ModelFileError(f"{path}: memberships must be ({n}, m), non-negative, rows summing to 1")
+            raise ModelFileError(f"{path}: affinity must be ({n}, m), non-negative, rows summing to 1")
     if "tica_mean" in extras and "tica_components" in extras:
         if extras["tica_components"].ndim != 2 or extras["tica_components"].shape[1] != extras["tica_mean"].shape[0]:
             raise ModelFileError(f"{path}: tica_components must be (dim, n_features) with n_features = "
                                  f"len(tica_mean)")
 
-    model = MarkovModel(T, pi, states.astype(np.int64), lag, dt, unit, reversible, count_matrix=counts,
+    model = MarkovModel(T, pi, states.astype(np.int64), lag, dt, unit, reversible, transition_counts=counts,
                         kept_fraction=float(metadata.get("kept_fraction", 1.0)),
                         dropped_states=np.asarray(metadata.get("dropped_states", []), dtype=np.int64),
                         diagnostics=list(metadata.get("diagnostics", [])), metadata=metadata, extras=extras)

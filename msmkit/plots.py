@@ -255,7 +255,7 @@ def plot_lag_flow(flows, *, full_square=False, max_labels=8, width=6.0, height=6
     first = flows[0]
     for f in flows[1:]:
         same = (f.unit == first.unit and f.dt == first.dt and f.pair == first.pair
-                and all(np.array_equal(x, y) for x, y in zip(f.sets, first.sets)))
+                and all(np.array_equal(x, y) for x, y in zip(f.members, first.members)))
         if not same:
             raise InputError("flows must share the sets of states, dt and unit to be drawn together; build them "
                              "with the same sets= (e.g. the macrostates of one model) from the same data")

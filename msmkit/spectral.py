@@ -15,8 +15,8 @@ __all__ = [
     "chain_diagnostics",
     "eigen_decomposition",
     "implied_timescales",
-    "is_reversible",
-    "stationary_distribution",
+    "obeys_detailed_balance",
+    "equilibrium",
 ]
 
 #: an eigenvalue this close to the unit circle counts as "on" it
@@ -27,7 +27,7 @@ ITERATIVE_MIN_STATES = 1000
 FEW_COUNTS = 10
 
 
-def stationary_distribution(T: np.ndarray) -> np.ndarray:
+def equilibrium_distribution(T: np.ndarray) -> np.ndarray:
     """Stationary distribution pi of an irreducible row-stochastic matrix: pi T = pi, sum pi = 1.
 
     Solved as a linear system (T^T - I) pi = 0 with one equation replaced by the normalisation,
@@ -46,7 +46,7 @@ def stationary_distribution(T: np.ndarray) -> np.ndarray:
     return pi / pi.sum()
 
 
-def is_reversible(T: np.ndarray, pi: np.ndarray, rtol: float = 1e-8) -> bool:
+def obeys_detailed_balance(T: np.ndarray, pi: np.ndarray, rtol: float = 1e-8) -> bool:
     """True when pi_i T_ij = pi_j T_ji to ``rtol`` relative to the largest flow."""
     X = pi[:, None] * T
     return bool(np.max(np.abs(X - X.T)) <= rtol * max(np.max(X), 1e-300))
@@ -82,9 +82,9 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
     n = T.shape[0]
     k = n if k is None else min(int(k), n)
     if pi is None:
-        pi = stationary_distribution(T)
+        pi = equilibrium_distribution(T)
     if reversible is None:
-        reversible = is_reversible(T, pi)
+        reversible = obeys_detailed_balance(T, pi)
     if k < n and n > ITERATIVE_MIN_STATES and k <= n // 10:
         return _leading_eigen(T, pi, k, reversible, vectors)
     if reversible:

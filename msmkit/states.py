@@ -471,7 +471,7 @@ class Microstates:
                              f"{self.n_features_in_}; assign data with the same features")
         return self._assign_runs(runs, check_chunk_size(self.chunk_size, d), client)
 
-    def fit_assign(self, trajs, *, client=None) -> list[np.ndarray]:
+    def fit_transform(self, trajs, *, client=None) -> list[np.ndarray]:
         """``fit(trajs)`` and return ``labels_``."""
         return self.fit(trajs, client=client).labels_
 

@@ -66,7 +66,7 @@ class CKResult:
 
     Attributes
     ----------
-    sets : list of ndarray of int
+    members : list of ndarray of int
         Original labels of the states of each set.
     multiples : ndarray of int, shape (K,)
         k = 1..K.
@@ -103,7 +103,7 @@ class CKResult:
         How the sets and intervals were obtained; states lost at longer lags.
     """
 
-    sets: list
+    members: list
     multiples: np.ndarray
     lag: int
     dt: float
@@ -126,7 +126,7 @@ class CKResult:
 
     @property
     def n_sets(self) -> int:
-        return len(self.sets)
+        return len(self.members)
 
     @property
     def lag_times(self) -> np.ndarray:
@@ -179,7 +179,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
     labels : array_like of int, or list of them
         Label trajectories (normally those the model was built from).
     n_sets : int, optional
-        Number of PCCA+ macrostates to test (>= 2). Default: ``model.suggest_macrostates()``
+        Number of PCCA+ macrostates to test (>= 2). Default: ``model.suggest_n_macrostates()``
         (at least 2). Ignored when ``sets`` is given.
     sets : list of lists of int, optional
         Your own disjoint sets of states, by original label (need not cover every state).
@@ -248,7 +248,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
     M = np.zeros((n_kept, m))
     for j, s in enumerate(sets):
         M[model.index_of(s, f"sets[{j}]"), j] = 1.0
-    pi = model.stationary_distribution
+    pi = model.equilibrium
     populations = pi @ M
 
     # predicted: p0 T^k for k = 1..K
@@ -257,7 +257,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
     predicted = np.empty((K, m, m))
     P = P0
     for k in range(K):
-        P = P @ model.transition_matrix
+        P = P @ model.propagator
         predicted[k] = P @ M
 
     sha = model.metadata.get("labels_sha256")
@@ -271,7 +271,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
     blocks, weights, plan_notes = resampling_plan(len(runs), n_samples, rng)
     notes += plan_notes
     n_lab = max(max((int(r.max()) for r in runs if r.size), default=-1), int(model.states.max())) + 1
-    sliding = bool(model.metadata.get("parameters", {}).get("sliding", True))
+    every_frame = bool(model.metadata.get("parameters", {}).get("every_frame", True))
     estimated = np.full((K, m, m), np.nan)
     samples = np.full((K, n_samples, m, m), np.nan)
     lost = []
@@ -285,9 +285,9 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
         for k in range(1, K + 1):
             if remote is not None:
                 rows = _dist.count_rows(client, remote, [r.size for r in runs], k * model.lag, n_lab,
-                                        sliding, blocks)
+                                        every_frame, blocks)
             else:
-                rows, _ = run_count_rows(runs, k * model.lag, n_states=n_lab, sliding=sliding,
+                rows, _ = run_count_rows(runs, k * model.lag, n_states=n_lab, every_frame=every_frame,
                                          blocks_per_run=blocks)
             full = _on_model_states(unflatten(np.asarray(rows.sum(axis=0)).ravel(), n_lab), model)
             fit = fit_sample(full, reversible=model.reversible)
@@ -339,7 +339,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
     passed = bool(np.all(within))
     criterion = _ck_criterion(passed, predicted, estimated, lower, upper, within, used_tol, finite, outside_by,
                               model, confidence, tolerance, n_samples)
-    return CKResult(sets=[np.asarray(s, dtype=np.int64) for s in sets], multiples=np.arange(1, K + 1),
+    return CKResult(members=[np.asarray(s, dtype=np.int64) for s in sets], multiples=np.arange(1, K + 1),
                     lag=model.lag, dt=model.dt, unit=model.unit, predicted=predicted, estimated=estimated,
                     lower=lower, upper=upper, within=within, used_tolerance=used_tol, outside_by=outside_by,
                     populations=populations, samples=samples, confidence=confidence, tolerance=tolerance,
@@ -395,7 +395,7 @@ def _resolve_sets(model, sets, n_sets):
     if n_sets is None and model.n_states == 2:
         n_sets, how = 2, "2 sets: the model has two states."
     elif n_sets is None:
-        n_sets, reason = model.suggest_macrostates()
+        n_sets, reason = model.suggest_n_macrostates()
         how = f"PCCA+ macrostates, number suggested from the model's spectrum: {reason}."
         if n_sets < 2:
             n_sets = 2
@@ -409,8 +409,8 @@ def _resolve_sets(model, sets, n_sets):
             raise InputError(f"n_sets must not exceed the number of states of the model ({model.n_states}), "
                              f"but got {n_sets}; choose fewer macrostates")
         how = f"{n_sets} PCCA+ macrostates."
-    macro = model.macrostates(n_sets)
-    out = macro.sets
+    macro = model.find_macrostates(n_sets)
+    out = macro.members
     empty = [j for j, s in enumerate(out) if s.size == 0]
     if empty:
         raise InputError(f"n_sets={n_sets}: macrostate(s) {empty} hold no state by largest membership, so "
@@ -515,7 +515,7 @@ class LagFlow:
     ----------
     pair : tuple of int
         Indices (a, b) of the two sets in the Chapman-Kolmogorov result.
-    sets : list of ndarray of int
+    members : list of ndarray of int
         Original labels of the states of sets a and b.
     lags : ndarray of int, shape (K + 1,)
         0, tau, 2 tau, ... in frames.
@@ -538,7 +538,7 @@ class LagFlow:
     """
 
     pair: tuple
-    sets: list
+    members: list
     lags: np.ndarray
     dt: float
     unit: str
@@ -668,7 +668,7 @@ def lag_flow(source, labels=None, *, pair=(0, 1), sets=None, n_sets=None, multip
     fixed = ck.populations[[a, b]].copy()
     coincide = bool(np.all(within))
     summary = _flow_summary(a, b, lags * ck.dt, ck.unit, predicted, estimated, within, fixed, coincide)
-    return LagFlow(pair=(a, b), sets=[ck.sets[a], ck.sets[b]], lags=lags, dt=ck.dt, unit=ck.unit,
+    return LagFlow(pair=(a, b), members=[ck.members[a], ck.members[b]], lags=lags, dt=ck.dt, unit=ck.unit,
                    predicted=predicted, estimated=estimated, lower=lower, upper=upper, within=within,
                    fixed_point=fixed, coincide=coincide, summary=summary, ck=ck)
 
@@ -708,13 +708,13 @@ def _model_correlations(model):
     C01 = diag(pi) T); non-reversible models with counts use the counts (row sums, C, column
     sums); a non-reversible model without counts uses pi, diag(pi) T and pi T.
     """
-    T = model.transition_matrix
-    pi = model.stationary_distribution
+    T = model.propagator
+    pi = model.equilibrium
     if model.reversible:
         X = pi[:, None] * T
         return pi, 0.5 * (X + X.T), pi
-    if model.count_matrix is not None:
-        C = model.count_matrix.toarray().astype(float)
+    if model.transition_counts is not None:
+        C = model.transition_counts.toarray().astype(float)
         return C.sum(axis=1), C, C.sum(axis=0)
     return pi, pi[:, None] * T, pi @ T
 
@@ -814,8 +814,8 @@ def vamp2_score_on(model, labels, k=None, *, warn: bool = True) -> float:
         raise InputError(f"labels: every run is shorter than the model's lag ({model.lag} frames) + 1, so no "
                          f"transition can be counted; give longer test runs")
     n_lab = max(max((int(r.max()) for r in runs if r.size), default=-1), int(model.states.max())) + 1
-    sliding = bool(model.metadata.get("parameters", {}).get("sliding", True))
-    flat = _count_flat(runs, model.lag, n_lab, sliding)
+    every_frame = bool(model.metadata.get("parameters", {}).get("every_frame", True))
+    flat = _count_flat(runs, model.lag, n_lab, every_frame)
     total = flat.sum()
     C = flat.reshape(n_lab, n_lab)[np.ix_(model.states, model.states)].astype(float)
     inside = C.sum()

@@ -36,7 +36,7 @@ def test_demo_writes_every_output(demo_output):
     assert not [n for n in names if n.endswith(".tmp")]
     model = mk.load_model(demo_output / "model.npz")
     assert model.unit == demo.UNIT and model.dt == demo.DT
-    assert model.extras["memberships"].shape == (model.n_states, 3)
+    assert model.extras["affinity"].shape == (model.n_states, 3)
     summary = (demo_output / "summary.txt").read_text()
     assert "Chapman-Kolmogorov test" in summary and "macrostates (PCCA+): 3" in summary
 
@@ -49,7 +49,7 @@ def test_demo_recovers_the_slow_process_of_the_three_basins(demo_output):
     # lag's bootstrap interval (Prinz et al. 2011, implied-timescale test).
     model = mk.load_model(demo_output / "model.npz")
     reference = demo.reference_timescales(1)[0]
-    slowest = model.timescales(1)[0]
+    slowest = model.relaxation_times(1)[0]
     assert abs(slowest - reference) / reference < 0.25, (slowest, reference)
     table = pd.read_csv(demo_output / "implied_timescales.csv")
     first = table[table.process == 1].set_index("lag")

@@ -1,9 +1,9 @@
-"""Tests of msmkit.counts: transition counting and strongly connected sets.
+"""Tests of msmkit.counts: transition counting and communicating classes.
 
 References: a slow, obviously correct Python loop over frame pairs (sliding window: every pair
 (t, t + lag); strided: t = 0, lag, 2 lag, ...; Prinz et al., J. Chem. Phys. 134, 174105 (2011),
-Sec. IV), and brute-force reachability (transitive closure of the count graph) for the strongly
-connected sets (common practice).
+Sec. IV), and brute-force reachability (transitive closure of the count graph) for the
+communicating classes (common practice).
 """
 import numpy as np
 import pytest
@@ -12,18 +12,18 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from msmkit import counts as counts_module
-from msmkit.counts import connected_sets, count_transitions, largest_connected_set, run_count_rows
+from msmkit.counts import communicating_classes, count_transitions, kept_states, run_count_rows
 from msmkit.errors import InputError
 
 
 # --------------------------------------------------------------------------- references
 
-def loop_counts(runs, lag, n, sliding=True):
+def loop_counts(runs, lag, n, every_frame=True):
     """Counts by walking over every frame pair (t, t + lag) in plain Python."""
     C = np.zeros((n, n), dtype=np.int64)
     for run in runs:
         run = [int(x) for x in run]
-        step = 1 if sliding else lag
+        step = 1 if every_frame else lag
         for t in range(0, len(run) - lag, step):
             i, j = run[t], run[t + lag]
             if i >= 0 and j >= 0:
@@ -32,7 +32,7 @@ def loop_counts(runs, lag, n, sliding=True):
 
 
 def reachability_sets(C):
-    """Strongly connected sets by brute force: i ~ j when each reaches the other (transitive
+    """Communicating classes by brute force: i ~ j when each reaches the other (transitive
     closure by repeated boolean multiplication); states with no counts at all are left out."""
     C = np.asarray(C)
     n = C.shape[0]
@@ -76,17 +76,17 @@ def test_returns_integer_csr():
 
 
 @settings(max_examples=50, deadline=None)
-@given(runs=label_runs(), lag=st.integers(1, 6), sliding=st.booleans())
-def test_counts_match_python_loop(runs, lag, sliding):
+@given(runs=label_runs(), lag=st.integers(1, 6), every_frame=st.booleans())
+def test_counts_match_python_loop(runs, lag, every_frame):
     longest = max(r.size for r in runs)
     assigned = any(np.any(r >= 0) for r in runs)
     if lag >= longest or not assigned:
         with pytest.raises(InputError):
-            count_transitions(runs, lag, sliding=sliding)
+            count_transitions(runs, lag, every_frame=every_frame)
         return
     n = max(int(r.max()) for r in runs if r.size) + 1
-    C = count_transitions(runs, lag, sliding=sliding)
-    np.testing.assert_array_equal(C.toarray(), loop_counts(runs, lag, n, sliding))
+    C = count_transitions(runs, lag, every_frame=every_frame)
+    np.testing.assert_array_equal(C.toarray(), loop_counts(runs, lag, n, every_frame))
 
 
 @st.composite
@@ -100,9 +100,9 @@ def sticky_label_runs(draw, max_state=4, max_runs=3):
 
 
 @settings(max_examples=50, deadline=None)
-@given(runs=st.one_of(label_runs(max_len=60), sticky_label_runs()), lag=st.integers(1, 6), sliding=st.booleans(),
+@given(runs=st.one_of(label_runs(max_len=60), sticky_label_runs()), lag=st.integers(1, 6), every_frame=st.booleans(),
        block=st.integers(1, 9), parallel=st.booleans())
-def test_counts_match_python_loop_in_small_blocks(runs, lag, sliding, block, parallel):
+def test_counts_match_python_loop_in_small_blocks(runs, lag, every_frame, block, parallel):
     # a tiny buffer makes the counting flush many partial blocks (and split runs across them);
     # parallel=True forces the two-thread split of every run's pairs, even for tiny inputs
     longest = max(r.size for r in runs)
@@ -113,8 +113,8 @@ def test_counts_match_python_loop_in_small_blocks(runs, lag, sliding, block, par
         mp.setattr(counts_module, "COUNT_BLOCK", block)
         mp.setattr(counts_module, "RLE_PROBE", 8)  # decide on sticky encoding from a short probe
         mp.setattr(counts_module, "PARALLEL_MIN_PAIRS", 0 if parallel else 1 << 60)
-        C = count_transitions(runs, lag, sliding=sliding)
-    np.testing.assert_array_equal(C.toarray(), loop_counts(runs, lag, n, sliding))
+        C = count_transitions(runs, lag, every_frame=every_frame)
+    np.testing.assert_array_equal(C.toarray(), loop_counts(runs, lag, n, every_frame))
 
 
 def test_sticky_labels_match_python_loop():
@@ -123,19 +123,19 @@ def test_sticky_labels_match_python_loop():
     runs = [np.repeat(rng.integers(0, 6, size=40), rng.integers(1, 100, size=40)).astype(np.int32) for _ in range(3)]
     runs[1][100:130] = -1
     for lag in (1, 7):
-        for sliding in (True, False):
-            np.testing.assert_array_equal(count_transitions(runs, lag, sliding=sliding).toarray(),
-                                          loop_counts(runs, lag, 6, sliding))
+        for every_frame in (True, False):
+            np.testing.assert_array_equal(count_transitions(runs, lag, every_frame=every_frame).toarray(),
+                                          loop_counts(runs, lag, 6, every_frame))
 
 
 def test_strided_by_hand():
     run = np.array([0, 1, 2, 0, 1, 2, 0])
     # lag 2 strided: pairs (t, t+2) for t = 0, 2, 4 -> (0,2), (2,1), (1,0)
-    C = count_transitions(run, 2, sliding=False).toarray()
+    C = count_transitions(run, 2, every_frame=False).toarray()
     expected = np.zeros((3, 3), int)
     expected[0, 2] = expected[2, 1] = expected[1, 0] = 1
     np.testing.assert_array_equal(C, expected)
-    # sliding: t = 0..4 -> (0,2), (1,0), (2,1), (0,2), (1,0)
+    # every_frame: t = 0..4 -> (0,2), (1,0), (2,1), (0,2), (1,0)
     expected_sliding = np.zeros((3, 3), int)
     expected_sliding[0, 2] = 2
     expected_sliding[1, 0] = 2
@@ -179,19 +179,19 @@ def test_total_sliding_counts():
 # --------------------------------------------------------------------------- per-run rows
 
 @settings(max_examples=40, deadline=None)
-@given(runs=label_runs(max_len=60), lag=st.integers(1, 5), sliding=st.booleans(), blocks=st.integers(1, 7))
-def test_run_count_rows_blocks_sum_to_counts(runs, lag, sliding, blocks):
+@given(runs=label_runs(max_len=60), lag=st.integers(1, 5), every_frame=st.booleans(), blocks=st.integers(1, 7))
+def test_run_count_rows_blocks_sum_to_counts(runs, lag, every_frame, blocks):
     longest = max(r.size for r in runs)
     if lag >= longest or not any(np.any(r >= 0) for r in runs):
         return
-    rows, n = run_count_rows(runs, lag, sliding=sliding, blocks_per_run=blocks)
+    rows, n = run_count_rows(runs, lag, every_frame=every_frame, blocks_per_run=blocks)
     assert rows.shape == (len(runs) * blocks, n * n) and rows.dtype == np.int64
     total = np.asarray(rows.sum(axis=0)).ravel().reshape(n, n)
-    np.testing.assert_array_equal(total, count_transitions(runs, lag, sliding=sliding).toarray())
+    np.testing.assert_array_equal(total, count_transitions(runs, lag, every_frame=every_frame).toarray())
     # the blocks of each run add up to that run's own counts (Python loop reference)
     for r, run in enumerate(runs):
         per_run = np.asarray(rows[r * blocks:(r + 1) * blocks].sum(axis=0)).ravel().reshape(n, n)
-        np.testing.assert_array_equal(per_run, loop_counts([run], lag, n, sliding))
+        np.testing.assert_array_equal(per_run, loop_counts([run], lag, n, every_frame))
     assert rows.data.min(initial=1) > 0
 
 
@@ -223,7 +223,7 @@ def sparse_counts(draw, max_n=9):
 @settings(max_examples=50, deadline=None)
 @given(C=sparse_counts())
 def test_connected_sets_match_reachability(C):
-    sets = connected_sets(sp.csr_matrix(C))
+    sets = communicating_classes(sp.csr_matrix(C))
     expected = reachability_sets(C)
     assert sorted(s.tolist() for s in sets) == sorted(expected)
     for s in sets:
@@ -232,9 +232,9 @@ def test_connected_sets_match_reachability(C):
     keys = [(-int(C[np.ix_(s, s)].sum()), int(s.min())) for s in sets]
     assert keys == sorted(keys)
     if sets:
-        np.testing.assert_array_equal(largest_connected_set(C), sets[0])
+        np.testing.assert_array_equal(kept_states(C), sets[0])
         # dense and sparse input agree
-        np.testing.assert_array_equal(largest_connected_set(sp.csr_matrix(C)), sets[0])
+        np.testing.assert_array_equal(kept_states(sp.csr_matrix(C)), sets[0])
 
 
 def test_kept_set_is_the_one_with_most_counts_not_most_states():
@@ -242,8 +242,8 @@ def test_kept_set_is_the_one_with_most_counts_not_most_states():
     C[np.ix_([0, 1, 2], [0, 1, 2])] = 1          # three states, 9 counts
     C[4, 5] = C[5, 4] = 50                      # two states, 100 counts
     C[2, 4] = 3                                  # one-way link: not strongly connected
-    assert largest_connected_set(C).tolist() == [4, 5]
-    sets = connected_sets(C)
+    assert kept_states(C).tolist() == [4, 5]
+    sets = communicating_classes(C)
     assert [s.tolist() for s in sets] == [[4, 5], [0, 1, 2]]  # state 3 never visited: left out
 
 
@@ -251,16 +251,16 @@ def test_kept_set_ties_go_to_lowest_label():
     C = np.zeros((6, 6), int)
     C[4, 5] = C[5, 4] = 7
     C[1, 2] = C[2, 1] = 7
-    assert largest_connected_set(C).tolist() == [1, 2]
+    assert kept_states(C).tolist() == [1, 2]
     C[5, 5] = 1  # one more count breaks the tie
-    assert largest_connected_set(C).tolist() == [4, 5]
+    assert kept_states(C).tolist() == [4, 5]
 
 
 def test_one_way_transition_gives_singletons():
     C = np.array([[0, 5], [0, 0]])
-    assert [s.tolist() for s in connected_sets(C)] == [[0], [1]]
+    assert [s.tolist() for s in communicating_classes(C)] == [[0], [1]]
 
 
 def test_largest_connected_set_of_nothing():
     with pytest.raises(InputError, match=r"counts hold no transitions"):
-        largest_connected_set(np.zeros((3, 3)))
+        kept_states(np.zeros((3, 3)))

@@ -225,23 +225,23 @@ def test_cluster_kmeans_does_not_depend_on_the_number_of_partitions(dask_client,
 
 # ------------------------------------------------------------------------------- counts, scan
 
-def _count_reference(runs, lag, n, sliding=True):
+def _count_reference(runs, lag, n, every_frame=True):
     """Transition counting by an explicit loop over frame pairs (common practice)."""
     C = np.zeros((n, n), dtype=np.int64)
     for r in runs:
-        for t in range(0, len(r) - lag, 1 if sliding else lag):
+        for t in range(0, len(r) - lag, 1 if every_frame else lag):
             if r[t] >= 0 and r[t + lag] >= 0:
                 C[r[t], r[t + lag]] += 1
     return C
 
 
-@pytest.mark.parametrize("sliding", [True, False])
-def test_counts_equal_the_pair_loop(backend, sample_chain, reversible_chain, sliding):
+@pytest.mark.parametrize("every_frame", [True, False])
+def test_counts_equal_the_pair_loop(backend, sample_chain, reversible_chain, every_frame):
     runs = sample_chain(reversible_chain, 900, n_runs=7, seed=2)
     runs[3][100:140] = -1  # unassigned frames
     runs.append(np.array([1, 2], dtype=np.int32))  # shorter than the lag
-    got = mk.count_transitions(runs, 4, sliding=sliding, **backend)
-    assert np.array_equal(got.toarray(), _count_reference(runs, 4, 3, sliding))
+    got = mk.count_transitions(runs, 4, every_frame=every_frame, **backend)
+    assert np.array_equal(got.toarray(), _count_reference(runs, 4, 3, every_frame))
 
 
 def test_lag_scan_bootstrap_is_the_same(backend, sample_chain, reversible_chain):

@@ -95,7 +95,7 @@ def test_reversible_mle_properties(C):
     assert np.all(T >= 0)
     np.testing.assert_allclose(T.sum(axis=1), 1.0, rtol=0, atol=1e-12)
     assert info.converged and info.method == "reversible-mle"
-    pi = info.stationary_distribution
+    pi = info.equilibrium
     # detailed balance pi_i T_ij = pi_j T_ji, ~1e-12 relative to the largest flow
     X = pi[:, None] * T
     assert np.max(np.abs(X - X.T)) <= 1e-12 * X.max()
@@ -144,7 +144,7 @@ def test_nonreversible_mle_is_row_normalised(C):
     T, info = estimate_transition_matrix(C, reversible=False, return_info=True)
     np.testing.assert_allclose(T, C / C.sum(axis=1, keepdims=True), rtol=1e-14, atol=0)
     assert info.method == "row-normalised" and info.iterations == 0 and info.converged
-    np.testing.assert_allclose(info.stationary_distribution, ref_stationary(T), rtol=1e-7, atol=1e-14)
+    np.testing.assert_allclose(info.equilibrium, ref_stationary(T), rtol=1e-7, atol=1e-14)
 
 
 @pytest.mark.parametrize("C", [[[5, 3], [2, 7]], [[0, 1], [40, 2]], [[1000, 1], [3, 10]]])
@@ -164,8 +164,8 @@ def test_metastable_counts_converge_fast_and_are_optimal():
     C[8, 0] = 2
     T, info = estimate_transition_matrix(C, return_info=True)
     assert info.converged and info.iterations < 200
-    assert np.max(np.abs(likelihood_gradient(C, T, info.stationary_distribution))) < 1e-8
-    X = info.stationary_distribution[:, None] * T
+    assert np.max(np.abs(likelihood_gradient(C, T, info.equilibrium))) < 1e-8
+    X = info.equilibrium[:, None] * T
     assert np.max(np.abs(X - X.T)) <= 1e-12 * X.max()
 
 
@@ -187,7 +187,7 @@ def test_non_convergence_is_reported():
     assert not info.converged and info.iterations == 3
     # still a reversible stochastic matrix
     np.testing.assert_allclose(T.sum(axis=1), 1.0, atol=1e-12)
-    X = info.stationary_distribution[:, None] * T
+    X = info.equilibrium[:, None] * T
     assert np.max(np.abs(X - X.T)) <= 1e-12 * X.max()
 
 
@@ -239,7 +239,7 @@ def test_log_likelihood_by_hand():
     (np.zeros((3, 3)), r"counts hold no transitions"),
     (np.zeros((0, 0)), r"counts is an empty matrix"),
     (np.array([[5, 1, 0], [1, 5, 0], [0, 0, 4]]),
-     r"counts must be strongly connected .* 2 separate sets of sizes \[2, 1\].*largest_connected_set"),
+     r"counts must be strongly connected .* 2 separate sets of sizes \[2, 1\].*kept_states"),
     (np.array([[5, 1], [0, 5]]), r"counts must be strongly connected"),
 ])
 @pytest.mark.parametrize("reversible", [True, False])

@@ -1,9 +1,9 @@
-"""Tests of msmkit.kinetics: first-passage times, committors, reactive flux, pathways.
+"""Tests of msmkit.kinetics: first-passage times, committors, reactive flux, routes.
 
 Reference values come from outside the code under test: the Kemeny-Snell fundamental matrix,
 closed forms for birth-death chains, series sums, brute-force path enumeration, and an
 "augmented" chain that remembers which set it visited last (whose stationary distribution
-gives the backward committor and the reactive flux without any transition path theory).
+gives the committor backward in time and the reactive flux without any transition path theory).
 """
 import itertools
 import warnings
@@ -14,8 +14,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from msmkit.errors import DiagnosticWarning, InputError
-from msmkit.kinetics import (Pathway, ReactiveFlux, committor, mean_first_passage_time, mfpt_matrix,
-                             mfpt_to_set, reactive_flux)
+from msmkit.kinetics import (Route, TransitionPaths, splitting_probability, mean_passage_time, passage_time_matrix,
+                             hitting_steps, transition_paths)
 
 
 # --------------------------------------------------------------------------- helpers
@@ -63,7 +63,7 @@ def birth_death(p, q):
 def augmented_stationary(T, a, b):
     """Stationary distribution of the chain on (state, set visited last), flag 0 = A, 1 = B.
 
-    pi_hat(i, A) = pi_i q-_i by definition of the backward committor (E & Vanden-Eijnden 2006);
+    pi_hat(i, A) = pi_i q-_i by definition of the committor backward in time (E & Vanden-Eijnden 2006);
     the chain is built and solved here without any committor equation.
     """
     n = T.shape[0]
@@ -99,7 +99,7 @@ def test_mfpt_matches_kemeny_snell_fundamental_matrix(args):
     T = random_chain(n, seed, reversible=rev, sparsity=0.3)
     M = kemeny_snell_mfpt(T)
     for j in range(n):
-        np.testing.assert_allclose(mfpt_to_set(T, j), M[:, j], rtol=1e-8, atol=1e-9)
+        np.testing.assert_allclose(hitting_steps(T, j), M[:, j], rtol=1e-8, atol=1e-9)
 
 
 @settings(max_examples=20, deadline=None)
@@ -118,7 +118,7 @@ def test_mfpt_to_set_equals_series_of_survival_probabilities(args, data):
         v = Q @ v
         if v.max() < 1e-13:
             break
-    m = mfpt_to_set(T, sorted(target))
+    m = hitting_steps(T, sorted(target))
     np.testing.assert_allclose(m[rest], total, rtol=1e-8)
     assert np.all(m[sorted(target)] == 0)
 
@@ -128,9 +128,9 @@ def test_mfpt_two_state_chain_is_geometric():
     a, b = 0.02, 0.3
     T = np.array([[1 - a, a], [b, 1 - b]])
     pi = np.array([b, a]) / (a + b)
-    np.testing.assert_allclose(mfpt_to_set(T, [1]), [1 / a, 0.0])
-    assert mean_first_passage_time(T, pi, [0], [1], time_per_step=0.25) == pytest.approx(0.25 / a)
-    assert mean_first_passage_time(T, pi, [1], [0]) == pytest.approx(1 / b)
+    np.testing.assert_allclose(hitting_steps(T, [1]), [1 / a, 0.0])
+    assert mean_passage_time(T, pi, [0], [1], time_per_step=0.25) == pytest.approx(0.25 / a)
+    assert mean_passage_time(T, pi, [1], [0]) == pytest.approx(1 / b)
 
 
 def test_birth_death_mfpt_closed_form():
@@ -149,14 +149,14 @@ def test_birth_death_mfpt_closed_form():
         w[k + 1] = w[k] * p[k] / q[k + 1]
     pi = w / w.sum()
     e = np.array([pi[: i + 1].sum() / (pi[i] * p[i]) for i in range(N)])
-    m = mfpt_to_set(T, [N])
+    m = hitting_steps(T, [N])
     np.testing.assert_allclose(m[:N], np.cumsum(e[::-1])[::-1], rtol=1e-10)
     # the recursion form as a second, independent statement of the same closed form
     e2 = [1 / p[0]]
     for i in range(1, N):
         e2.append((1 + q[i] * e2[-1]) / p[i])
     np.testing.assert_allclose(e, e2, rtol=1e-12)
-    assert mean_first_passage_time(T, pi, [0], [N]) == pytest.approx(e.sum(), rel=1e-10)
+    assert mean_passage_time(T, pi, [0], [N]) == pytest.approx(e.sum(), rel=1e-10)
 
 
 def test_mean_first_passage_time_weights_sources_by_stationary_distribution():
@@ -165,8 +165,8 @@ def test_mean_first_passage_time_weights_sources_by_stationary_distribution():
     pi = stationary(T)
     M = kemeny_snell_mfpt(T)
     expect = (pi[0] * M[0, 5] + pi[2] * M[2, 5]) / (pi[0] + pi[2])
-    assert mean_first_passage_time(T, pi, [0, 2], [5]) == pytest.approx(expect, rel=1e-9)
-    assert mean_first_passage_time(T, pi, [2, 0], 5, time_per_step=3.0) == pytest.approx(3 * expect, rel=1e-9)
+    assert mean_passage_time(T, pi, [0, 2], [5]) == pytest.approx(expect, rel=1e-9)
+    assert mean_passage_time(T, pi, [2, 0], 5, time_per_step=3.0) == pytest.approx(3 * expect, rel=1e-9)
 
 
 def test_mfpt_matrix_between_singletons_is_kemeny_snell():
@@ -175,7 +175,7 @@ def test_mfpt_matrix_between_singletons_is_kemeny_snell():
     pi = stationary(T)
     M = kemeny_snell_mfpt(T)
     np.fill_diagonal(M, 0.0)
-    np.testing.assert_allclose(mfpt_matrix(T, pi, [[i] for i in range(5)], time_per_step=2.0),
+    np.testing.assert_allclose(passage_time_matrix(T, pi, [[i] for i in range(5)], time_per_step=2.0),
                                2.0 * M, rtol=1e-9, atol=1e-9)
 
 
@@ -183,9 +183,9 @@ def test_mfpt_matrix_between_sets_matches_pairwise_calls():
     T = random_chain(7, 5)
     pi = stationary(T)
     sets = [[0, 1], [2, 3, 4], [6]]
-    out = mfpt_matrix(T, pi, sets)
+    out = passage_time_matrix(T, pi, sets)
     for a, b in itertools.permutations(range(3), 2):
-        assert out[a, b] == pytest.approx(mean_first_passage_time(T, pi, sets[a], sets[b]), rel=1e-12)
+        assert out[a, b] == pytest.approx(mean_passage_time(T, pi, sets[a], sets[b]), rel=1e-12)
     assert np.all(np.diag(out) == 0)
 
 
@@ -193,9 +193,9 @@ def test_mfpt_unreachable_target_is_infinite():
     # State 2 is absorbing, so from 2 (and from 1 with some probability) state 0 is never
     # reached: the first-passage time is infinite (Kemeny & Snell 1960, absorbing chains).
     T = np.array([[0.5, 0.5, 0.0], [0.3, 0.3, 0.4], [0.0, 0.0, 1.0]])
-    m = mfpt_to_set(T, [0])
+    m = hitting_steps(T, [0])
     assert m[0] == 0 and np.isinf(m[1]) and np.isinf(m[2])
-    m = mfpt_to_set(T, [2])
+    m = hitting_steps(T, [2])
     np.testing.assert_allclose(m[:2], np.linalg.solve(np.eye(2) - T[:2, :2], np.ones(2)))
 
 
@@ -212,7 +212,7 @@ def test_birth_death_committor_closed_form():
     T = birth_death(np.r_[p[:N], 0.0], np.r_[0.0, q[1:]])
     rho = np.r_[1.0, np.cumprod(q[1:N] / p[1:N])]
     expect = np.r_[0.0, np.cumsum(rho)] / rho.sum()
-    np.testing.assert_allclose(committor(T, [0], [N]), expect, rtol=1e-10, atol=1e-14)
+    np.testing.assert_allclose(splitting_probability(T, [0], [N]), expect, rtol=1e-10, atol=1e-14)
 
 
 def test_constant_bias_gamblers_ruin():
@@ -221,7 +221,7 @@ def test_constant_bias_gamblers_ruin():
     T = birth_death(np.r_[np.full(N, up), 0.0], np.r_[0.0, np.full(N, down)])
     r = down / up
     i = np.arange(N + 1)
-    np.testing.assert_allclose(committor(T, 0, N), (1 - r ** i) / (1 - r ** N), rtol=1e-10, atol=1e-14)
+    np.testing.assert_allclose(splitting_probability(T, 0, N), (1 - r ** i) / (1 - r ** N), rtol=1e-10, atol=1e-14)
 
 
 @settings(max_examples=25, deadline=None)
@@ -234,11 +234,11 @@ def test_backward_committor_from_augmented_chain(args):
     pi = stationary(T)
     a, b = mask(n, [0]), mask(n, [n - 1])
     ph_a, _, _ = augmented_stationary(T, a, b)
-    qb = committor(T, [0], [n - 1], backward=True, pi=pi)
+    qb = splitting_probability(T, [0], [n - 1], reverse_time=True, pi=pi)
     np.testing.assert_allclose(qb, ph_a / pi, rtol=1e-7, atol=1e-10)
     if rev:
         # reversible chains: q- = 1 - q+ (Metzner, Schütte & Vanden-Eijnden 2009)
-        np.testing.assert_allclose(qb, 1 - committor(T, [0], [n - 1]), atol=1e-10)
+        np.testing.assert_allclose(qb, 1 - splitting_probability(T, [0], [n - 1]), atol=1e-10)
 
 
 @settings(max_examples=25, deadline=None)
@@ -248,7 +248,7 @@ def test_forward_committor_solves_its_defining_equation(args):
     # discrete committor); checked as a residual, independent of how it was solved.
     n, seed, rev = args
     T = random_chain(n, seed, reversible=rev)
-    q = committor(T, [0, 1], [n - 1])
+    q = splitting_probability(T, [0, 1], [n - 1])
     assert np.all(q[[0, 1]] == 0) and q[n - 1] == 1
     np.testing.assert_allclose((T @ q)[2:n - 1], q[2:n - 1], atol=1e-12)
     assert np.all((q >= 0) & (q <= 1))
@@ -258,7 +258,7 @@ def test_committor_of_states_that_reach_neither_set_is_nan():
     # States 2, 3 form a closed class away from A = {0} and B = {1}.
     T = np.array([[0.5, 0.5, 0, 0], [0.5, 0.5, 0, 0], [0, 0, 0.5, 0.5], [0, 0, 0.5, 0.5]])
     with pytest.warns(DiagnosticWarning, match="neither"):
-        q = committor(T, [0], [1])
+        q = splitting_probability(T, [0], [1])
     assert q[0] == 0 and q[1] == 1 and np.isnan(q[2]) and np.isnan(q[3])
 
 
@@ -273,13 +273,13 @@ def test_flux_conservation_and_total_flux(args):
     T = random_chain(n, seed, reversible=rev, sparsity=0.3)
     pi = stationary(T)
     A, B = [0], [n - 2, n - 1]
-    rf = reactive_flux(T, pi, A, B)
-    f, g = rf.gross_flux, rf.net_flux
+    rf = transition_paths(T, pi, A, B)
+    f, g = rf.reactive_current, rf.net_current
     mid = np.setdiff1d(np.arange(n), A + B)
     np.testing.assert_allclose(f[mid].sum(axis=1), f[:, mid].sum(axis=0), atol=1e-14)
     np.testing.assert_allclose(g[mid].sum(axis=1), g[:, mid].sum(axis=0), atol=1e-14)
-    assert g[A].sum() == pytest.approx(rf.total_flux, rel=1e-10)
-    assert g[:, B].sum() == pytest.approx(rf.total_flux, rel=1e-10)
+    assert g[A].sum() == pytest.approx(rf.throughput, rel=1e-10)
+    assert g[:, B].sum() == pytest.approx(rf.throughput, rel=1e-10)
     assert np.all(g >= 0) and np.all(g * g.T == 0)  # net flux is one-directional
 
 
@@ -296,10 +296,10 @@ def test_total_flux_and_rate_from_augmented_chain(args):
     ph_a, _, _ = augmented_stationary(T, a, b)
     F = ph_a @ T[:, b].sum(axis=1)
     tau = 0.2
-    rf = reactive_flux(T, pi, [0, 1], [n - 1], time_per_step=tau, unit="ns")
-    assert rf.total_flux == pytest.approx(F, rel=1e-7)
-    assert rf.rate == pytest.approx(F / (tau * ph_a.sum()), rel=1e-7)
-    assert rf.rate == pytest.approx(rf.total_flux / (tau * pi @ rf.backward_committor), rel=1e-12)
+    rf = transition_paths(T, pi, [0, 1], [n - 1], time_per_step=tau, unit="ns")
+    assert rf.throughput == pytest.approx(F, rel=1e-7)
+    assert rf.rate_constant == pytest.approx(F / (tau * ph_a.sum()), rel=1e-7)
+    assert rf.rate_constant == pytest.approx(rf.throughput / (tau * pi @ rf.came_from_source), rel=1e-12)
     assert rf.event_frequency == pytest.approx(F / tau, rel=1e-7)
     assert rf.mean_time_between_events == pytest.approx(tau / F, rel=1e-7)
 
@@ -309,9 +309,9 @@ def test_two_state_rate_is_the_jump_probability_per_time():
     a, b, tau = 0.05, 0.2, 2.0
     T = np.array([[1 - a, a], [b, 1 - b]])
     pi = np.array([b, a]) / (a + b)
-    rf = reactive_flux(T, pi, [0], [1], time_per_step=tau, unit="ps")
-    assert rf.total_flux == pytest.approx(pi[0] * a)
-    assert rf.rate == pytest.approx(a / tau)
+    rf = transition_paths(T, pi, [0], [1], time_per_step=tau, unit="ps")
+    assert rf.throughput == pytest.approx(pi[0] * a)
+    assert rf.rate_constant == pytest.approx(a / tau)
     assert rf.unit == "ps"
 
 
@@ -319,26 +319,26 @@ def test_results_use_original_labels():
     T = random_chain(5, 2, reversible=True)
     pi = stationary(T)
     labels = np.array([10, 20, 30, 40, 50])
-    rf = reactive_flux(T, pi, [0], [3, 4], labels=labels)
+    rf = transition_paths(T, pi, [0], [3, 4], labels=labels)
     assert list(rf.source) == [10] and list(rf.target) == [40, 50]
-    for path in rf.pathways(1.0):
+    for path in rf.routes(1.0):
         assert path.states[0] == 10 and path.states[-1] in (40, 50)
         assert set(path.states) <= set(labels)
-    table = rf.flux_table()
+    table = rf.current_table()
     assert set(table["from_state"]) <= set(labels) and set(table["to_state"]) <= set(labels)
 
 
-# --------------------------------------------------------------------------- pathways
+# --------------------------------------------------------------------------- routes
 
 def hand_flux(C, source, target, states=None):
-    """A ReactiveFlux holding only a hand-made net flux (committors are not needed for paths)."""
+    """A TransitionPaths holding only a hand-made net flux (committors are not needed for paths)."""
     n = C.shape[0]
     states = np.arange(n) if states is None else np.asarray(states)
     total = C[source].sum()
     z = np.zeros(n)
-    return ReactiveFlux(source=states[source], target=states[target], states=states,
-                        stationary_distribution=z, forward_committor=z, backward_committor=z,
-                        gross_flux=C, net_flux=C, total_flux=total, rate=0.0)
+    return TransitionPaths(source=states[source], target=states[target], states=states,
+                           equilibrium=z, reach_target=z, came_from_source=z,
+                           reactive_current=C, net_current=C, throughput=total, rate_constant=0.0)
 
 
 def test_pathways_of_a_worked_network():
@@ -348,19 +348,19 @@ def test_pathways_of_a_worked_network():
     C = np.zeros((4, 4))
     C[0, 1], C[0, 2], C[1, 3], C[1, 2], C[2, 3] = 0.5, 0.1, 0.3, 0.2, 0.3
     rf = hand_flux(C, [0], [3], states=[7, 8, 9, 10])
-    paths = rf.pathways(1.0)
+    paths = rf.routes(1.0)
     assert [p.states for p in paths] == [(7, 8, 10), (7, 8, 9, 10), (7, 9, 10)]
     np.testing.assert_allclose([p.flux for p in paths], [0.3, 0.2, 0.1])
     np.testing.assert_allclose([p.share for p in paths], [0.5, 1 / 3, 1 / 6])
-    assert [p.states for p in rf.pathways(0.5)] == [(7, 8, 10)]
-    assert len(rf.pathways(1.0, max_paths=2)) == 2
+    assert [p.states for p in rf.routes(0.5)] == [(7, 8, 10)]
+    assert len(rf.routes(1.0, max_paths=2)) == 2
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # an explicit max_paths stops quietly
-        rf.pathways(1.0, max_paths=1)
-    table = rf.pathways_table(1.0)
+        rf.routes(1.0, max_paths=1)
+    table = rf.routes_table(1.0)
     np.testing.assert_allclose(table["cumulative_share"], [0.5, 5 / 6, 1.0])
     assert list(table["length"]) == [2, 3, 2]
-    assert isinstance(paths[0], Pathway)
+    assert isinstance(paths[0], Route)
 
 
 def best_bottleneck_brute_force(C, a, b):
@@ -382,23 +382,23 @@ def best_bottleneck_brute_force(C, a, b):
 @settings(max_examples=25, deadline=None)
 @given(st.tuples(st.integers(4, 7), st.integers(0, 10_000), st.booleans()))
 def test_pathway_decomposition_is_complete_and_strongest_first(args):
-    # Pathway fluxes add up to the total flux when the decomposition is complete, and the first
+    # Route fluxes add up to the total flux when the decomposition is complete, and the first
     # path has the largest bottleneck of all simple paths (Metzner, Schütte & Vanden-Eijnden
     # 2009, Sec. 6; checked against enumeration of every path).
     n, seed, rev = args
     T = random_chain(n, seed, reversible=rev, sparsity=0.4)
     pi = stationary(T)
-    rf = reactive_flux(T, pi, [0], [n - 1])
-    paths = rf.pathways(1.0)
-    assert sum(p.flux for p in paths) == pytest.approx(rf.total_flux, rel=1e-9)
+    rf = transition_paths(T, pi, [0], [n - 1])
+    paths = rf.routes(1.0)
+    assert sum(p.flux for p in paths) == pytest.approx(rf.throughput, rel=1e-9)
     assert sum(p.share for p in paths) == pytest.approx(1.0, rel=1e-9)
     a, b = mask(n, [0]), mask(n, [n - 1])
-    assert paths[0].flux == pytest.approx(best_bottleneck_brute_force(rf.net_flux, a, b), rel=1e-12)
+    assert paths[0].flux == pytest.approx(best_bottleneck_brute_force(rf.net_current, a, b), rel=1e-12)
     fluxes = [p.flux for p in paths]
     assert all(x >= y * (1 - 1e-12) for x, y in zip(fluxes, fluxes[1:]))  # capacities only shrink
     for p in paths:
         assert p.states[0] == 0 and p.states[-1] == n - 1 and len(set(p.states)) == len(p.states)
-        assert all(rf.net_flux[i, j] > 0 for i, j in zip(p.states, p.states[1:]))
+        assert all(rf.net_current[i, j] > 0 for i, j in zip(p.states, p.states[1:]))
 
 
 def test_birth_death_chain_has_a_single_pathway():
@@ -406,8 +406,8 @@ def test_birth_death_chain_has_a_single_pathway():
     N = 6
     T = birth_death(np.r_[np.full(N, 0.3), 0.0], np.r_[0.0, np.full(N, 0.4)])
     pi = stationary(T)
-    rf = reactive_flux(T, pi, [0], [N])
-    paths = rf.pathways()
+    rf = transition_paths(T, pi, [0], [N])
+    paths = rf.routes()
     assert len(paths) == 1 and paths[0].states == tuple(range(N + 1))
     assert paths[0].share == pytest.approx(1.0)
 
@@ -419,13 +419,13 @@ def test_overlapping_sets_name_the_shared_labels():
     pi = stationary(T)
     labels = [5, 6, 7, 8]
     with pytest.raises(InputError, match=r"source and target must not share.*state\(s\) 7"):
-        reactive_flux(T, pi, [0, 2], [2, 3], labels=labels)
+        transition_paths(T, pi, [0, 2], [2, 3], labels=labels)
     with pytest.raises(InputError, match=r"share.*6"):
-        committor(T, [1], [1], labels=labels)
+        splitting_probability(T, [1], [1], labels=labels)
     with pytest.raises(InputError, match=r"share"):
-        mean_first_passage_time(T, pi, [1, 2], [2], labels=labels)
+        mean_passage_time(T, pi, [1, 2], [2], labels=labels)
     with pytest.raises(InputError, match=r"sets\[0\] and sets\[1\] must not share.*8"):
-        mfpt_matrix(T, pi, [[0, 3], [3]], labels=labels)
+        passage_time_matrix(T, pi, [[0, 3], [3]], labels=labels)
 
 
 @pytest.mark.parametrize("bad, match", [
@@ -437,12 +437,12 @@ def test_overlapping_sets_name_the_shared_labels():
 ])
 def test_bad_target_sets(bad, match):
     with pytest.raises(InputError, match=match):
-        mfpt_to_set(random_chain(4, 0), bad)
+        hitting_steps(random_chain(4, 0), bad)
 
 
 def test_boolean_masks_are_accepted():
     T = random_chain(4, 0)
-    np.testing.assert_allclose(mfpt_to_set(T, np.array([False, False, True, True])), mfpt_to_set(T, [2, 3]))
+    np.testing.assert_allclose(hitting_steps(T, np.array([False, False, True, True])), hitting_steps(T, [2, 3]))
 
 
 @pytest.mark.parametrize("T, match", [
@@ -454,33 +454,33 @@ def test_boolean_masks_are_accepted():
 ])
 def test_bad_transition_matrix(T, match):
     with pytest.raises(InputError, match=match):
-        mfpt_to_set(T, [0])
+        hitting_steps(T, [0])
 
 
 def test_bad_stationary_distribution_and_options():
     T = random_chain(3, 1)
     pi = stationary(T)
     with pytest.raises(InputError, match="not the stationary distribution"):
-        reactive_flux(T, np.ones(3) / 3, [0], [2])
+        transition_paths(T, np.ones(3) / 3, [0], [2])
     with pytest.raises(InputError, match=r"shape \(3,\)"):
-        reactive_flux(T, pi[:2], [0], [2])
+        transition_paths(T, pi[:2], [0], [2])
     with pytest.raises(InputError, match="strictly positive"):
-        reactive_flux(T, np.array([0.0, 0.5, 0.5]), [0], [2])
-    with pytest.raises(InputError, match="required for the backward committor"):
-        committor(T, [0], [2], backward=True)
+        transition_paths(T, np.array([0.0, 0.5, 0.5]), [0], [2])
+    with pytest.raises(InputError, match="required for the committor backward in time"):
+        splitting_probability(T, [0], [2], reverse_time=True)
     with pytest.raises(InputError, match="time_per_step"):
-        reactive_flux(T, pi, [0], [2], time_per_step=0)
+        transition_paths(T, pi, [0], [2], time_per_step=0)
     with pytest.raises(InputError, match="unit"):
-        reactive_flux(T, pi, [0], [2], unit="")
+        transition_paths(T, pi, [0], [2], unit="")
     with pytest.raises(InputError, match="labels must be 3"):
-        reactive_flux(T, pi, [0], [2], labels=[1, 2])
-    rf = reactive_flux(T, pi, [0], [2])
+        transition_paths(T, pi, [0], [2], labels=[1, 2])
+    rf = transition_paths(T, pi, [0], [2])
     with pytest.raises(InputError, match=r"fraction must be a number in \(0, 1\]"):
-        rf.pathways(1.5)
+        rf.routes(1.5)
     with pytest.raises(InputError, match="max_paths must be a positive integer"):
-        rf.pathways(max_paths=0)
+        rf.routes(max_paths=0)
     with pytest.raises(InputError, match="list of sets"):
-        mfpt_matrix(T, pi, np.array([0, 1]))
+        passage_time_matrix(T, pi, np.array([0, 1]))
 
 
 def test_no_warnings_on_irreducible_chains():
@@ -488,8 +488,8 @@ def test_no_warnings_on_irreducible_chains():
     pi = stationary(T)
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        reactive_flux(T, pi, [0], [5]).pathways()
-        committor(T, [0], [5], backward=True, pi=pi)
+        transition_paths(T, pi, [0], [5]).routes()
+        splitting_probability(T, [0], [5], reverse_time=True, pi=pi)
 
 
 def test_default_path_limit_warns_when_it_stops_the_search(monkeypatch):
@@ -500,8 +500,8 @@ def test_default_path_limit_warns_when_it_stops_the_search(monkeypatch):
     C[1:5, 5] = [0.4, 0.3, 0.2, 0.1]
     rf = hand_flux(C, [0], [5])
     monkeypatch.setattr(kin, "DEFAULT_MAX_PATHS", 2)
-    with pytest.warns(DiagnosticWarning, match=r"stopped after 2 pathways carrying 70.0% .*asked for 100.0%"):
-        paths = rf.pathways(1.0)
+    with pytest.warns(DiagnosticWarning, match=r"stopped after 2 routes carrying 70.0% .*asked for 100.0%"):
+        paths = rf.routes(1.0)
     assert [p.states for p in paths] == [(0, 1, 5), (0, 2, 5)]
 
 
@@ -517,17 +517,17 @@ def test_flux_coarse_grained_onto_blocks_keeps_the_total_flux():
                   [0.00, 0.00, 0.00, 0.05, 0.15, 0.80]])
     pi = stationary(T)
     labels = np.array([10, 11, 20, 21, 30, 31])
-    fine = reactive_flux(T, pi, [0, 1], [4, 5], labels=labels)
-    coarse = fine.coarse_grain([[10, 11], [20, 21], [30, 31]])
-    net = coarse.net_flux
-    assert net[0].sum() == pytest.approx(fine.total_flux, rel=1e-10)
-    assert net[:, 2].sum() == pytest.approx(fine.total_flux, rel=1e-10)
+    fine = transition_paths(T, pi, [0, 1], [4, 5], labels=labels)
+    coarse = fine.lump([[10, 11], [20, 21], [30, 31]])
+    net = coarse.net_current
+    assert net[0].sum() == pytest.approx(fine.throughput, rel=1e-10)
+    assert net[:, 2].sum() == pytest.approx(fine.throughput, rel=1e-10)
     assert net[1].sum() == pytest.approx(net[:, 1].sum(), rel=1e-10)
-    assert coarse.stationary_distribution == pytest.approx([pi[:2].sum(), pi[2:4].sum(), pi[4:].sum()])
-    paths = coarse.pathways(fraction=1.0)
-    assert sum(p.flux for p in paths) == pytest.approx(fine.total_flux, rel=1e-9)
+    assert coarse.equilibrium == pytest.approx([pi[:2].sum(), pi[2:4].sum(), pi[4:].sum()])
+    paths = coarse.routes(fraction=1.0)
+    assert sum(p.flux for p in paths) == pytest.approx(fine.throughput, rel=1e-9)
     assert paths[0].states[0] == 0 and paths[0].states[-1] == 2
     with pytest.raises(InputError, match="union of whole sets"):
-        fine.coarse_grain([[10], [11, 20, 21], [30, 31]])
+        fine.lump([[10], [11, 20, 21], [30, 31]])
     with pytest.raises(InputError, match="cover every state"):
-        fine.coarse_grain([[10, 11], [30, 31]])
+        fine.lump([[10, 11], [30, 31]])

@@ -69,10 +69,10 @@ def test_structure_and_units(markov_scan, markov_runs):
 def test_full_data_timescales_equal_build_model(markov_scan, markov_runs):
     for a, lag in enumerate(LAGS):
         model = quiet(build_model, markov_runs, lag, dt=0.5, unit="ns")
-        np.testing.assert_allclose(markov_scan.timescales[a], model.timescales(2), rtol=1e-10)
+        np.testing.assert_allclose(markov_scan.timescales[a], model.relaxation_times(2), rtol=1e-10)
         scanned = markov_scan.model(lag)
-        np.testing.assert_allclose(scanned.transition_matrix, model.transition_matrix, rtol=1e-10, atol=1e-14)
-        np.testing.assert_array_equal(scanned.count_matrix.toarray(), model.count_matrix.toarray())
+        np.testing.assert_allclose(scanned.propagator, model.propagator, rtol=1e-10, atol=1e-14)
+        np.testing.assert_array_equal(scanned.transition_counts.toarray(), model.transition_counts.toarray())
         assert scanned.lag == lag and scanned.unit == "ns"
 
 
@@ -95,7 +95,7 @@ def test_bootstrap_spread_matches_first_order_error(markov_scan, markov_runs, ti
     # samples the bootstrap standard deviation itself is uncertain by ~1/sqrt(80) = 11 %; allow
     # a factor 1.5 either way.
     model = markov_scan.model(1)
-    counts_out = np.asarray(model.count_matrix.sum(axis=1)).ravel()
+    counts_out = np.asarray(model.transition_counts.sum(axis=1)).ravel()
     for k in (1, 2):
         _, _, sigma = timescale_sigma(true_chain(), counts_out, 1, 0.5, which=k)
         spread = np.std(markov_scan.samples[0, :, k - 1], ddof=1)

@@ -1,7 +1,7 @@
-"""Tests of msmkit.macro: PCCA+ memberships, coarse matrices, choosing the number of sets.
+"""Tests of msmkit.macro: PCCA+ affinity, coarse matrices, choosing the number of sets.
 
 References for the checks: Deuflhard & Weber, Linear Algebra Appl. 398, 161 (2005) (PCCA+
-recovers the blocks of nearly uncoupled chains; feasibility of memberships); Röblitz & Weber,
+recovers the blocks of nearly uncoupled chains; feasibility of affinity); Röblitz & Weber,
 Adv. Data Anal. Classif. 7, 147 (2013) (crispness objective, Galerkin projection); Kemeny &
 Snell, Finite Markov Chains (1960) (first-passage times).
 """
@@ -14,8 +14,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from msmkit.errors import DiagnosticWarning, InputError
-from msmkit.macro import (Macrostates, check_macrostate_gap, coarse_transition_matrix, find_macrostates,
-                          pcca_memberships, suggest_n_macrostates)
+from msmkit.macro import (Macrostates, check_macrostate_gap, lumped_propagator, find_macrostates,
+                          pcca_affinity, suggest_n_macrostates)
 
 
 def stationary(T):
@@ -48,7 +48,7 @@ def same_partition(a, b):
 
 
 def assert_valid_memberships(chi, n, m):
-    # Deuflhard & Weber 2005, Sec. 3: memberships are non-negative and each row sums to 1.
+    # Deuflhard & Weber 2005, Sec. 3: affinity are non-negative and each row sums to 1.
     assert chi.shape == (n, m)
     assert chi.min() >= 0
     np.testing.assert_allclose(chi.sum(axis=1), 1.0, atol=1e-12)
@@ -63,7 +63,7 @@ blocks_strategy = st.tuples(st.lists(st.integers(2, 6), min_size=2, max_size=4),
 @settings(max_examples=20, deadline=None)
 @given(blocks_strategy)
 def test_pcca_recovers_blocks_of_nearly_decomposable_chains(args):
-    # Deuflhard & Weber 2005, Sec. 2-3: for a nearly uncoupled chain the memberships are nearly
+    # Deuflhard & Weber 2005, Sec. 2-3: for a nearly uncoupled chain the affinity are nearly
     # the characteristic functions of the blocks; the gap after the m-th eigenvalue selects m
     # (common practice). Non-reversible chains go through the Schur-vector route (Röblitz &
     # Weber 2013, Sec. 4.3).
@@ -73,10 +73,10 @@ def test_pcca_recovers_blocks_of_nearly_decomposable_chains(args):
     with warnings.catch_warnings():
         warnings.simplefilter("error", DiagnosticWarning)
         macro = find_macrostates(T, pi, m, labels=np.arange(100, 100 + T.shape[0]))
-    assert_valid_memberships(macro.memberships, T.shape[0], m)
-    assert same_partition(macro.crisp_assignment, blocks)
+    assert_valid_memberships(macro.affinity, T.shape[0], m)
+    assert same_partition(macro.macro_index, blocks)
     assert macro.crispness > 0.97
-    Tc = macro.coarse_transition_matrix
+    Tc = macro.lumped_propagator
     np.testing.assert_allclose(Tc.sum(axis=1), 1.0, atol=1e-10)
     assert Tc.min() >= -1e-10
     # Galerkin projection keeps the macrostate populations stationary (Röblitz & Weber 2013)
@@ -93,20 +93,20 @@ def test_memberships_are_ordered_by_population_and_keyed_by_label():
     pops = macro.stationary_populations
     assert np.all(np.diff(pops) <= 0)
     assert pops.sum() == pytest.approx(1.0)
-    assert set(macro.assignments) == set(labels.tolist())
-    for s in macro.sets:  # every crisp set is one block, named by labels
+    assert set(macro.macro_of) == set(labels.tolist())
+    for s in macro.members:  # every crisp set is one block, named by labels
         assert len(set(blocks[np.isin(labels, s)])) == 1
-    assert macro.assignments[11] == macro.assignments[3] == macro.assignments[7]
-    table = macro.memberships_table()
+    assert macro.macro_of[11] == macro.macro_of[3] == macro.macro_of[7]
+    table = macro.affinity_table()
     assert list(table.index) == labels.tolist()
 
 
 def test_crispness_equals_objective_computed_from_memberships():
     # Röblitz & Weber 2013: I(chi) = sum_j <chi_j, chi_j>_pi / <chi_j, 1>_pi, at most m,
-    # equal to m only for crisp memberships.
+    # equal to m only for crisp affinity.
     T, pi, _ = block_chain([4, 4, 5], 0.05, 2)
     macro = find_macrostates(T, pi, 3)
-    chi = macro.memberships
+    chi = macro.affinity
     direct = ((chi * pi[:, None] * chi).sum(axis=0) / (pi @ chi)).sum() / 3
     assert macro.crispness == pytest.approx(direct, rel=1e-6)
     assert 0 < macro.crispness < 1
@@ -116,8 +116,8 @@ def test_optimisation_improves_crispness():
     # The optimisation starts from the feasible inner-simplex solution (Röblitz & Weber 2013,
     # Sec. 3.4) and must raise the objective on a fuzzy chain; it is bounded by m.
     T, pi, _ = block_chain([4, 5, 3, 4], 0.1, 3)
-    chi0 = pcca_memberships(T, pi, 4, optimize=False)
-    chi1 = pcca_memberships(T, pi, 4)
+    chi0 = pcca_affinity(T, pi, 4, optimize=False)
+    chi1 = pcca_affinity(T, pi, 4)
 
     def objective(chi):
         return ((chi * pi[:, None] * chi).sum(axis=0) / (pi @ chi)).sum()
@@ -131,44 +131,44 @@ def test_optimisation_improves_crispness():
 
 def test_symmetric_and_schur_routes_agree_on_reversible_chains():
     # For a reversible T the real Schur vectors of D^1/2 T D^-1/2 span the same invariant
-    # subspace as its eigenvectors (linear algebra), so both routes give the same memberships.
+    # subspace as its eigenvectors (linear algebra), so both routes give the same affinity.
     T, pi, _ = block_chain([3, 4, 5], 0.02, 4)
-    a = pcca_memberships(T, pi, 3, reversible=True)
-    b = pcca_memberships(T, pi, 3, reversible=False)
+    a = pcca_affinity(T, pi, 3, reversible=True)
+    b = pcca_affinity(T, pi, 3, reversible=False)
     np.testing.assert_allclose(a, b, atol=1e-6)
 
 
 def test_one_set_and_as_many_sets_as_states():
     T, pi, _ = block_chain([2, 3], 0.01, 5)
-    chi = pcca_memberships(T, pi, 1)
+    chi = pcca_affinity(T, pi, 1)
     np.testing.assert_array_equal(chi, np.ones((5, 1)))
-    np.testing.assert_allclose(coarse_transition_matrix(T, pi, chi), [[1.0]])
+    np.testing.assert_allclose(lumped_propagator(T, pi, chi), [[1.0]])
     # n sets for n states: every state is its own set, and the coarse matrix is T itself
     # (Galerkin projection with chi = a permutation matrix).
     macro = find_macrostates(T, pi, 5)
-    chi = macro.memberships
+    chi = macro.affinity
     np.testing.assert_allclose(np.sort(chi, axis=1)[:, -1], 1.0, atol=1e-8)
     perm = np.argmax(chi, axis=0)
-    np.testing.assert_allclose(macro.coarse_transition_matrix, T[np.ix_(perm, perm)], atol=1e-8)
+    np.testing.assert_allclose(macro.lumped_propagator, T[np.ix_(perm, perm)], atol=1e-8)
 
 
 def test_coarse_matrix_of_crisp_sets_is_the_weighted_lumping():
-    # For crisp memberships the Galerkin projection is the pi-weighted lumping
+    # For crisp affinity the Galerkin projection is the pi-weighted lumping
     # Tc_IJ = sum_{i in I, j in J} pi_i T_ij / sum_{i in I} pi_i (Deuflhard & Weber 2005, Sec. 3).
     T, pi, blocks = block_chain([3, 3, 2], 0.2, 6, reversible=False)
     chi = np.eye(3)[blocks]
     expect = np.array([[pi[blocks == I] @ T[np.ix_(blocks == I, blocks == J)].sum(axis=1)
                         / pi[blocks == I].sum() for J in range(3)] for I in range(3)])
-    np.testing.assert_allclose(coarse_transition_matrix(T, pi, chi), expect, rtol=1e-12)
+    np.testing.assert_allclose(lumped_propagator(T, pi, chi), expect, rtol=1e-12)
 
 
 def test_two_state_chain():
-    # Two states, two sets: memberships are the identity, coarse matrix is T (linear algebra).
+    # Two states, two sets: affinity are the identity, coarse matrix is T (linear algebra).
     T = np.array([[0.9, 0.1], [0.3, 0.7]])
     pi = np.array([0.75, 0.25])
     macro = find_macrostates(T, pi, 2)
-    np.testing.assert_allclose(macro.memberships, np.eye(2), atol=1e-12)
-    np.testing.assert_allclose(macro.coarse_transition_matrix, T, atol=1e-12)
+    np.testing.assert_allclose(macro.affinity, np.eye(2), atol=1e-12)
+    np.testing.assert_allclose(macro.lumped_propagator, T, atol=1e-12)
     np.testing.assert_allclose(macro.stationary_populations, pi)
 
 
@@ -178,7 +178,7 @@ def test_degenerate_eigenvalues_warn():
     e = 0.01
     T = (1 - 4 * e) * np.eye(4) + e * np.ones((4, 4))
     with pytest.warns(DiagnosticWarning, match="nearly\\) equal"):
-        chi = pcca_memberships(T, np.full(4, 0.25), 2)
+        chi = pcca_affinity(T, np.full(4, 0.25), 2)
     assert_valid_memberships(chi, 4, 2)
 
 
@@ -188,8 +188,8 @@ def test_splitting_a_complex_pair_is_refused():
     P = np.roll(np.eye(3), 1, axis=1)
     T = 0.5 * (np.eye(3) + P)
     with pytest.raises(InputError, match="complex-conjugate"):
-        pcca_memberships(T, np.full(3, 1 / 3), 2)
-    assert_valid_memberships(pcca_memberships(T, np.full(3, 1 / 3), 3), 3, 3)
+        pcca_affinity(T, np.full(3, 1 / 3), 2)
+    assert_valid_memberships(pcca_affinity(T, np.full(3, 1 / 3), 3), 3, 3)
 
 
 # --------------------------------------------------------------------------- number of sets
@@ -245,7 +245,7 @@ def test_find_macrostates_warns_when_n_is_not_at_a_gap():
 def test_populations_table_free_energies_and_intervals():
     T, pi, _ = block_chain([3, 5], 1e-3, 9)
     rng = np.random.default_rng(0)
-    p = pi @ pcca_memberships(T, pi, 2)
+    p = pi @ pcca_affinity(T, pi, 2)
     samples = p + 0.01 * rng.standard_normal((200, 2))
     macro = find_macrostates(T, pi, 2, population_samples=samples)
     df = macro.populations(temperature=300.0)
@@ -267,8 +267,8 @@ def test_mfpt_table_between_single_state_macrostates_is_kemeny_snell():
     macro = find_macrostates(T, pi, 4, time_per_step=2.0, unit="ps")
     Z = np.linalg.inv(np.eye(4) - T + np.outer(np.ones(4), pi))
     M = (np.diag(Z)[None, :] - Z) / pi[None, :]
-    perm = macro.crisp_assignment.argsort()  # state of each macrostate
-    table = macro.mfpt_table()
+    perm = macro.macro_index.argsort()  # state of each macrostate
+    table = macro.passage_time_table()
     np.testing.assert_allclose(table.to_numpy(), 2.0 * M[np.ix_(perm, perm)], rtol=1e-9, atol=1e-12)
 
 
@@ -278,15 +278,15 @@ def test_bad_input():
     T, pi, _ = block_chain([2, 2], 0.01, 11)
     for bad in (0, 5, 2.5, True, "2"):
         with pytest.raises(InputError, match="n_sets .* must be an integer from 1 to the number of states"):
-            pcca_memberships(T, pi, bad)
+            pcca_affinity(T, pi, bad)
     with pytest.raises(InputError, match="not the stationary distribution"):
-        pcca_memberships(T, np.full(4, 0.25) + [0.1, -0.1, 0, 0], 2)
-    with pytest.raises(InputError, match=r"memberships must have shape \(4, m\)"):
-        coarse_transition_matrix(T, pi, np.ones((3, 1)))
+        pcca_affinity(T, np.full(4, 0.25) + [0.1, -0.1, 0, 0], 2)
+    with pytest.raises(InputError, match=r"affinity must have shape \(4, m\)"):
+        lumped_propagator(T, pi, np.ones((3, 1)))
     with pytest.raises(InputError, match="row 0 sums to 2"):
-        coarse_transition_matrix(T, pi, np.ones((4, 2)))
+        lumped_propagator(T, pi, np.ones((4, 2)))
     with pytest.raises(InputError, match="non-negative"):
-        coarse_transition_matrix(T, pi, [[1.5, -0.5]] * 4)
+        lumped_propagator(T, pi, [[1.5, -0.5]] * 4)
     with pytest.raises(InputError, match=r"population_samples must have shape \(n_samples, 2\)"):
         find_macrostates(T, pi, 2, population_samples=np.ones((5, 3)))
     with pytest.raises(InputError, match="max_sets"):

@@ -46,11 +46,11 @@ def test_two_state_model_closed_form(a, b):
     # eigenvalue 1-a-b, stationary (b, a)/(a+b), timescale -tau/ln(1-a-b) (common practice)
     T = np.array([[1 - a, a], [b, 1 - b]])
     model = MarkovModel.from_transition_matrix(T, dt=0.5, unit="ns")
-    np.testing.assert_allclose(model.stationary_distribution, [b / (a + b), a / (a + b)], rtol=1e-12)
-    np.testing.assert_allclose(model.eigenvalues(), [1.0, 1 - a - b], rtol=1e-12)
-    np.testing.assert_allclose(model.timescales(), [-0.5 / np.log(1 - a - b)], rtol=1e-12)
+    np.testing.assert_allclose(model.equilibrium, [b / (a + b), a / (a + b)], rtol=1e-12)
+    np.testing.assert_allclose(model.spectrum(), [1.0, 1 - a - b], rtol=1e-12)
+    np.testing.assert_allclose(model.relaxation_times(), [-0.5 / np.log(1 - a - b)], rtol=1e-12)
     assert model.lag == 1 and model.lag_time == 0.5 and model.unit == "ns"
-    assert model.reversible and model.count_matrix is None
+    assert model.reversible and model.transition_counts is None
     assert model.diagnostics == []
 
 
@@ -60,10 +60,10 @@ def test_two_state_from_data_by_hand():
     labels = [np.array([0, 0, 1, 1, 1, 0, 0, 1])]
     for reversible in (True, False):
         model = quiet(build_model, labels, 1, dt=0.1, unit="ns", reversible=reversible)
-        np.testing.assert_allclose(model.transition_matrix, [[0.5, 0.5], [1 / 3, 2 / 3]], rtol=1e-12)
-        np.testing.assert_allclose(model.stationary_distribution, [0.4, 0.6], rtol=1e-12)
+        np.testing.assert_allclose(model.propagator, [[0.5, 0.5], [1 / 3, 2 / 3]], rtol=1e-12)
+        np.testing.assert_allclose(model.equilibrium, [0.4, 0.6], rtol=1e-12)
         a, b = 0.5, 1 / 3
-        np.testing.assert_allclose(model.timescales(), [-0.1 / np.log(1 - a - b)], rtol=1e-12)
+        np.testing.assert_allclose(model.relaxation_times(), [-0.1 / np.log(1 - a - b)], rtol=1e-12)
 
 
 # --------------------------------------------------------------------------- sampled chains
@@ -79,20 +79,20 @@ def test_sampled_reversible_chain_recovers_T_pi_and_timescales(sample_chain, rev
     for lag in (1, 3):
         model = build_model(runs, lag, dt=0.2, unit="ps")
         Tl = np.linalg.matrix_power(T, lag)
-        counts_out = np.asarray(model.count_matrix.sum(axis=1)).ravel()
+        counts_out = np.asarray(model.transition_counts.sum(axis=1)).ravel()
         # (1) T: multinomial rows; the sliding window at lag L holds L interleaved chains, so count
         # conservatively with n_i / L independent transitions; 5 standard errors per entry
         sigma_T = np.sqrt(Tl * (1 - Tl) / (counts_out[:, None] / lag))
-        assert np.all(np.abs(model.transition_matrix - Tl) <= 5 * sigma_T)
+        assert np.all(np.abs(model.propagator - Tl) <= 5 * sigma_T)
         # (2) pi: a time average over a reversible chain has variance at most
         # pi_i (1 - pi_i) / N * (1 + lambda_2) / (1 - lambda_2) (spectral-gap bound, common
         # practice); 5 of those standard errors
         sigma_pi = np.sqrt(pi_true * (1 - pi_true) / N * (1 + lam2) / (1 - lam2))
-        assert np.all(np.abs(model.stationary_distribution - pi_true) <= 5 * sigma_pi)
+        assert np.all(np.abs(model.equilibrium - pi_true) <= 5 * sigma_pi)
         # (3) timescales against scipy.linalg.eig of the true matrix: the same at every lag for a
         # Markov chain; 5 first-order standard errors (conftest.timescale_sigma)
         expected = ref_timescales(T, 1, 0.2)
-        got = model.timescales(2)
+        got = model.relaxation_times(2)
         for k in (1, 2):
             _, t_lag, sigma_t = timescale_sigma(Tl, counts_out / lag, lag, 0.2, which=k)
             np.testing.assert_allclose(t_lag, expected[k - 1], rtol=1e-9)  # same process at every lag
@@ -121,8 +121,8 @@ def test_rate_matrix_exact_timescales_at_every_lag():
     for lag in (1, 4, 16, 64):
         # (at lag 64 the 11.4 ps process is faster than the 32 ps lag: flagged, rightly)
         model = quiet(MarkovModel.from_transition_matrix, la.expm(K * lag * dt), dt=lag * dt, unit="ps")
-        np.testing.assert_allclose(model.timescales(), expected, rtol=1e-9)
-        np.testing.assert_allclose(model.stationary_distribution, [0.5, 0.3, 0.2], rtol=1e-10)
+        np.testing.assert_allclose(model.relaxation_times(), expected, rtol=1e-9)
+        np.testing.assert_allclose(model.equilibrium, [0.5, 0.3, 0.2], rtol=1e-10)
         assert model.reversible
 
 
@@ -133,8 +133,8 @@ def test_rate_matrix_sampled_timescales_independent_of_lag(sample_chain, timesca
     runs = sample_chain(la.expm(K * dt), 1500, n_runs=150, seed=5)
     for lag in (1, 4, 16):
         model = quiet(build_model, runs, lag, dt=dt, unit="ps")  # lag 16 > 11.4 ps: flagged, rightly
-        got = model.timescales(2)
-        counts_out = np.asarray(model.count_matrix.sum(axis=1)).ravel()
+        got = model.relaxation_times(2)
+        counts_out = np.asarray(model.transition_counts.sum(axis=1)).ravel()
         for k in (1, 2):
             # 5 first-order standard errors with n_i / lag independent counts (conservative)
             _, t_true, sigma_t = timescale_sigma(la.expm(K * lag * dt), counts_out / lag, lag, dt, which=k)
@@ -253,7 +253,7 @@ def test_double_well_slowest_timescale():  # about 3 s: under the 5 s mark for '
     labels = [np.digitize(p, edges).astype(np.int32) for p in paths]
     model = quiet(build_model, labels, lag, dt=frame_dt, unit="t")  # fast bin-to-bin modes: flagged
     elapsed = time.perf_counter() - start
-    t_msm = model.timescales(1)[0]
+    t_msm = model.relaxation_times(1)[0]
     # statistical error: a rate measured from n independent barrier crossings has relative
     # standard error 1/sqrt(n) (Poisson counting, common practice); allow 4 of those, plus the
     # projection error above, plus 2 % for the Euler-Maruyama time step (weak order 1: halving dt
@@ -278,8 +278,8 @@ def test_sparse_labels_are_reported_by_original_label(sample_chain, reversible_c
     m_sparse = build_model(sparse, 2, dt=1.0)
     assert m_sparse.states.tolist() == [3, 7, 42]
     assert m_sparse.n_states == 3 and m_sparse.dropped_states.size == 0 and m_sparse.kept_fraction == 1.0
-    np.testing.assert_array_equal(m_sparse.transition_matrix, m_dense.transition_matrix)
-    np.testing.assert_array_equal(m_sparse.stationary_distribution, m_dense.stationary_distribution)
+    np.testing.assert_array_equal(m_sparse.propagator, m_dense.propagator)
+    np.testing.assert_array_equal(m_sparse.equilibrium, m_dense.equilibrium)
     assert m_sparse.populations()["state"].tolist() == [3, 7, 42]
     assert m_sparse.index_of([42, 3]).tolist() == [0, 2]
     with pytest.raises(InputError, match=r"label\(s\) 1 that are not in the model's kept set"):
@@ -289,7 +289,7 @@ def test_sparse_labels_are_reported_by_original_label(sample_chain, reversible_c
     pairs = np.concatenate([np.stack([r[:-1], r[1:]]) for r in sparse], axis=1)
     out7 = pairs[0] == 7
     expected = np.count_nonzero(out7 & (pairs[1] == 42)) / np.count_nonzero(out7)
-    assert m_nr.transition_matrix[1, 2] == pytest.approx(expected, rel=1e-14)
+    assert m_nr.propagator[1, 2] == pytest.approx(expected, rel=1e-14)
 
 
 def test_dropped_state_reported_with_its_share_and_warned():
@@ -317,13 +317,13 @@ def test_nonreversible_cyclic_data_flags_complex_eigenvalues(sample_chain):
     runs = sample_chain(T, 3000, n_runs=10, seed=4)
     with pytest.warns(DiagnosticWarning, match=r"complex"):
         model = build_model(runs, 1, reversible=False)
-    C = model.count_matrix.toarray()
-    np.testing.assert_allclose(model.transition_matrix, C / C.sum(axis=1, keepdims=True), rtol=1e-14)
-    assert np.iscomplexobj(model.eigenvalues())
+    C = model.transition_counts.toarray()
+    np.testing.assert_allclose(model.propagator, C / C.sum(axis=1, keepdims=True), rtol=1e-14)
+    assert np.iscomplexobj(model.spectrum())
     assert not model.reversible
     # the reversible estimate of the same data has a real spectrum and no such finding
     rev = quiet(build_model, runs, 1, reversible=True)
-    assert np.isrealobj(rev.eigenvalues())
+    assert np.isrealobj(rev.spectrum())
     assert not any("complex" in d for d in rev.diagnostics)
 
 
@@ -331,8 +331,8 @@ def test_alternating_data_is_flagged_periodic():
     # 0 1 0 1 ...: T = [[0, 1], [1, 0]] at lag 1, eigenvalue -1 (Perron-Frobenius, common practice)
     with pytest.warns(DiagnosticWarning) as record:
         model = build_model(np.tile([0, 1], 50), 1)
-    np.testing.assert_array_equal(model.transition_matrix, [[0.0, 1.0], [1.0, 0.0]])
-    assert model.eigenvalues()[0] == pytest.approx(1.0) and model.eigenvalues()[1] == pytest.approx(-1.0)
+    np.testing.assert_array_equal(model.propagator, [[0.0, 1.0], [1.0, 0.0]])
+    assert model.spectrum()[0] == pytest.approx(1.0) and model.spectrum()[1] == pytest.approx(-1.0)
     assert any(str(w.message).startswith("Periodic chain") for w in record)
 
 
@@ -349,14 +349,14 @@ def test_clean_model_issues_no_warning(sample_chain, reversible_chain):
 
 def test_populations_table_and_free_energies(sample_chain, reversible_chain):
     model = quiet(build_model, sample_chain(reversible_chain, 300, n_runs=10, seed=1), 1)
-    p = model.stationary_distribution
+    p = model.equilibrium
     df = model.populations()
     assert isinstance(df, pd.DataFrame)
     assert list(df.columns) == ["state", "population", "free_energy_kT", "transitions_out"]
     np.testing.assert_allclose(df["population"], p, rtol=0, atol=0)
     np.testing.assert_allclose(df["free_energy_kT"], -np.log(p / p.max()), rtol=1e-12, atol=1e-15)
     assert df["free_energy_kT"].min() == 0.0
-    np.testing.assert_array_equal(df["transitions_out"], np.asarray(model.count_matrix.sum(axis=1)).ravel())
+    np.testing.assert_array_equal(df["transitions_out"], np.asarray(model.transition_counts.sum(axis=1)).ravel())
     df300 = model.populations(temperature=300)
     assert list(df300.columns) == ["state", "population", "free_energy_kT", "free_energy_kJ_per_mol",
                                    "transitions_out"]
@@ -381,30 +381,30 @@ def test_from_transition_matrix_states_and_vectors():
     T = X / X.sum(axis=1, keepdims=True)
     model = quiet(MarkovModel.from_transition_matrix, T, dt=2.0, unit="ps", states=[10, 20, 30])
     assert model.states.tolist() == [10, 20, 30]
-    np.testing.assert_allclose(model.stationary_distribution, X.sum(axis=1) / X.sum(), rtol=1e-12)
-    w = model.eigenvalues()
+    np.testing.assert_allclose(model.equilibrium, X.sum(axis=1) / X.sum(), rtol=1e-12)
+    w = model.spectrum()
     np.testing.assert_allclose(w, np.sort(la.eigvals(T).real)[::-1], atol=1e-12)
-    assert model.eigenvalues(2).shape == (2,) and model.timescales(1).shape == (1,)
-    R = model.eigenvectors()
+    assert model.spectrum(2).shape == (2,) and model.relaxation_times(1).shape == (1,)
+    R = model.modes()
     np.testing.assert_allclose(T @ R, R * w[None, :], atol=1e-12)
-    np.testing.assert_allclose(model.timescales(), -2.0 / np.log(np.abs(w[1:])), rtol=1e-12)
+    np.testing.assert_allclose(model.relaxation_times(), -2.0 / np.log(np.abs(w[1:])), rtol=1e-12)
     assert "3 states" in repr(model) and "ps" in repr(model)
 
 
 def test_from_transition_matrix_periodic_is_flagged():
     with pytest.warns(DiagnosticWarning) as record:
         model = MarkovModel.from_transition_matrix([[0.0, 1.0], [1.0, 0.0]])
-    assert model.eigenvalues()[0] == pytest.approx(1.0)
+    assert model.spectrum()[0] == pytest.approx(1.0)
     assert any(d.startswith("Periodic chain") for d in model.diagnostics)
     assert sorted(str(w.message) for w in record) == sorted(model.diagnostics)
 
 
 @pytest.mark.parametrize("T, kw, message", [
     ([[0.5, 0.4], [0.2, 0.8]], {}, r"must be row-stochastic \(every row sums to 1\), but row 0 sums to 0\.9"),
-    ([[1.2, -0.2], [0.2, 0.8]], {}, r"must be non-negative, but transition_matrix\[0, 1\] = -0\.2"),
+    ([[1.2, -0.2], [0.2, 0.8]], {}, r"must be non-negative, but propagator\[0, 1\] = -0\.2"),
     ([[np.nan, 1.0], [0.2, 0.8]], {}, r"holds NaN or infinite entries"),
     ([[0.5, 0.5, 0.0]], {}, r"square \(n x n\) transition matrix with n >= 1, but has shape \(1, 3\)"),
-    ([[1.0, 0.0], [0.0, 1.0]], {}, r"irreducible .* splits into 2 strongly connected sets"),
+    ([[1.0, 0.0], [0.0, 1.0]], {}, r"irreducible .* splits into 2 communicating classes"),
     ([["a"]], {}, r"must be a square row-stochastic matrix of numbers"),
     ([[0.5, 0.5], [0.2, 0.8]], {"states": [1, 1]}, r"states must be 2 distinct integer labels"),
     ([[0.5, 0.5], [0.2, 0.8]], {"states": [1.5, 2]}, r"states must be 2 distinct integer labels"),
@@ -420,18 +420,18 @@ def test_from_transition_matrix_bad_input(T, kw, message):
 
 def test_metadata_records_parameters_and_fingerprint():
     runs = [np.array([0, 1, 1, 0, 1, 0, 0, 1] * 4), np.array([1, 0, 0, 1, 1])]
-    model = quiet(build_model, runs, 2, dt=0.1, unit="ns", sliding=False)
+    model = quiet(build_model, runs, 2, dt=0.1, unit="ns", every_frame=False)
     meta = model.metadata
-    assert meta["parameters"] == {"lag": 2, "dt": 0.1, "unit": "ns", "reversible": True, "sliding": False,
+    assert meta["parameters"] == {"lag": 2, "dt": 0.1, "unit": "ns", "reversible": True, "every_frame": False,
                                   "n_states": 2}
     assert meta["frames_per_run"] == [32, 5]
     assert meta["package_version"] == mk.__version__
     assert len(meta["labels_sha256"]) == 64
-    other = quiet(build_model, [runs[0], runs[1][::-1]], 2, dt=0.1, unit="ns", sliding=False)
+    other = quiet(build_model, [runs[0], runs[1][::-1]], 2, dt=0.1, unit="ns", every_frame=False)
     assert other.metadata["labels_sha256"] != meta["labels_sha256"]
     # strided counting at lag 2 (by hand for the second run: pairs (1,0) and (0,1))
-    expected = mk.count_transitions(runs, 2, sliding=False).toarray()
-    np.testing.assert_array_equal(model.count_matrix.toarray(), expected)
+    expected = mk.count_transitions(runs, 2, every_frame=False).toarray()
+    np.testing.assert_array_equal(model.transition_counts.toarray(), expected)
 
 
 def test_macrostate_population_intervals_cover_the_truth(sample_chain, stationary_ref):
@@ -445,7 +445,7 @@ def test_macrostate_population_intervals_cover_the_truth(sample_chain, stationar
     pi = stationary_ref(T)
     runs = sample_chain(T, 2000, n_runs=30, seed=4)
     model = mk.build_model(runs, 1)
-    macro = model.macrostates(2, labels=runs, n_samples=60, seed=0)
+    macro = model.find_macrostates(2, labels=runs, n_samples=60, seed=0)
     table = macro.populations()
     for row in table.itertuples():
         block = list(row.states)
@@ -457,4 +457,4 @@ def test_macrostate_population_intervals_cover_the_truth(sample_chain, stationar
     assert samples.shape == (5, 4)
     assert np.allclose(np.nansum(samples, axis=1), 1.0)
     with pytest.raises(mk.InputError, match="needs labels="):
-        model.macrostates(2, n_samples=10)
+        model.find_macrostates(2, n_samples=10)

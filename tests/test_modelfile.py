@@ -61,17 +61,17 @@ def test_round_trip_is_exact(model, tmp_path):
     path = model.save(tmp_path / "m.npz")
     assert path == tmp_path / "m.npz"
     back = load_model(path)
-    for name in ("transition_matrix", "stationary_distribution", "states", "dropped_states"):
+    for name in ("propagator", "equilibrium", "states", "dropped_states"):
         a, b = getattr(model, name), getattr(back, name)
         assert a.dtype == b.dtype and np.array_equal(a, b), name  # bit for bit
-    np.testing.assert_array_equal(back.count_matrix.toarray(), model.count_matrix.toarray())
-    assert back.count_matrix.dtype == np.int64
+    np.testing.assert_array_equal(back.transition_counts.toarray(), model.transition_counts.toarray())
+    assert back.transition_counts.dtype == np.int64
     assert (back.lag, back.dt, back.unit, back.reversible) == (model.lag, model.dt, model.unit, model.reversible)
     assert back.kept_fraction == model.kept_fraction
     assert back.diagnostics == model.diagnostics
     for key in ("parameters", "labels_sha256", "frames_per_run", "package_version", "created"):
         assert back.metadata[key] == model.metadata[key]
-    np.testing.assert_array_equal(back.timescales(), model.timescales())
+    np.testing.assert_array_equal(back.relaxation_times(), model.relaxation_times())
     # and the loaded model saves to the same arrays again
     again = back.save(tmp_path / "again.npz")
     a, b = arrays_of(path), arrays_of(again)
@@ -85,7 +85,7 @@ def test_file_holds_plain_arrays_only(model, tmp_path):
     data = arrays_of(path)  # allow_pickle=False: would raise on any object array
     assert str(data["format"]) == FORMAT and int(data["format_version"]) == FORMAT_VERSION
     assert all(arr.dtype != object for arr in data.values())
-    assert set(data) == {"format", "format_version", "transition_matrix", "count_matrix", "stationary_distribution",
+    assert set(data) == {"format", "format_version", "propagator", "transition_counts", "equilibrium",
                          "states", "lag", "dt", "unit", "reversible", "metadata"}
     meta = json.loads(str(data["metadata"]))
     assert meta["kept_fraction"] == model.kept_fraction and meta["dropped_states"] == [7]
@@ -95,16 +95,16 @@ def test_model_from_matrix_omits_count_matrix(tmp_path):
     model = MarkovModel.from_transition_matrix([[0.9, 0.1], [0.05, 0.95]], dt=2.0, unit="fs", states=[4, 9])
     path = model.save(tmp_path / "matrix")
     assert path.name == "matrix.npz"  # suffix appended
-    assert "count_matrix" not in arrays_of(path)
+    assert "transition_counts" not in arrays_of(path)
     back = load_model(path)
-    assert back.count_matrix is None and back.states.tolist() == [4, 9] and back.unit == "fs"
-    np.testing.assert_array_equal(back.transition_matrix, model.transition_matrix)
+    assert back.transition_counts is None and back.states.tolist() == [4, 9] and back.unit == "fs"
+    np.testing.assert_array_equal(back.propagator, model.propagator)
 
 
 def test_optional_arrays_round_trip(model, tmp_path):
     rng = np.random.default_rng(0)
     extras = {"centers": rng.random((4, 3)), "tica_mean": rng.random(5), "tica_components": rng.random((3, 5)),
-              "memberships": np.array([[1.0, 0.0], [0.25, 0.75], [0.0, 1.0]])}
+              "affinity": np.array([[1.0, 0.0], [0.25, 0.75], [0.0, 1.0]])}
     back = load_model(model.save(tmp_path / "m.npz", **extras))
     assert set(back.extras) == set(extras)
     for key, value in extras.items():
@@ -154,7 +154,7 @@ def test_failed_write_keeps_the_good_file(model, tmp_path, monkeypatch):
     assert path.read_bytes() == before
     assert os.listdir(tmp_path) == ["m.npz"]
     monkeypatch.undo()
-    np.testing.assert_array_equal(load_model(path).transition_matrix, model.transition_matrix)
+    np.testing.assert_array_equal(load_model(path).propagator, model.propagator)
 
 
 def test_overwrite_false_refuses(model, tmp_path):
@@ -225,7 +225,7 @@ def test_not_a_model_file(tmp_path):
         load_model(tmp_path / "absent.npz")
 
 
-@pytest.mark.parametrize("key", ["format", "transition_matrix", "stationary_distribution", "states", "lag", "dt",
+@pytest.mark.parametrize("key", ["format", "propagator", "equilibrium", "states", "lag", "dt",
                                  "unit", "reversible", "metadata", "format_version"])
 def test_missing_key(model, tmp_path, key):
     bad = write_variant(tmp_path, model.save(tmp_path / "good.npz"), "bad.npz", **{key: None})
@@ -247,15 +247,15 @@ BAD_VALUES = {
     "wrong format": ({"format": np.array("some-other-model")}, r"format is 'some-other-model', expected 'msmkit-model'"),
     "format as bytes": ({"format": np.array(b"msmkit-model")}, r"format must be a string"),
     "future version": ({"format_version": np.array(FORMAT_VERSION + 1)}, r"format_version 2 is not supported"),
-    "rows": ({"transition_matrix": _broken_rows}, r"transition_matrix rows do not sum to 1 \(worst off by 0\.01\)"),
-    "negative T": ({"transition_matrix": np.array([[1.2, -0.2, 0.0], [0.1, 0.8, 0.1], [0.0, 0.5, 0.5]])},
-                   r"transition_matrix has negative or non-finite entries"),
-    "NaN T": ({"transition_matrix": np.full((3, 3), np.nan)}, r"transition_matrix has negative or non-finite entries"),
-    "non-square": ({"transition_matrix": lambda T: T[:2]}, r"transition_matrix must be square, but has shape \(2, 3\)"),
-    "1-D T": ({"transition_matrix": lambda T: T.ravel()}, r"transition_matrix must be a 2-D numeric array"),
-    "pi shape": ({"stationary_distribution": lambda p: p[:2]}, r"stationary_distribution has shape \(2,\), expected \(3,\)"),
-    "pi sum": ({"stationary_distribution": lambda p: p * 2}, r"stationary_distribution must be non-negative and sum to 1"),
-    "pi not stationary": ({"stationary_distribution": _swap_pi}, r"stationary_distribution is not stationary"),
+    "rows": ({"propagator": _broken_rows}, r"propagator rows do not sum to 1 \(worst off by 0\.01\)"),
+    "negative T": ({"propagator": np.array([[1.2, -0.2, 0.0], [0.1, 0.8, 0.1], [0.0, 0.5, 0.5]])},
+                   r"propagator has negative or non-finite entries"),
+    "NaN T": ({"propagator": np.full((3, 3), np.nan)}, r"propagator has negative or non-finite entries"),
+    "non-square": ({"propagator": lambda T: T[:2]}, r"propagator must be square, but has shape \(2, 3\)"),
+    "1-D T": ({"propagator": lambda T: T.ravel()}, r"propagator must be a 2-D numeric array"),
+    "pi shape": ({"equilibrium": lambda p: p[:2]}, r"equilibrium has shape \(2,\), expected \(3,\)"),
+    "pi sum": ({"equilibrium": lambda p: p * 2}, r"equilibrium must be non-negative and sum to 1"),
+    "pi not stationary": ({"equilibrium": _swap_pi}, r"equilibrium is not stationary"),
     "states repeat": ({"states": np.array([0, 0, 1])}, r"states must be 3 distinct integer labels"),
     "states float": ({"states": np.array([0.0, 1.0, 2.0])}, r"states must be 3 distinct integer labels"),
     "lag zero": ({"lag": np.array(0)}, r"lag must be a positive integer, got 0"),
@@ -267,10 +267,10 @@ BAD_VALUES = {
     "reversible int": ({"reversible": np.array(1)}, r"reversible must be a boolean"),
     "metadata json": ({"metadata": np.array("{not json")}, r"metadata is not valid JSON"),
     "metadata list": ({"metadata": np.array("[1, 2]")}, r"metadata must be a JSON object"),
-    "counts shape": ({"count_matrix": np.ones((2, 2), dtype=np.int64)}, r"count_matrix must be a non-negative \(3, 3\) integer array"),
-    "counts float": ({"count_matrix": lambda C: C.astype(float)}, r"count_matrix must be a non-negative \(3, 3\) integer array"),
-    "counts negative": ({"count_matrix": lambda C: C - 1000}, r"count_matrix must be a non-negative"),
-    "memberships rows": ({"memberships": np.full((3, 2), 0.3)}, r"memberships must be \(3, m\), non-negative, rows summing to 1"),
+    "counts shape": ({"transition_counts": np.ones((2, 2), dtype=np.int64)}, r"transition_counts must be a non-negative \(3, 3\) integer array"),
+    "counts float": ({"transition_counts": lambda C: C.astype(float)}, r"transition_counts must be a non-negative \(3, 3\) integer array"),
+    "counts negative": ({"transition_counts": lambda C: C - 1000}, r"transition_counts must be a non-negative"),
+    "affinity rows": ({"affinity": np.full((3, 2), 0.3)}, r"affinity must be \(3, m\), non-negative, rows summing to 1"),
     "centers nan": ({"centers": np.array([[np.nan]])}, r"centers must be a finite numeric array"),
     "tica mismatch": ({"tica_mean": np.zeros(4), "tica_components": np.zeros((2, 3))},
                       r"tica_components must be \(dim, n_features\) with n_features = len\(tica_mean\)"),

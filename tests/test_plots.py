@@ -64,7 +64,7 @@ def test_populations_figure(scan):
     assert left.get_ylabel() == "stationary population"
     assert right.get_ylabel() == "free energy [kT]"
     heights = [p.get_height() for p in left.patches]
-    np.testing.assert_allclose(heights, model.stationary_distribution)
+    np.testing.assert_allclose(heights, model.equilibrium)
     assert "0.4 ns" in left.get_title()
     fig = plot_populations(model, temperature=300)
     assert fig.axes[1].get_ylabel() == "free energy [kJ/mol]"
@@ -85,7 +85,7 @@ def test_populations_figure_shows_original_labels_and_caps_states():
     ax = fig.axes[0]
     assert len(ax.patches) == 5
     shown = [int(t.get_text()) for t in ax.get_xticklabels()]
-    top5 = sorted(labels[np.argsort(-model.stationary_distribution)[:5]].tolist())
+    top5 = sorted(labels[np.argsort(-model.equilibrium)[:5]].tolist())
     assert shown == top5
     assert "5 most populated of 8" in ax.get_title()
 

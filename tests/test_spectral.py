@@ -13,7 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from msmkit.spectral import (FEW_COUNTS, chain_diagnostics, eigen_decomposition, implied_timescales,
-                             is_reversible, stationary_distribution)
+                             obeys_detailed_balance, equilibrium_distribution)
 
 
 # --------------------------------------------------------------------------- strategies
@@ -51,7 +51,7 @@ def test_two_state_closed_form(a, b):
     # T = [[1-a, a], [b, 1-b]]: eigenvalues 1 and 1-a-b, stationary (b, a)/(a+b),
     # implied timescale -tau/ln|1-a-b| (linear algebra, common practice; see REFERENCES.md)
     T = np.array([[1 - a, a], [b, 1 - b]])
-    np.testing.assert_allclose(stationary_distribution(T), [b / (a + b), a / (a + b)], rtol=1e-12)
+    np.testing.assert_allclose(equilibrium_distribution(T), [b / (a + b), a / (a + b)], rtol=1e-12)
     w = eigen_decomposition(T)
     np.testing.assert_allclose(w, [1.0, 1 - a - b], atol=1e-14)
     lag, dt = 3, 0.2
@@ -67,7 +67,7 @@ def test_two_state_closed_form(a, b):
 @settings(max_examples=40, deadline=None)
 @given(T=stochastic_matrices())
 def test_stationary_matches_scipy_left_eigenvector(T):
-    pi = stationary_distribution(T)
+    pi = equilibrium_distribution(T)
     np.testing.assert_allclose(pi, ref_stationary(T), rtol=1e-8, atol=1e-13)
     np.testing.assert_allclose(pi @ T, pi, atol=1e-13)
     assert abs(pi.sum() - 1) < 1e-13
@@ -93,7 +93,7 @@ def test_general_spectrum_matches_scipy(T):
 @given(T=stochastic_matrices(reversible=True))
 def test_reversible_spectrum_matches_scipy(T):
     pi = ref_stationary(T)
-    assert is_reversible(T, pi)
+    assert obeys_detailed_balance(T, pi)
     w, R = eigen_decomposition(T, pi, vectors=True)
     assert np.isrealobj(w) and np.isrealobj(R)
     np.testing.assert_allclose(w, np.real(ref_eigenvalues(T)), atol=1e-10)
@@ -113,15 +113,15 @@ def test_powers_converge_to_stationary(T):
     P = np.linalg.matrix_power(T, 4000)
     w = eigen_decomposition(T, reversible=False)
     if abs(w[1]) ** 4000 < 1e-12:
-        np.testing.assert_allclose(P, np.outer(np.ones(len(T)), stationary_distribution(T)), atol=1e-9)
+        np.testing.assert_allclose(P, np.outer(np.ones(len(T)), equilibrium_distribution(T)), atol=1e-9)
 
 
 def test_is_reversible():
     T = np.array([[0.8, 0.15, 0.05], [0.05, 0.8, 0.15], [0.15, 0.05, 0.8]])  # cyclic drift
-    assert not is_reversible(T, np.full(3, 1 / 3))
+    assert not obeys_detailed_balance(T, np.full(3, 1 / 3))
     X = np.array([[4.0, 1, 2], [1, 3, 0.5], [2, 0.5, 1]])
     T = X / X.sum(axis=1, keepdims=True)
-    assert is_reversible(T, X.sum(axis=1) / X.sum())
+    assert obeys_detailed_balance(T, X.sum(axis=1) / X.sum())
 
 
 # --------------------------------------------------------------------------- implied timescales

@@ -108,18 +108,18 @@ def test_strided_frames_honour_the_chunk_size():
         assert run.largest <= max(40 - 40 % stride, stride)
 
 
-@pytest.mark.parametrize("sliding", [True, False])
-def test_counting_in_small_blocks_is_exact(monkeypatch, sample_chain, reversible_chain, sliding):
+@pytest.mark.parametrize("every_frame", [True, False])
+def test_counting_in_small_blocks_is_exact(monkeypatch, sample_chain, reversible_chain, every_frame):
     runs = sample_chain(reversible_chain, 1000, n_runs=5, seed=4)
     runs[2][::17] = -1
     expected = np.zeros((3, 3), dtype=np.int64)
     for r in runs:  # explicit loop over frame pairs (common practice)
-        for t in range(0, len(r) - 3, 1 if sliding else 3):
+        for t in range(0, len(r) - 3, 1 if every_frame else 3):
             if r[t] >= 0 and r[t + 3] >= 0:
                 expected[r[t], r[t + 3]] += 1
     for block in (1, 7, 250, 1 << 22):
         monkeypatch.setattr(counts_module, "COUNT_BLOCK", block)
-        assert np.array_equal(mk.count_transitions(runs, 3, sliding=sliding).toarray(), expected)
+        assert np.array_equal(mk.count_transitions(runs, 3, every_frame=every_frame).toarray(), expected)
 
 
 def test_peak_memory_does_not_grow_with_the_data(tmp_path):

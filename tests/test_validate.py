@@ -79,7 +79,7 @@ def lumped_ck(lumped_runs):
 def start_distribution(model, labels_of_set):
     idx = [int(np.flatnonzero(model.states == s)[0]) for s in labels_of_set]
     p0 = np.zeros(model.n_states)
-    p0[idx] = model.stationary_distribution[idx]
+    p0[idx] = model.equilibrium[idx]
     return p0 / p0.sum()
 
 
@@ -117,20 +117,20 @@ def test_ck_at_k1_prediction_equals_estimate(markov_ck, lumped_ck):
 def test_ck_predictions_are_matrix_powers_and_estimates_models_at_longer_lags(markov_model, markov_runs):
     # a set of two states, so that the start distribution inside it matters
     markov_ck = quiet(chapman_kolmogorov, markov_model, markov_runs, sets=[[0], [1, 2]], multiples=5, n_samples=0)
-    T = markov_model.transition_matrix
-    for a, set_a in enumerate(markov_ck.sets):
+    T = markov_model.propagator
+    for a, set_a in enumerate(markov_ck.members):
         p0 = start_distribution(markov_model, set_a)
         for k in range(1, 6):
             row = p0 @ np.linalg.matrix_power(T, k)  # numpy reference
-            for b, set_b in enumerate(markov_ck.sets):
+            for b, set_b in enumerate(markov_ck.members):
                 cols = np.isin(markov_model.states, set_b)
                 assert markov_ck.predicted[k - 1, a, b] == pytest.approx(row[cols].sum(), abs=1e-12)
     # the data side at lag 3 is the model estimated at lag 3 (same estimator), every state kept
     m3 = quiet(build_model, markov_runs, 3, dt=0.5, unit="ns")
     assert np.array_equal(m3.states, markov_model.states)
-    for a, set_a in enumerate(markov_ck.sets):
-        row = start_distribution(markov_model, set_a) @ m3.transition_matrix
-        for b, set_b in enumerate(markov_ck.sets):
+    for a, set_a in enumerate(markov_ck.members):
+        row = start_distribution(markov_model, set_a) @ m3.propagator
+        for b, set_b in enumerate(markov_ck.members):
             expected = row[np.isin(m3.states, set_b)].sum()
             assert markov_ck.estimated[2, a, b] == pytest.approx(expected, abs=1e-9)
     # rows are probability distributions over the sets that cover the kept states
@@ -151,7 +151,7 @@ def test_ck_table_units_and_intervals(markov_ck):
     assert markov_ck.samples.shape == (5, 20, 3, 3)
     assert np.all(markov_ck.lower <= markov_ck.upper)
     # the sets cover the kept states, disjointly, and their populations are the model's
-    np.testing.assert_array_equal(np.sort(np.concatenate(markov_ck.sets)), np.arange(3))
+    np.testing.assert_array_equal(np.sort(np.concatenate(markov_ck.members)), np.arange(3))
     assert markov_ck.populations.sum() == pytest.approx(1.0)
 
 
@@ -251,12 +251,12 @@ def test_lag_flow_markov_paths_coincide_and_reuse_the_test(markov_ck, markov_mod
 
 def test_lag_flow_fixed_point_is_set_population_and_limit_of_powers(markov_ck, markov_model):
     flow = lag_flow(markov_ck, pair=(1, 0))
-    pi = markov_model.stationary_distribution
-    for c, s in enumerate(flow.sets):
+    pi = markov_model.equilibrium
+    for c, s in enumerate(flow.members):
         cols = np.isin(markov_model.states, s)
         assert flow.fixed_point[c] == pytest.approx(pi[cols].sum(), abs=1e-12)
         # T^n -> 1 pi^T (Perron-Frobenius): p_aa(n tau) -> pi_a for large n
-        limit = start_distribution(markov_model, s) @ np.linalg.matrix_power(markov_model.transition_matrix, 5000)
+        limit = start_distribution(markov_model, s) @ np.linalg.matrix_power(markov_model.propagator, 5000)
         assert flow.fixed_point[c] == pytest.approx(limit[cols].sum(), abs=1e-9)
     # the relaxed share starts at 0 and grows toward 1
     r = flow.relaxed("predicted")
@@ -280,7 +280,7 @@ def test_lag_flow_memory_paths_part(lumped_ck):
 def test_lag_flow_from_a_model_runs_the_test(markov_model, markov_runs):
     flow = quiet(lag_flow, markov_model, markov_runs, sets=[[0], [2]], multiples=3, n_samples=4, seed=0)
     assert flow.lags.tolist() == [0, 1, 2, 3] and flow.ck.n_samples == 4
-    assert [s.tolist() for s in flow.sets] == [[0], [2]]
+    assert [s.tolist() for s in flow.members] == [[0], [2]]
     short = [r[:8] for r in markov_runs]  # reaches 7 multiples of lag 1 only
     flow = quiet(lag_flow, markov_model, short, sets=[[0], [1, 2]], n_samples=0)
     assert flow.lags[-1] == 7 and any("reach 7 multiples" in n for n in flow.ck.notes)
@@ -320,7 +320,7 @@ def test_vamp2_of_non_reversible_matrix_is_sum_of_squared_singular_values():
     T = np.array([[0.8, 0.15, 0.05], [0.05, 0.7, 0.25], [0.3, 0.1, 0.6]])
     model = quiet(MarkovModel.from_transition_matrix, T)
     assert not model.reversible
-    pi = model.stationary_distribution
+    pi = model.equilibrium
     s = la.svdvals(np.diag(np.sqrt(pi)) @ T @ np.diag(1 / np.sqrt(pi)))  # scipy reference
     assert s[0] == pytest.approx(1.0)
     assert vamp2_score(model) == pytest.approx(np.sum(s ** 2), rel=1e-12)
@@ -471,7 +471,7 @@ def test_lag_flow_figure(markov_ck, lumped_ck, markov_model, markov_runs):
     assert "0.5 ns" in texts  # the longest lag is always written on the data path
     assert figure_png(fig).startswith(b"\x89PNG")
     # models at two lags on the same sets share the data path
-    sets = [list(s) for s in markov_ck.sets]
+    sets = [list(s) for s in markov_ck.members]
     flows = [quiet(lag_flow, quiet(build_model, markov_runs, lag, dt=0.5, unit="ns"), markov_runs, sets=sets,
                    multiples=4 // lag, n_samples=0) for lag in (1, 2)]
     fig = plot_lag_flow(flows, full_square=True)

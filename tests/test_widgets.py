@@ -216,7 +216,7 @@ def test_save_writes_a_model_that_loads_with_provenance(wb, trajs, tmp_path):
     wb.states_panel.n_states.value, wb.states_panel.seed.value = N_STATES, 0
     loaded = mk.load_model(tmp_path / "chosen.npz")
     assert loaded.lag == LAGS[2]
-    np.testing.assert_allclose(loaded.transition_matrix, wb.model.transition_matrix)
+    np.testing.assert_allclose(loaded.propagator, wb.model.propagator)
     np.testing.assert_array_equal(loaded.states, wb.model.states)
     with np.load(tmp_path / "chosen.npz", allow_pickle=False) as data:
         np.testing.assert_allclose(data["centers"], wb.microstates.centers_)
@@ -330,7 +330,7 @@ def test_importing_msmkit_does_not_import_ipywidgets():
 
 # -- step 4: validation ------------------------------------------------------------------------
 # The reference for every number is the public function the panel calls: chapman_kolmogorov and
-# lag_flow (msmkit.validate), model.suggest_macrostates.
+# lag_flow (msmkit.validate), model.suggest_n_macrostates.
 
 CK_MULTIPLES = 3
 CK_SAMPLES = 6
@@ -342,7 +342,7 @@ def test_validate_button_gives_the_public_ck_test(wb):
     model = wb.select_lag(LAGS[2])
     panel = wb.validation_panel
     assert panel.ck is None and wb.ck is None  # a new model has no test yet
-    suggested, reason = model.suggest_macrostates()
+    suggested, reason = model.suggest_n_macrostates()
     n_sets = max(suggested, 2)
     assert panel.n_sets.field.value == n_sets
     assert html.escape(reason) in panel.n_sets.reason.value
@@ -415,7 +415,7 @@ def test_validate_method_errors_and_new_models(wb, trajs):
     count.field.value = count.suggested
     assert count.follows
     wb.select_lag(LAGS[2])
-    assert count.field.value == max(wb.model.suggest_macrostates()[0], 2)
+    assert count.field.value == max(wb.model.suggest_n_macrostates()[0], 2)
 
     bench = Workbench(trajs, n_states=6, lags=[1], n_samples=0, progress=False)
     bench.validation_panel.run_button.click()
@@ -425,71 +425,71 @@ def test_validate_method_errors_and_new_models(wb, trajs):
 
 
 # -- step 5: kinetics --------------------------------------------------------------------------
-# References: model.macrostates (PCCA+), model.mfpt_matrix (Kemeny & Snell first-passage times),
-# model.reactive_flux (transition path theory) and its pathways_table.
+# References: model.macrostates (PCCA+), model.passage_time_matrix (Kemeny & Snell first-passage times),
+# model.transition_paths (transition path theory) and its routes_table.
 
 def test_kinetics_button_gives_the_public_numbers(wb):
     model = wb.select_lag(LAGS[2])
     panel = wb.kinetics_panel
     assert wb.macrostates is None
     n_sets = panel.n_sets.field.value
-    assert n_sets == max(model.suggest_macrostates()[0], 2)
+    assert n_sets == max(model.suggest_n_macrostates()[0], 2)
     panel.compute_button.click()
     res = panel.result
     assert res is not None, status_text(panel.status)
     assert "msmkit-error" not in panel.status.value
 
     from msmkit.widgets.kinetics import POPULATION_SAMPLES
-    macro = model.macrostates(n_sets, labels=wb.labels, n_samples=POPULATION_SAMPLES, seed=0)
-    np.testing.assert_allclose(wb.macrostates.memberships, macro.memberships)
+    macro = model.find_macrostates(n_sets, labels=wb.labels, n_samples=POPULATION_SAMPLES, seed=0)
+    np.testing.assert_allclose(wb.macrostates.affinity, macro.affinity)
     pd.testing.assert_frame_equal(res.populations, macro.populations())
     assert {"population_lower", "population_upper"} <= set(res.populations.columns)
     # routes between macrostates: the flux lumped onto them (Noé et al. PNAS 2009)
-    routes = res.flux.coarse_grain(macro.sets).pathways(fraction=1.0)
+    routes = res.flux.lump(macro.members).routes(fraction=1.0)
     assert f"{' → '.join(str(j) for j in routes[0].states)} carries {100 * routes[0].share:.3g}%" \
         in panel.flux_summary.value
-    mfpt = model.mfpt_matrix(macro.sets)
+    mfpt = model.passage_time_matrix(macro.members)
     for row in res.passage.itertuples():
         a, b = row.from_macrostate, row.to_macrostate
         np.testing.assert_allclose(row.mfpt, mfpt[a, b], rtol=1e-12)
-        np.testing.assert_allclose(row.rate, model.reactive_flux(macro.sets[a], macro.sets[b]).rate, rtol=1e-12)
+        np.testing.assert_allclose(row.rate, model.transition_paths(macro.members[a], macro.members[b]).rate_constant, rtol=1e-12)
     assert len(res.passage) == n_sets * (n_sets - 1)
     assert f"{mfpt[0, 1]:.4g}" in panel.passage_html.value and f"({model.unit})" in panel.passage_html.value
     assert f"{macro.populations()['population'][0]:.4g}" in panel.populations_html.value
 
-    flux = model.reactive_flux(macro.sets[0], macro.sets[1])
+    flux = model.transition_paths(macro.members[0], macro.members[1])
     assert (res.source, res.target) == (0, 1)
-    np.testing.assert_allclose(res.flux.rate, flux.rate, rtol=1e-12)
-    pd.testing.assert_frame_equal(res.pathways, flux.pathways_table(0.9, max_paths=20))
-    assert f"rate {flux.rate:.4g} per {model.unit}" in status_text(panel.flux_summary)
-    top = res.pathways["states"].iloc[0]
+    np.testing.assert_allclose(res.flux.rate_constant, flux.rate_constant, rtol=1e-12)
+    pd.testing.assert_frame_equal(res.routes, flux.routes_table(0.9, max_paths=20))
+    assert f"rate {flux.rate_constant:.4g} per {model.unit}" in status_text(panel.flux_summary)
+    top = res.routes["states"].iloc[0]
     assert " → ".join(str(s) for s in top) in status_text(panel.pathways_html)
 
     # choosing another pair recomputes the flux only
     panel.pair.first.value, panel.pair.second.value = 1, 0
     assert (panel.result.source, panel.result.target) == (1, 0)
     assert panel.result.macrostates is res.macrostates
-    back = model.reactive_flux(macro.sets[1], macro.sets[0])
-    np.testing.assert_allclose(panel.result.flux.rate, back.rate, rtol=1e-12)
+    back = model.transition_paths(macro.members[1], macro.members[0])
+    np.testing.assert_allclose(panel.result.flux.rate_constant, back.rate_constant, rtol=1e-12)
     panel.max_paths.value = 3
-    assert len(panel.result.pathways) <= 3
-    pd.testing.assert_frame_equal(panel.result.pathways, back.pathways_table(0.9, max_paths=3))
+    assert len(panel.result.routes) <= 3
+    pd.testing.assert_frame_equal(panel.result.routes, back.routes_table(0.9, max_paths=3))
 
 
 def test_kinetics_method_errors_and_saved_memberships(wb, tmp_path):
     model = wb.select_lag(LAGS[2])
     res = wb.kinetics(n_sets=2, source=1, target=0, max_paths=5)
     assert wb.macrostates is res.macrostates and res.macrostates.n_sets == 2
-    macro = model.macrostates(2)
-    np.testing.assert_allclose(res.flux.rate, model.reactive_flux(macro.sets[1], macro.sets[0]).rate, rtol=1e-12)
+    macro = model.find_macrostates(2)
+    np.testing.assert_allclose(res.flux.rate_constant, model.transition_paths(macro.members[1], macro.members[0]).rate_constant, rtol=1e-12)
     assert "2 macrostates" in status_text(wb.saver.status)
 
     path = wb.save(tmp_path / "with_sets.npz")
     loaded = mk.load_model(path)
-    np.testing.assert_allclose(loaded.extras["memberships"], res.macrostates.memberships)
+    np.testing.assert_allclose(loaded.extras["affinity"], res.macrostates.affinity)
     with np.load(path, allow_pickle=False) as data:
         assert json.loads(str(data["metadata"]))["preparation"]["macrostates"]["n_sets"] == 2
-    assert "memberships of 2 macrostates" in status_text(wb.saver.status)
+    assert "affinity of 2 macrostates" in status_text(wb.saver.status)
 
     panel = wb.kinetics_panel
     with pytest.raises(InputError, match="two different macrostates"):
@@ -510,7 +510,7 @@ def test_kinetics_method_errors_and_saved_memberships(wb, tmp_path):
     wb.select_lag(LAGS[1])
     assert wb.macrostates is None and panel.pathways_html.value == ""
     path = wb.save(tmp_path / "without_sets.npz")
-    assert "memberships" not in mk.load_model(path).extras
+    assert "affinity" not in mk.load_model(path).extras
 
 
 def test_new_steps_have_browser_hooks(wb):
@@ -520,7 +520,7 @@ def test_new_steps_have_browser_hooks(wb):
         "msmkit-ck-plot": wb.validation_panel.ck_plot,
         "msmkit-lag-flow-plot": wb.validation_panel.flow_plot,
         "msmkit-kinetics-button": wb.kinetics_panel.compute_button,
-        "msmkit-pathways-table": wb.kinetics_panel.pathways_html,
+        "msmkit-routes-table": wb.kinetics_panel.pathways_html,
         "msmkit-passage-table": wb.kinetics_panel.passage_html,
     }
     for cls, widget in hooks.items():
@@ -542,5 +542,5 @@ def test_new_panels_work_on_their_own(reference):
     assert kin.n_sets.field.value == 2 and not kin.n_sets.follows  # a number given is kept
     res = kin.compute(target=0)  # the source defaults to the other macrostate
     assert (res.source, res.target) == (1, 0)
-    np.testing.assert_allclose(res.passage["mfpt"], model.mfpt_matrix(model.macrostates(2).sets)[[0, 1], [1, 0]],
+    np.testing.assert_allclose(res.passage["mfpt"], model.passage_time_matrix(model.find_macrostates(2).members)[[0, 1], [1, 0]],
                                rtol=1e-12)

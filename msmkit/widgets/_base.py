@@ -224,7 +224,7 @@ class MacrostateCount:
     """The number of macrostates: a field preset to the model's suggestion, and the reason in
     an HTML widget (a panel places both).
 
-    The field follows the suggestion of each new model (:meth:`MarkovModel.suggest_macrostates`)
+    The field follows the suggestion of each new model (:meth:`MarkovModel.suggest_n_macrostates`)
     until a number other than the current suggestion is entered (typed, or given to a method);
     it keeps that number until the suggestion is entered again.
     """
@@ -251,7 +251,7 @@ class MacrostateCount:
         if model is None:
             self.reason.value = ""
             return
-        n, reason = model.suggest_macrostates()
+        n, reason = model.suggest_n_macrostates()
         preset = min(max(n, 2), model.n_states)
         self.suggested = preset
         if self.follows:

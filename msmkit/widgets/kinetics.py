@@ -1,4 +1,4 @@
-"""Step 5 of the workbench: macrostates, first-passage times, rates and reactive pathways."""
+"""Step 5 of the workbench: macrostates, first-passage times, rates and reactive routes."""
 from __future__ import annotations
 
 import dataclasses
@@ -32,19 +32,19 @@ class KineticsSummary:
     Attributes
     ----------
     macrostates : Macrostates
-        ``model.macrostates(n_sets)`` (PCCA+).
+        ``model.find_macrostates(n_sets)`` (PCCA+).
     source, target : int
         Indices of the macrostates of the reactive flux.
-    flux : ReactiveFlux
-        ``model.reactive_flux(macrostates.sets[source], macrostates.sets[target])``.
+    flux : TransitionPaths
+        ``model.transition_paths(macrostates.members[source], macrostates.members[target])``.
     populations : pandas.DataFrame
         ``macrostates.populations()``.
     passage : pandas.DataFrame
         One row per ordered pair of macrostates: ``from_macrostate``, ``to_macrostate``,
-        ``mfpt`` (``macrostates.mfpt_table()``, in ``unit``) and ``rate`` (the
-        transition-path-theory rate ``model.reactive_flux(sets[a], sets[b]).rate``, in 1/``unit``).
-    pathways : pandas.DataFrame
-        ``flux.pathways_table(fraction, max_paths=max_paths)``; states by original label.
+        ``mfpt`` (``macrostates.passage_time_table()``, in ``unit``) and ``rate`` (the
+        transition-path-theory rate ``model.transition_paths(sets[a], sets[b]).rate_constant``, in 1/``unit``).
+    routes : pandas.DataFrame
+        ``flux.routes_table(fraction, max_paths=max_paths)``; states by original label.
     fraction : float
     max_paths : int
     unit : str
@@ -56,7 +56,7 @@ class KineticsSummary:
     flux: object
     populations: pd.DataFrame
     passage: pd.DataFrame
-    pathways: pd.DataFrame
+    routes: pd.DataFrame
     fraction: float
     max_paths: int
     unit: str
@@ -70,7 +70,7 @@ POPULATION_SAMPLES = 30
 
 class KineticsPanel(Step):
     """Macrostates of the chosen model with their populations, first-passage times and rates
-    between them, and the reactive flux and pathways from one macrostate to another.
+    between them, and the reactive flux and routes from one macrostate to another.
 
     Parameters
     ----------
@@ -81,7 +81,7 @@ class KineticsPanel(Step):
     fraction : float, default 0.9
         Share of the source-to-target flux the pathway list should explain.
     max_paths : int, default 20
-        Most pathways listed.
+        Most routes listed.
     progress : bool, default True
 
     Attributes
@@ -101,10 +101,10 @@ class KineticsPanel(Step):
         self._setting = False
         self.n_sets = MacrostateCount("msmkit-kinetics-sets", n_sets)
         self.fraction = field(widgets.FloatText, float(fraction), "flux share to explain",
-                              "List pathways until they carry this share of the source → target flux")
-        self.max_paths = field(widgets.IntText, int(max_paths), "pathways shown", "Most pathways listed")
+                              "List routes until they carry this share of the source → target flux")
+        self.max_paths = field(widgets.IntText, int(max_paths), "routes shown", "Most routes listed")
         self.compute_button = button("Compute", "msmkit-kinetics-button",
-                                     "Find the macrostates and the times, rates and pathways between them",
+                                     "Find the macrostates and the times, rates and routes between them",
                                      icon="random")
         self._on_click(self.compute_button, self.compute)
         self.pair = SetPair("reactive flux from", "to", "msmkit-flux-pair", self._pair_changed,
@@ -121,18 +121,18 @@ class KineticsPanel(Step):
         self.flux_summary = widgets.HTML()
         self.flux_summary.add_class("msmkit-flux-summary")
         self.pathways_html = widgets.HTML(layout=widgets.Layout(max_height="360px", overflow="auto"))
-        self.pathways_html.add_class("msmkit-pathways-table")
+        self.pathways_html.add_class("msmkit-routes-table")
 
         intro = widgets.HTML(_render.message_html(
             "Macrostates (PCCA+) group the microstates into long-lived sets. For every pair of them: the mean "
             "first-passage time and the rate from transition path theory; for one chosen pair: the reactive "
-            "flux and the pathways that carry it, microstate by microstate."))
+            "flux and the routes that carry it, microstate by microstate."))
         settings = widgets.HBox([
             widgets.VBox([self.n_sets.field, widgets.HBox([self.compute_button, self.progress_bar])]),
             widgets.VBox([self.fraction, self.max_paths]),
         ])
         self.children = [intro, settings, self.n_sets.reason, self.details, self.status, self.populations_html, self.passage_html,
-                         self.cautions, widgets.HTML("<b>Reactive flux and pathways</b>"), self.pair,
+                         self.cautions, widgets.HTML("<b>Reactive flux and routes</b>"), self.pair,
                          self.flux_summary, self.pathways_html]
         self.set_model(model)
 
@@ -173,7 +173,7 @@ class KineticsPanel(Step):
             Macrostate indices (0 = most populated). Default: the pair chosen in the panel when
             it still exists, else 0 and 1.
         fraction, max_paths : optional
-            Pathway list settings.
+            Route list settings.
 
         Returns
         -------
@@ -189,16 +189,16 @@ class KineticsPanel(Step):
             m = self.n_sets.get(n_sets, model)
             source, target = _check_pair(*_default_pair(source, target, self.pair.value, m), m)
             self._stage(1, 3, "macrostates")
-            macro = (model.macrostates(m) if self.labels is None else
-                     model.macrostates(m, labels=self.labels, n_samples=POPULATION_SAMPLES, seed=0))
-            empty = [j for j, s in enumerate(macro.sets) if s.size == 0]
+            macro = (model.find_macrostates(m) if self.labels is None else
+                     model.find_macrostates(m, labels=self.labels, n_samples=POPULATION_SAMPLES, seed=0))
+            empty = [j for j, s in enumerate(macro.members) if s.size == 0]
             if empty:
                 raise InputError(f"n_sets={m}: macrostate(s) {empty} hold no state by largest membership, so no "
                                  f"time or flux can be given for them; choose fewer macrostates")
             populations = macro.populations()
-            mfpt = macro.mfpt_table()
+            mfpt = macro.passage_time_table()
             self._stage(2, 3, "rates and flux")
-            rows = [(a, b, mfpt.iloc[a, b], model.reactive_flux(macro.sets[a], macro.sets[b]).rate)
+            rows = [(a, b, mfpt.iloc[a, b], model.transition_paths(macro.members[a], macro.members[b]).rate_constant)
                     for a in range(m) for b in range(m) if a != b]
             passage = pd.DataFrame(rows, columns=["from_macrostate", "to_macrostate", "mfpt", "rate"])
             passage.attrs["unit"] = model.unit
@@ -215,7 +215,7 @@ class KineticsPanel(Step):
         return result
 
     def select_pair(self, source, target, *, fraction=None, max_paths=None):
-        """Reactive flux and pathways between two other macrostates (the macrostates stay).
+        """Reactive flux and routes between two other macrostates (the macrostates stay).
 
         Returns
         -------
@@ -247,12 +247,12 @@ class KineticsPanel(Step):
             self._setting = False
 
     def _with_flux(self, result):
-        """``result`` with the flux and pathways between the macrostates it names (inside an action)."""
-        sets = result.macrostates.sets
-        flux = self.model.reactive_flux(sets[result.source], sets[result.target])
-        paths = flux.pathways_table(result.fraction, max_paths=check_int(result.max_paths, "pathways shown",
+        """``result`` with the flux and routes between the macrostates it names (inside an action)."""
+        sets = result.macrostates.members
+        flux = self.model.transition_paths(sets[result.source], sets[result.target])
+        paths = flux.routes_table(result.fraction, max_paths=check_int(result.max_paths, "routes shown",
                                                                          minimum=1))
-        return dataclasses.replace(result, flux=flux, pathways=paths)
+        return dataclasses.replace(result, flux=flux, routes=paths)
 
     def _show_flux(self):
         self.flux_summary.value = _flux_html(self.result)
@@ -351,24 +351,24 @@ def _cautions_html(result, model) -> str:
 def _flux_html(result) -> str:
     flux = result.flux
     unit = result.unit
-    paths = result.pathways
+    paths = result.routes
     carried = float(paths["cumulative_share"].iloc[-1]) if len(paths) else 0.0
-    lines = [f"From macrostate {result.source} to {result.target}: rate {flux.rate:.4g} per {unit}; one reactive "
+    lines = [f"From macrostate {result.source} to {result.target}: rate {flux.rate_constant:.4g} per {unit}; one reactive "
              f"event every {flux.mean_time_between_events:.4g} {unit} on average (total flux "
-             f"{flux.total_flux:.4g} per lag step)."]
-    routes = flux.coarse_grain(result.macrostates.sets).pathways(fraction=1.0, max_paths=MACRO_ROUTES)
+             f"{flux.throughput:.4g} per lag step)."]
+    routes = flux.lump(result.macrostates.members).routes(fraction=1.0, max_paths=MACRO_ROUTES)
     lines.append("Routes between macrostates (flux lumped onto them): " + "; ".join(
         f"{' → '.join(str(j) for j in r.states)} carries {100 * r.share:.3g}%" for r in routes) + ".")
     if len(paths) and carried < result.fraction * (1 - 1e-9):
-        lines.append(f"The {len(paths)} strongest pathways carry {100 * carried:.3g}% of the flux, short of the "
+        lines.append(f"The {len(paths)} strongest routes carry {100 * carried:.3g}% of the flux, short of the "
                      f"{100 * result.fraction:g}% asked for: the flux is spread over many routes; raise "
-                     f"'pathways shown' to list more.")
+                     f"'routes shown' to list more.")
     return _render.message_html(lines)
 
 
 def _pathways_html(result) -> str:
-    paths = result.pathways
-    owner = result.macrostates.assignments
+    paths = result.routes
+    owner = result.macrostates.macro_of
     route = []
     for states in paths["states"]:
         through = [owner[int(s)] for s in states]

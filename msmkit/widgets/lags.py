@@ -251,7 +251,7 @@ def _suggestion_html(scan) -> str:
 
 
 def _diagnostics_html(model, k) -> str:
-    ts = model.timescales(k)
+    ts = model.relaxation_times(k)
     lines = [f"Model at lag {frames(model.lag)} ({model.lag_time:g} {model.unit}): {model.n_states} states kept, "
              f"{100 * model.kept_fraction:.3g}% of the transition counts.",
              "Slowest implied timescales: " + (", ".join(f"{t:.4g}" for t in ts) + f" {model.unit}"

@@ -182,7 +182,7 @@ class ValidationPanel(Step):
 
 
 def _verdict_html(ck) -> str:
-    sets = "; ".join(f"set {j}: {len(s)} state{'' if len(s) == 1 else 's'}" for j, s in enumerate(ck.sets))
+    sets = "; ".join(f"set {j}: {len(s)} state{'' if len(s) == 1 else 's'}" for j, s in enumerate(ck.members))
     lines = [ck.criterion, *ck.notes, f"Sets tested: {sets}.",
              VERDICT_CAUTION, SAMPLING_CAUTION]
     return _render.message_html(lines, "ok" if ck.passed else "failed")

@@ -134,7 +134,7 @@ class Workbench(widgets.VBox):
         m = self.model
         if m is not None:
             macro = self.macrostates
-            with_sets = f", with the memberships of {macro.n_sets} macrostates" if macro is not None else ""
+            with_sets = f", with the affinity of {macro.n_sets} macrostates" if macro is not None else ""
             _render.show_message(self.saver.status, f"Ready to save the model at lag {frames(m.lag)} "
                                                     f"({m.lag_time:g} {m.unit}), {m.n_states} states{with_sets}.")
 
@@ -206,7 +206,7 @@ class Workbench(widgets.VBox):
 
     def save(self, path=None, *, overwrite=None):
         """Write the chosen model with the microstate centers, the TICA projection and, when the
-        kinetics step has found them for this model, the macrostate memberships.
+        kinetics step has found them for this model, the macrostate affinity.
 
         Parameters
         ----------
@@ -234,12 +234,12 @@ class Workbench(widgets.VBox):
             extras, preparation = self._provenance()
             macro = self.macrostates
             if macro is not None and np.array_equal(macro.states, model.states):
-                extras["memberships"] = macro.memberships
+                extras["affinity"] = macro.affinity
                 preparation["macrostates"] = {"n_sets": int(macro.n_sets), "method": "PCCA+"}
             model = dataclasses.replace(model, metadata={**model.metadata, "preparation": preparation})
             written = model.save(Path(name).expanduser(), overwrite=self.saver.overwrite.value, **extras)
-        with_sets = (f" with the memberships of {extras['memberships'].shape[1]} macrostates"
-                     if "memberships" in extras else "")
+        with_sets = (f" with the affinity of {extras['affinity'].shape[1]} macrostates"
+                     if "affinity" in extras else "")
         report(self.saver.status, f"Saved the model at lag {frames(model.lag)}{with_sets} to {written.resolve()} "
                                   f"(load it with msmkit.load_model).", caught)
         return written
