@@ -141,7 +141,7 @@ def test_tica_transform_every_way(backend, npy_runs, ou_runs, tmp_path, how):
     ref = [(r - tica.mean_) @ tica.components_.T * tica.eigenvalues_ for r in ou_runs]  # kinetic map
     kwargs = {"lazy": True} if how == "lazy" else {"out": tmp_path / "proj"} if how == "out" else {}
     got = tica.transform(trajs, **kwargs, **backend)
-    assert got.feature_names == ("tic1", "tic2")
+    assert got.feature_names == ("ic1", "ic2")
     for a, b in zip(got, ref):
         assert isinstance(a, LazyRun) == (how != "memory")
         np.testing.assert_allclose(np.asarray(a), b, rtol=1e-12, atol=1e-12)
