@@ -264,7 +264,7 @@ class TICA:
         >= 1/e), at least one and at most 20.
     scaling : {"unit", "kinetic"}
         ``"unit"`` (default) leaves every component with unit variance; ``"kinetic"``
-        multiplies each component by its eigenvalue, so Euclidean distances in the output
+        multiplies each component by the matching eigenvalue, so Euclidean distances in the output
         approximate kinetic distances [4]_ (slow components count more when clustering).
     chunk_size : int, optional
         Frames read at a time; by default about 16 MiB of float64 frames.
