@@ -152,7 +152,7 @@ def test_ck_table_units_and_intervals(markov_ck):
     assert np.all(markov_ck.lower <= markov_ck.upper)
     # the sets cover the kept states, disjointly, and their populations are the model's
     np.testing.assert_array_equal(np.sort(np.concatenate(markov_ck.members)), np.arange(3))
-    assert markov_ck.populations.sum() == pytest.approx(1.0)
+    assert markov_ck.set_populations.sum() == pytest.approx(1.0)
 
 
 def test_ck_same_seed_same_intervals(markov_model, markov_runs):

@@ -37,7 +37,7 @@ class KineticsSummary:
         Indices of the macrostates of the reactive flux.
     flux : TransitionPaths
         ``model.transition_paths(macrostates.members[source], macrostates.members[target])``.
-    populations : pandas.DataFrame
+    population_table : pandas.DataFrame
         ``macrostates.populations()``.
     passage : pandas.DataFrame
         One row per ordered pair of macrostates: ``from_macrostate``, ``to_macrostate``,
@@ -54,7 +54,7 @@ class KineticsSummary:
     source: int
     target: int
     flux: object
-    populations: pd.DataFrame
+    population_table: pd.DataFrame
     passage: pd.DataFrame
     routes: pd.DataFrame
     fraction: float
@@ -296,7 +296,7 @@ def _states_text(states) -> str:
 
 
 def _populations_html(result, model) -> str:
-    df = result.populations
+    df = result.population_table
     has_interval = "population_lower" in df.columns
     shown = pd.DataFrame({"macrostate": df["macrostate"], "population": df["population"]})
     if has_interval:

@@ -148,7 +148,7 @@ class ValidationPanel(Step):
             _render.show_figure(self.ck_plot, plot_chapman_kolmogorov(ck), alt="Chapman-Kolmogorov test")
             _render.show_figure(self.flow_plot, plot_lag_flow(flow), alt="lag flow")
         self.ck, self.flow = ck, flow
-        self.pair.set_sets(ck.populations, flow.pair)
+        self.pair.set_sets(ck.set_populations, flow.pair)
         self.verdict.value = _verdict_html(ck)
         self.flow_summary.value = _render.message_html(flow.summary)
         self._report(f"Tested the model at lag {frames(ck.lag)} on {ck.n_sets} sets, k = 1..{len(ck.multiples)}"
