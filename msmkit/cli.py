@@ -20,6 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .defaults import CK_MULTIPLES, PROCESSES
 from .errors import DiagnosticWarning, InputError, ModelFileError
 from .modelfile import atomic_write
 
@@ -292,9 +293,9 @@ def build_parser() -> argparse.ArgumentParser:
     def scanning(sp, default_lags):
         sp.add_argument("--lags", default=default_lags, help=f"comma-separated lags in frames (default {default_lags})")
         sp.add_argument("--samples", type=int, default=20, help="bootstrap samples per lag (default 20; 0 = none)")
-        sp.add_argument("--timescales", type=_positive_int, default=4, help="processes to follow (default 4)")
-        sp.add_argument("--multiples", type=_positive_int, default=4,
-                        help="Chapman-Kolmogorov test up to this multiple of the lag (default 4)")
+        sp.add_argument("--timescales", type=_positive_int, default=PROCESSES, help="slow processes to follow (default %(default)s)")
+        sp.add_argument("--multiples", type=_positive_int, default=CK_MULTIPLES,
+                        help="Chapman–Kolmogorov test up to this multiple of the lag (default %(default)s)")
 
     d = sub.add_parser("demo", help="run the whole job headless on the demo scenario",
                        description="Demo scenario -> TICA -> microstates -> lag scan -> chosen model; writes "

@@ -27,6 +27,7 @@ import scipy.linalg as la
 import scipy.sparse as sp
 
 from ._checks import as_transition_matrix
+from .defaults import ROUTE_SHARE
 from .errors import DiagnosticWarning, InputError
 
 __all__ = [
@@ -549,7 +550,7 @@ class TransitionPaths:
         return TransitionPaths(src_sets, tgt_sets, np.arange(k), pi, qf, qb, gross, np.maximum(gross - gross.T, 0.0),
                             self.throughput, self.rate_constant, self.time_per_step, self.unit)
 
-    def routes(self, fraction: float = 0.99, *, max_paths: int | None = None) -> list[Route]:
+    def routes(self, fraction: float = ROUTE_SHARE, *, max_paths: int | None = None) -> list[Route]:
         """Decompose the net flux into A -> B routes, strongest first.
 
         Repeatedly finds the path whose smallest net-flux edge (the bottleneck) is largest,
@@ -602,7 +603,7 @@ class TransitionPaths:
         return [Route(tuple(int(self.states[i]) for i in path), float(f),
                         float(f / total) if total > 0 else 0.0) for path, f in found]
 
-    def routes_table(self, fraction: float = 0.99, *, max_paths: int | None = None):
+    def routes_table(self, fraction: float = ROUTE_SHARE, *, max_paths: int | None = None):
         """The routes of :meth:`routes` as a pandas DataFrame.
 
         Columns: ``pathway`` (1 = strongest), ``states`` (tuple of original labels), ``length``

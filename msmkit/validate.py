@@ -29,6 +29,7 @@ from ._bootstrap import (fit_sample, percentile_interval, progress_bar, resampli
 from ._checks import (_short, as_float_trajectories, as_label_trajectories, as_state_set, check_dt, check_int,
                       check_probability, check_unit)
 from .counts import _count_flat, run_count_rows
+from .defaults import CK_MULTIPLES
 from .errors import DiagnosticWarning, InputError
 from .model import MarkovModel, build_model, fingerprint
 
@@ -156,7 +157,7 @@ class CKResult:
         return df
 
 
-def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_samples=20, seed=None,
+def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MULTIPLES, n_samples=20, seed=None,
                        confidence=0.95, tolerance=0.05, progress=False, client=None) -> CKResult:
     """Chapman-Kolmogorov test: does T(tau)^k predict the data at lag k tau?
 
@@ -183,7 +184,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
         (at least 2). Ignored when ``sets`` is given.
     sets : list of lists of int, optional
         Your own disjoint sets of states, by original label (need not cover every state).
-    multiples : int, default 5
+    multiples : int, default 4 (``msmkit.defaults.CK_MULTIPLES``)
         Largest k; k tau must stay shorter than the longest run.
     n_samples : int, default 20
         Bootstrap samples for the intervals of the estimates: whole runs are resampled with

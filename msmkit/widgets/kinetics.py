@@ -8,6 +8,7 @@ import pandas as pd
 import traitlets
 
 from .._checks import check_int
+from ..defaults import ROUTE_SHARE
 from ..errors import InputError
 from . import _render
 from ._base import MacrostateCount, SetPair, Step, button, field, set_value, widgets
@@ -93,7 +94,7 @@ class KineticsPanel(Step):
 
     result = traitlets.Any(None)
 
-    def __init__(self, model=None, *, n_sets=None, fraction: float = 0.9, max_paths: int = 20,
+    def __init__(self, model=None, *, n_sets=None, fraction: float = ROUTE_SHARE, max_paths: int = 20,
                  progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-kinetics")
         self.model = None
