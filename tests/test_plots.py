@@ -1,5 +1,5 @@
 """Tests of msmkit.plots: each figure's content is checked against the data it draws (points,
-bars, lines and printed numbers), not its pixels. figure_png gives PNG bytes (PNG signature: the
+bars, lines and printed numbers), not the pixels. figure_png gives PNG bytes (PNG signature: the
 PNG specification, ISO/IEC 15948, section 5.2 (from memory)).
 
 External references:
@@ -8,7 +8,7 @@ External references:
 - the 97.5 % quantile of the standard normal distribution is 1.959964 (standard normal tables,
   from memory), so a central 95 % interval spans 2 x 1.96 sigma of a normal estimate;
 - a percentile interval contains the model value exactly when the model lies no further from the
-  estimate than the interval's half on that side (definition of an interval, common practice);
+  estimate than the half of the interval on that side (definition of an interval, common practice);
 - Chapman-Kolmogorov data of a Markov chain agree with the model; a lumped projection of a
   Markov chain is in general not Markovian, so the test fails on it (Prinz et al. 2011,
   Sec. IV.D; Kemeny & Snell, Finite Markov Chains (1960), Ch. 6 (from memory)).
@@ -72,7 +72,7 @@ def points_of(ax):
     return out
 
 
-def test_timescales_figure_draws_every_value_with_its_interval(scan):
+def test_timescales_figure_draws_every_value_with_the_interval(scan):
     from matplotlib.figure import Figure
     fig = plot_timescales(scan, selected_lag=2)
     assert isinstance(fig, Figure)
@@ -100,7 +100,7 @@ def test_timescales_figure_draws_every_value_with_its_interval(scan):
             assert bars[key] == pytest.approx(scan.upper[i, p])
     labels = [t.get_text() for t in ax.get_legend().get_texts()]
     assert labels[:2] == ["process 1 (slowest)", "process 2"]
-    assert "chosen lag (0.4 ns)" in labels  # the workbench moves this marker by its label
+    assert "chosen lag (0.4 ns)" in labels  # the workbench moves this marker by the label
     if scan.suggested_lag is not None:
         assert f"suggested lag ({scan.suggested_lag * 0.2:g} ns)" in labels
     assert "95% bootstrap interval (5 samples)" in ax.get_title()
