@@ -54,18 +54,24 @@ _CHOSEN = "#d1495b"
 
 
 def _log_ticks(lo: float, hi: float, max_ticks: int = 7) -> np.ndarray:
-    """Round tick positions for a log axis from ``lo`` to ``hi`` (both > 0): 1-2-5 per decade
-    when few decades are shown, then 1-3, then every decade (or every few decades), keeping at
-    most ``max_ticks`` ticks and at least two where the span allows."""
+    """Round tick positions for a log axis from ``lo`` to ``hi`` (both > 0): the densest of the
+    series 1-2-5, 1-3 and whole decades per decade that keeps at most ``max_ticks`` ticks (every
+    few decades beyond that); a finer series 1-1.5-2-3-4-5-7 when a short span would otherwise get
+    fewer than two."""
     first, last = int(np.floor(np.log10(lo))), int(np.ceil(np.log10(hi)))
     decades = 10.0 ** np.arange(first, last + 1)
-    for mantissas in ((1, 2, 5), (1, 3), (1,)):
+
+    def series(mantissas):
         ticks = (decades[:, None] * np.array(mantissas)).ravel()
-        ticks = ticks[(ticks >= lo * (1 - 1e-9)) & (ticks <= hi * (1 + 1e-9))]
+        return ticks[(ticks >= lo * (1 - 1e-9)) & (ticks <= hi * (1 + 1e-9))]
+
+    fine = series((1, 2, 5))
+    if fine.size < 2:
+        return series((1, 1.5, 2, 3, 4, 5, 7))[:max_ticks]
+    for ticks in (fine, series((1, 3)), series((1,))):
         if ticks.size <= max_ticks:
             return ticks
-    step = int(np.ceil(ticks.size / max_ticks))
-    return ticks[::step]
+    return ticks[::int(np.ceil(ticks.size / max_ticks))]
 
 
 def _tick_label(v: float) -> str:

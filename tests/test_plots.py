@@ -155,6 +155,8 @@ def test_timescale_ticks_are_round_and_few():
     # seven decades: the 1-2-5 and 1-3 series would crowd, whole decades remain
     np.testing.assert_allclose(_log_ticks(1e-3, 1e3), 10.0 ** np.arange(-3, 4))
     assert len(_log_ticks(1e-6, 1e6)) <= 7
+    # a short span, 2.1 .. 8.4, holds only 5 of the 1-2-5 series: the finer series gives 3, 4, 5, 7
+    np.testing.assert_allclose(_log_ticks(2.1, 8.4), [3, 4, 5, 7])
 
 
 def test_timescales_figure_without_bootstrap_and_one_process(sample_chain):
