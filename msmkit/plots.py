@@ -452,7 +452,7 @@ def plot_chapman_kolmogorov_pair(ck, a, b, *, width=5.8, height=3.9):
                     fontsize=7, va="bottom", color=_INK if abs(z[i, a, b]) > critical else "#555555")
     # framed on model and data; the long-time limit is drawn only when it falls inside that frame
     low, high = ax.get_ylim()
-    limit = ck.populations[b]
+    limit = ck.set_populations[b]
     inside = low <= limit <= high
     ax.axhline(limit, color=_GUIDE, ls=":", lw=1.1, zorder=1, visible=bool(inside),
                label=f"long-time limit: population of set {b}, {limit:.3g}" + ("" if inside else " (off scale)"))
