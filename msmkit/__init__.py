@@ -3,7 +3,7 @@
 The public API is re-exported here; nothing is computed at import time, and optional
 dependencies (ipywidgets, dask, mdtraj, h5py) are imported only where they are used.
 """
-__version__ = "0.1.0"
+from ._version import __version__
 
 from . import demo
 from .counts import communicating_classes, count_transitions, kept_states

@@ -329,7 +329,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _version():
-    from . import __version__
+    from ._version import __version__
     return __version__
 
 
