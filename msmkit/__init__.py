@@ -15,8 +15,8 @@ from .kinetics import (Route, TransitionPaths, splitting_probability, mean_passa
 from .lagscan import LagScan, lag_scan, suggest_lag
 from .macro import (Macrostates, check_macrostate_gap, lumped_propagator, find_macrostates,
                     pcca_affinity, suggest_n_macrostates)
-from .model import MarkovModel, build_model
-from .modelfile import load_model, save_model
+from .model import MarkovModel, build_model, load_model
+from .modelfile import save_model
 from .reduce import TICA
 from .spectral import eigen_decomposition, implied_timescales, equilibrium_distribution
 from .states import Microstates, nearest_center

@@ -1,6 +1,6 @@
 """Mapping a per-run kernel over runs, in this process or on a dask cluster.
 
-Each numeric module owns its kernels: plain module-level functions that take one run (or one
+Each numeric module owns the kernels of the work it does: plain module-level functions that take one run (or one
 group of runs, or a batch of bootstrap samples) and return a partial result. The functions
 here apply a kernel to every run and hand back the partial results in run order; the caller
 reduces them (sums moments or counts, concatenates labels). With ``client=None`` the kernel
@@ -11,13 +11,13 @@ numbers, so the two paths agree (integers exactly, floating sums to rounding).
 What travels
 ------------
 Runs read from files (:class:`~msmkit.io.LazyRun`) travel as themselves: they hold only a path,
-an offset, a shape and a dtype, and every worker reads its frames itself (every worker must see
+an offset, a shape and a dtype, and every worker reads the frames itself (every worker must see
 the same paths, e.g. on a shared filesystem). In-memory arrays are scattered to the workers
 once per call (or once for several calls, :func:`place`).
 
 Failures (all checked here)
 ---------------------------
-* A task that kept killing workers: :class:`~msmkit.distributed.ClusterError` naming its runs.
+* A task that kept killing workers: :class:`~msmkit.distributed.ClusterError` naming the runs of that task.
 * Tasks cancelled or data lost with a dead worker (in-memory runs cannot be recomputed):
   ClusterError naming the runs; run the call again.
 * A result that did not come back complete (fewer frames, a missing run): ClusterError.
@@ -297,7 +297,7 @@ def map_pieces(kernel, runs, *args, client=None, minimum: int = 1, what: str = "
     """``kernel(pieces, *args)`` over frame ranges: ``pieces`` is a list of ``(run, start,
     stop)`` and the kernel returns one array per piece (first axis: frames). Here: one call
     with every whole run; on the cluster: runs cut into pieces of similar size, at least
-    ``minimum`` frames each. Returns, per run, the list of its pieces' arrays in frame order,
+    ``minimum`` frames each. Returns, per run, the list of the arrays of the pieces of that run in frame order,
     checked to cover every frame. ``local_bar``: as in :func:`map_runs`."""
     placed = _placed(runs, client)
     runs = placed.runs

@@ -1,2 +1,2 @@
-"""The package version, in a module of its own so that any module can read it."""
+"""The package version, in a separate module so that any module can read it."""
 __version__ = "0.1.0"

@@ -232,7 +232,7 @@ def cmd_scan(args) -> int:
 
 
 def cmd_info(args) -> int:
-    from .modelfile import load_model
+    from .model import load_model
     model = load_model(args.model)
     macro, reason = None, ""
     if model.n_states > 2:

@@ -6,7 +6,7 @@ Every public function that walks over runs takes ``client=`` (a ``dask.distribut
 :func:`~msmkit.count_transitions`, :func:`~msmkit.lag_scan` and
 :func:`~msmkit.chapman_kolmogorov`. With ``client=None`` (the default) dask is never imported.
 
-The numerical work is not here: each numeric module owns its per-run kernel, and
+The numerical work is not here: each numeric module owns the per-run kernel of the work it does, and
 :mod:`msmkit._execution` maps a kernel over runs, in this process or on the cluster, and
 holds the failure checks (which runs failed, results checked complete). This module only
 imports :mod:`msmkit.errors` and :mod:`msmkit._checks`.

@@ -710,8 +710,8 @@ def _read_md(path: str, *, topology=None, torsions=("phi", "psi"), atom_pairs=No
 
 
 def read_file(path: str, options: dict):
-    """Kernel of :func:`load_trajectories` for one file: its runs (lazy where the format
-    allows) and its feature names (or None); ``options`` are the reader options (``key``,
+    """Kernel of :func:`load_trajectories` for one file: the runs in it (lazy where the
+    format allows) and the feature names (or None); ``options`` are the reader options (``key``,
     ``topology``, ``torsions``, ``atom_pairs``)."""
     return _reader_for(path)(path, **options)
 

@@ -141,7 +141,7 @@ def _source_and_target(source, target, n: int, labels: np.ndarray) -> tuple[np.n
 
 
 def as_time_per_step(time_per_step, unit) -> tuple[float, str]:
-    """The lag time (finite, > 0) and its unit name (non-empty), checked."""
+    """The lag time (finite, > 0) and the name of the time unit (non-empty), checked."""
     if isinstance(time_per_step, (bool, np.bool_)) or not isinstance(time_per_step, numbers.Real) \
             or not np.isfinite(time_per_step) or time_per_step <= 0:
         raise InputError(f"time_per_step (the lag time lag x dt) must be a finite positive number, "

@@ -20,9 +20,10 @@ from ._version import __version__
 from .counts import count_flat, flat_counts_to_csr, kept_states, prepare_counting
 from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix
+from .modelfile import read_model_file, save_model
 from .spectral import chain_diagnostics, eigen_decomposition, implied_timescales, obeys_detailed_balance, equilibrium_distribution
 
-__all__ = ["MarkovModel", "build_model", "GAS_CONSTANT_KJ"]
+__all__ = ["MarkovModel", "build_model", "load_model", "GAS_CONSTANT_KJ"]
 
 #: molar gas constant in kJ mol^-1 K^-1 (CODATA 2018, exact)
 GAS_CONSTANT_KJ = 8.314462618e-3
@@ -295,7 +296,6 @@ class MarkovModel:
         ``extra_arrays`` may hold the optional keys of the file format: ``centers``,
         ``tica_mean``, ``tica_components``, ``affinity``. See :mod:`msmkit.modelfile`.
         """
-        from .modelfile import save_model
         return save_model(self, path, overwrite=overwrite, **extra_arrays)
 
     # ----------------------------------------------------------------- constructors
@@ -333,6 +333,24 @@ class MarkovModel:
         for line in model.diagnostics:
             warnings.warn(line, DiagnosticWarning, stacklevel=2)
         return model
+
+
+def load_model(path) -> MarkovModel:
+    """Read a model file written by :func:`~msmkit.save_model` (or :meth:`MarkovModel.save`),
+    checking everything in it (see :func:`msmkit.modelfile.read_model_file`).
+
+    Raises
+    ------
+    ModelFileError
+        Naming what is wrong: not an npz file, truncated, pickled objects, a missing key, a
+        wrong shape, rows not summing to 1, a stationary vector that is not stationary, ...
+
+    Returns
+    -------
+    MarkovModel
+        With ``.extras`` (dict) holding any optional arrays (centers, TICA, affinity).
+    """
+    return MarkovModel(**read_model_file(path))
 
 
 def now_utc() -> str:
