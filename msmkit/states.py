@@ -14,11 +14,21 @@ index). Two engines, chosen by dimension:
   threads over blocks, and an error bound on the float32 rounding: a frame whose best and
   second-best values lie closer than the bound is re-decided by a float64 brute force.
 
+With ``client=`` (a ``dask.distributed.Client``) assignment maps :func:`assign_pieces` over
+pieces of the runs (labels identical to the in-memory result given the same centers), and
+k-means runs on the cluster (:func:`fit_centers_on_cluster`): Lloyd's iterations [3]_ with
+per-center sums and counts of each partition of the strided frames (the partition sums add up
+to exactly the full-sample update), or mini-batch k-means [2]_ whose every batch is drawn over
+all strided frames; both seed with k-means++ [1]_ on a random subsample. The strided frames
+stay on the workers.
+
 References
 ----------
 .. [1] D. Arthur and S. Vassilvitskii, "k-means++: the advantages of careful seeding",
        SODA 2007.
-.. [2] D. Sculley, "Web-scale k-means clustering", WWW 2010 (mini-batch k-means).
+.. [2] D. Sculley, "Web-scale k-means clustering", WWW 2010 (mini-batch k-means: per-center
+       learning rate 1/count, i.e. each center is the running mean of the frames it received).
+.. [3] S. P. Lloyd, "Least squares quantization in PCM", IEEE Trans. Inf. Theory 28, 129 (1982).
 """
 from __future__ import annotations
 
@@ -484,6 +494,7 @@ class Microstates:
                 opts.append(f"{name}={getattr(self, name)!r}")
         return f"Microstates({', '.join(opts)})"
 
+
 # ---------------------------------------------------------------------------------------------
 # Kernels for the execution layer, and k-means on a dask cluster
 # ---------------------------------------------------------------------------------------------
@@ -528,7 +539,7 @@ def assign_pieces(pieces, centers, chunk, bar=None) -> list[np.ndarray]:
 
 @dataclass
 class FittedCenters:
-    """Result of :func:`fit_centers`."""
+    """Result of :func:`fit_centers_on_cluster`."""
 
     centers: np.ndarray
     inertia: float
@@ -579,7 +590,7 @@ def _task_center_sums(part, centers, rows=None):
 
 
 def fit_centers_on_cluster(client, runs, k, *, method="kmeans", stride=1, seed=None, max_iter=300,
-                chunk=None, tol=1e-4, progress=False) -> FittedCenters:
+                           chunk=None, tol=1e-4, progress=False) -> FittedCenters:
     """k-means centers of the strided frames of ``runs``, computed on the cluster.
 
     ``method="kmeans"``: Lloyd's iterations [3]_; each partition returns per-center sums and

@@ -122,3 +122,43 @@ def test_no_private_name_imported_from_another_module(module):
     bad = [f"{source}.{name}" for source, names in imports_of(module) for name in names
            if name.startswith("_") and not name.startswith("__")]
     assert not bad, f"{module} imports private names of other modules: {bad}"
+
+
+def _external_imports(module: str) -> set[str]:
+    """Top-level names of the packages outside msmkit that ``module`` imports (any depth)."""
+    tree = ast.parse(MODULES[module].read_text())
+    names = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            names |= {a.name.split(".")[0] for a in node.names}
+        elif isinstance(node, ast.ImportFrom) and node.level == 0 and node.module:
+            names.add(node.module.split(".")[0])
+        elif (isinstance(node, ast.Call) and getattr(node.func, "id", None) == "require_optional"
+              and node.args and isinstance(node.args[0], ast.Constant)):
+            names.add(str(node.args[0].value).split(".")[0])  # optional packages imported on demand
+    return names - {"msmkit"}
+
+
+def test_the_cluster_layers_sit_below_the_numerics():
+    # distributed.py holds the dask specifics only and _execution.py maps kernels it is given:
+    # neither may reach up into a numeric module (that was the old circle)
+    graph = import_graph()
+    assert graph["msmkit.distributed"] <= {"msmkit.errors", "msmkit._checks"}
+    assert graph["msmkit._execution"] <= {"msmkit.errors", "msmkit._checks", "msmkit.distributed"}
+    # and the numeric modules reach the cluster through the execution layer
+    for numeric in ("counts", "io", "reduce", "states", "lagscan", "validate"):
+        assert "msmkit._execution" in graph[f"msmkit.{numeric}"], numeric
+
+
+def test_only_the_dask_module_imports_dask():
+    users = {m for m in MODULES if _external_imports(m) & {"dask", "distributed", "dask_ml"}}
+    assert users == {"msmkit.distributed"}, users
+
+
+def test_numerics_never_import_the_user_interface():
+    ui = {"msmkit.plots", "msmkit.cli"} | {m for m in MODULES if m.startswith("msmkit.widgets")}
+    graph = import_graph()
+    for m in MODULES:
+        if m in ui or m == "msmkit":
+            continue
+        assert not graph[m] & ui, f"{m} imports {sorted(graph[m] & ui)}"
