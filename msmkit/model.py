@@ -277,7 +277,7 @@ class MarkovModel:
         reach ``target`` before ``source``; backward, to have come from ``source`` last."""
         from .kinetics import splitting_probability
         return splitting_probability(self.propagator, self.index_of(source, "source"),
-                         self.index_of(target, "target"), reverse_time=backward,
+                         self.index_of(target, "target"), reverse_time=reverse_time,
                          pi=self.equilibrium, states=self.states)
 
     def transition_paths(self, source, target):

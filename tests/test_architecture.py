@@ -11,6 +11,8 @@ from pathlib import Path
 
 import pytest
 
+import msmkit as mk
+
 PACKAGE = Path(__file__).resolve().parent.parent / "msmkit"
 
 
@@ -162,3 +164,10 @@ def test_numerics_never_import_the_user_interface():
         if m in ui or m == "msmkit":
             continue
         assert not graph[m] & ui, f"{m} imports {sorted(graph[m] & ui)}"
+
+
+def test_star_import_gives_every_public_name():
+    # every name listed in __all__ must exist (Python reference, "The import statement")
+    namespace = {}
+    exec("from msmkit import *", namespace)
+    assert set(mk.__all__) <= set(namespace)

@@ -458,3 +458,16 @@ def test_macrostate_population_intervals_cover_the_truth(sample_chain, stationar
     assert np.allclose(np.nansum(samples, axis=1), 1.0)
     with pytest.raises(mk.InputError, match="needs labels="):
         model.find_macrostates(2, n_samples=10)
+
+
+def test_splitting_probability_backward_in_time_on_a_model():
+    # For a reversible chain the committor backward in time is 1 - the forward one
+    # (E & Vanden-Eijnden, J. Stat. Phys. 123, 503 (2006)).
+    T = np.array([[0.90, 0.09, 0.01, 0.00],
+                  [0.09, 0.90, 0.00, 0.01],
+                  [0.01, 0.00, 0.90, 0.09],
+                  [0.00, 0.01, 0.09, 0.90]])
+    model = MarkovModel.from_transition_matrix(T, dt=1.0, unit="ps")
+    forward = model.splitting_probability([0], [3])
+    backward = model.splitting_probability([0], [3], reverse_time=True)
+    np.testing.assert_allclose(backward, 1 - forward, atol=1e-12)
