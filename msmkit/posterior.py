@@ -4,9 +4,9 @@ A reversible transition matrix T with equilibrium pi is the same thing as a symm
 non-negative flux matrix X with X_ij = pi_i T_ij (so T_ij = X_ij / x_i, x_i = sum_k X_ik and
 pi_i = x_i / sum_ij X_ij). The sampler walks on the unique elements of X on the sparsity pattern
 of C + C^T (a pair is free when it was counted in either direction; every other element stays
-exactly zero) and updates one element at a time from its conditional distribution:
+exactly zero) and updates one element at a time from the conditional distribution:
 
-* a diagonal element exactly: given the rest of its row, T_ii = x_ii / x_i is Beta-distributed;
+* a diagonal element exactly: given the rest of the row, T_ii = x_ii / x_i is Beta-distributed;
 * an off-diagonal pair by a Metropolis-Hastings random walk in log x_ij, whose step is set from
   the curvature of the conditional at the starting point.
 
@@ -16,7 +16,7 @@ costs a few vectorised numpy operations instead of one Python step per element.
 The posterior
 -------------
 The likelihood of counts C is prod_ij T_ij^C_ij (Noe 2008, Eq. 5; Trendelkamp-Schroer et al.
-2015, Sec. II). It depends on X only through its direction (T is unchanged when X is scaled), so
+2015, Sec. II). It depends on X only through the direction of X (T is unchanged when X is scaled), so
 the posterior is a distribution over rays of X. We take it to be
 
     p(X | C) dX  ∝  prod_{ij in E} T_ij^(C_ij + b)  *  prod_{i<j in E} x_ij  *  prod_i x_i^(-k_i)  dX,
@@ -27,10 +27,13 @@ measure of degree -dim(X), which makes the density the same on every slice of th
 then a proper distribution of directions), and for two states they turn dX into the plain
 Lebesgue measure dT_00 dT_11: the posterior of a two-state chain is then exactly
 T_00 ~ Beta(C_00 + b + 1, C_01 + b + 1) and T_11 ~ Beta(C_11 + b + 1, C_10 + b + 1),
-independently (b = 0: uniform prior on each row; b -> -1: posterior mean of each row -> its
-maximum-likelihood value). The single-element updates use the conditionals of this density; a
-conditional does not depend on the overall scale of X, which is why the sampled directions have
-the posterior above as their stationary distribution without a separate scale variable.
+independently (b = 0: uniform prior on each row; b -> -1: posterior mean of each row -> the
+maximum-likelihood value). The single-element updates use the conditionals of this density.
+Why that is valid although the density of unnormalised X cannot be normalised: multiplying it by
+g(sigma(X)), with sigma the sum of all other elements (positive, of degree 1) and g any density
+with finite integral of g(t)/t, gives a proper density whose distribution of directions is still
+p(X | C) and whose conditional for the updated element is unchanged; each update therefore keeps
+the distribution of directions. The scale is reset after every sweep (T does not depend on it).
 
 References
 ----------
@@ -133,7 +136,7 @@ class _FluxChain:
         self._resum()  # fixes the scale (T does not depend on it) and clears rounding drift in xr
 
     def matrix(self):
-        """The current transition matrix and its equilibrium distribution."""
+        """The current transition matrix and the equilibrium distribution."""
         X = np.zeros((self.n, self.n))
         X[self.i, self.j] = self.x
         X[self.j, self.i] = self.x
@@ -206,7 +209,7 @@ def iter_reversible_posterior(counts, n_samples, *, seed=None, burn_in=200, thin
 
     Same sampler and arguments as :func:`sample_reversible_posterior`; holds one matrix in memory
     at a time (for many states or many samples). Yields ``(T, pi)`` pairs: the transition matrix
-    (probability per lag) and its equilibrium distribution.
+    (probability per lag) and the equilibrium distribution of T.
 
     Inputs are checked when the function is called, before the first sample is drawn.
     """

@@ -1,7 +1,7 @@
 """Posterior sampling of reversible transition matrices (msmkit.posterior).
 
 References used by the checks:
-- two states: every row-stochastic 2x2 matrix is reversible, and with the reference measure of
+- two states: every row-stochastic 2x2 matrix obeys detailed balance, and with the reference measure of
   msmkit.posterior the posterior is a product of Beta distributions, one per row (derived in the
   module notes; compared with scipy.stats.beta);
 - exact algebra: detailed balance and row sums of every sample;
