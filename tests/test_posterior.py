@@ -213,3 +213,29 @@ def test_exported_from_package():
     assert mk.sample_reversible_posterior is sample_reversible_posterior
     assert mk.iter_reversible_posterior is iter_reversible_posterior
     assert {"sample_reversible_posterior", "iter_reversible_posterior"} <= set(mk.__all__)
+
+
+@pytest.mark.slow
+def test_credible_intervals_cover_a_known_chain(sample_chain):
+    """Frequentist coverage of central 95 % credible intervals on simulated data (the full study with
+    more replicates is bench/bench_posterior_coverage.py): a four-state chain in two slowly exchanging
+    pairs, 10 runs x 1000 frames from equilibrium, lag 1; truth from scipy.linalg.eigvals."""
+    import scipy.linalg as la
+    flux = np.array([[1000, 60, 2, 0], [60, 800, 3, 1], [2, 3, 700, 50], [0, 1, 50, 900]], float)
+    T = flux / flux.sum(axis=1, keepdims=True)
+    pi = flux.sum(axis=1) / flux.sum()
+    t_true = -1.0 / np.log(np.sort(la.eigvals(T).real)[-2])
+    truth = np.concatenate([[t_true], pi])
+    hits = []
+    for rep in range(40):
+        C = mk.count_transitions(sample_chain(T, 1000, n_runs=10, seed=100 + rep), 1)
+        assert mk.kept_states(C).size == 4
+        Ts, pis = sample_reversible_posterior(C, 300, seed=rep, return_equilibrium=True)
+        lam2 = np.array([np.sort(np.linalg.eigvals(t).real)[-2] for t in Ts])
+        values = np.column_stack([-1.0 / np.log(lam2), pis])
+        lo, hi = np.percentile(values, [2.5, 97.5], axis=0)
+        hits.append((lo <= truth) & (truth <= hi))
+    coverage = np.mean(hits, axis=0)
+    # 40 replicates: binomial sd 0.034 at 0.95; 0.85 is three below
+    assert np.all(coverage >= 0.85), coverage
+    assert np.mean(coverage) <= 0.99, coverage  # not uselessly wide either
