@@ -4,7 +4,7 @@ Known chain: four states in two slowly exchanging pairs (slowest implied timesca
 Each replicate simulates 10 runs from equilibrium, counts transitions at lag 1, draws posterior
 samples (msmkit.sample_reversible_posterior, default burn-in and thinning) and checks whether the
 central 95 % credible interval of the slowest implied timescale and of each state population holds
-the true value. Coverage = fraction of replicates that hold it (target 0.93-0.97), with its
+the true value. Coverage = fraction of replicates that hold it (target 0.93-0.97), with the
 binomial standard error.
 
 Speed: time per posterior sample (default thinning) against one reversible maximum-likelihood fit
@@ -31,7 +31,7 @@ def true_chain():
 
 
 def simulate(T, pi, n_runs, n_frames, rng):
-    """Runs of the chain T from its equilibrium pi (inverse-CDF steps, all runs at once)."""
+    """Runs of the chain T started from the equilibrium pi (inverse-CDF steps, all runs at once)."""
     cum = np.cumsum(T, axis=1)
     cum[:, -1] = np.inf
     s = rng.choice(len(pi), size=n_runs, p=pi)
@@ -53,15 +53,15 @@ def slowest_timescales(Ts, pis):
         return np.where(lam2 > 0, -1.0 / np.log(lam2), np.nan)
 
 
-def replicate(T, pi, t_true, n_runs, n_frames, n_samples, rng, prior_count=0.0):
+def replicate(T, pi, t_true, n_runs, n_frames, n_samples, rng, prior_count=None):
     """One simulated data set: (covered?, interval width / truth) for [timescale, pi_0 .. pi_n-1]."""
     runs = simulate(T, pi, n_runs, n_frames, rng)
     C = mk.count_transitions(runs, 1)
     keep = mk.kept_states(C)
     if keep.size < T.shape[0]:
         return None  # a state never visited or never left: no model of the full chain
-    Ts, pis = mk.sample_reversible_posterior(C, n_samples, seed=rng, prior_count=prior_count,
-                                             return_equilibrium=True)
+    options = {} if prior_count is None else {"prior_count": prior_count}
+    Ts, pis = mk.sample_reversible_posterior(C, n_samples, seed=rng, return_equilibrium=True, **options)
     values = np.column_stack([slowest_timescales(Ts, pis), pis])
     lo, hi = np.nanpercentile(values, 2.5, axis=0), np.nanpercentile(values, 97.5, axis=0)
     truth = np.concatenate([[t_true], pi])
@@ -69,7 +69,7 @@ def replicate(T, pi, t_true, n_runs, n_frames, n_samples, rng, prior_count=0.0):
     return (lo <= truth) & (truth <= hi), (hi - lo) / truth, crossings
 
 
-def coverage_table(n_runs, n_frames, n_replicates, n_samples, seed=0, prior_count=0.0):
+def coverage_table(n_runs, n_frames, n_replicates, n_samples, seed=0, prior_count=None):
     T, pi, t_true = true_chain()
     rng = np.random.default_rng(seed)
     results = [r for r in (replicate(T, pi, t_true, n_runs, n_frames, n_samples, rng, prior_count)
@@ -81,40 +81,59 @@ def coverage_table(n_runs, n_frames, n_replicates, n_samples, seed=0, prior_coun
         np.median(width, axis=0), len(results), np.median(crossings)
 
 
-def speed(n_runs, n_frames, seed=1):
-    T, pi, _ = true_chain()
-    C = mk.count_transitions(simulate(T, pi, n_runs, n_frames, np.random.default_rng(seed)), 1)
-    fit = best_time(lambda: mk.estimate_transition_matrix(C), repeat=20)
-    n = 200
+def double_well_counts(n_states=100, n_counts=1e6, seed=2):
+    """Counts of a nearest-neighbour walk on a 1-D double well of n_states cells (barrier 4 kT),
+    drawn as Poisson numbers around n_counts times the equilibrium flux."""
+    rng = np.random.default_rng(seed)
+    z = np.linspace(-1.5, 1.5, n_states)
+    p = np.exp(-4.0 * (z ** 2 - 1) ** 2)
+    p /= p.sum()
+    X = np.zeros((n_states, n_states))
+    hop = 0.25 * np.minimum(p[:-1], p[1:])
+    X[np.arange(n_states - 1), np.arange(1, n_states)] = hop
+    X += X.T
+    X[np.diag_indices(n_states)] = p - X.sum(axis=1)
+    C = rng.poisson(n_counts * X) + (X > 0)  # every neighbour pair seen at least once
+    return C[np.ix_(mk.kept_states(C), mk.kept_states(C))]
+
+
+def speed(C, n=200):
+    """(one reversible MLE fit, one posterior sample at the default thinning), in seconds."""
+    fit = best_time(lambda: mk.estimate_transition_matrix(C), repeat=10)
     per_sample = best_time(lambda: mk.sample_reversible_posterior(C, n, seed=0, burn_in=0), repeat=3) / n
     return fit, per_sample
 
 
 def main():
     ap = argparse.ArgumentParser(description=__doc__)
-    ap.add_argument("--replicates", type=int, default=200)
-    ap.add_argument("--samples", type=int, default=1000, help="posterior samples per replicate")
+    ap.add_argument("--replicates", type=int, default=150)
+    ap.add_argument("--samples", type=int, default=400, help="posterior samples per replicate")
     ap.add_argument("--runs", type=int, default=10)
     ap.add_argument("--frames", type=int, nargs="+", default=[1000, 4000], help="frames per run")
-    ap.add_argument("--prior-count", type=float, default=0.0)
+    ap.add_argument("--prior-count", type=float, default=None, help="default: the library default")
     a = ap.parse_args()
     names = ["slowest timescale"] + [f"population {i}" for i in range(FLUX.shape[0])]
+    prior_label = "default" if a.prior_count is None else f"{a.prior_count:g}"
     for frames in a.frames:
         start = time.perf_counter()
         t_true, cov, se, width, n_used, crossings = coverage_table(a.runs, frames, a.replicates, a.samples,
                                                                     prior_count=a.prior_count)
         print(f"\n{a.runs} runs x {frames} frames, lag 1, true slowest timescale {t_true:.1f} steps, "
               f"median {crossings:.0f} crossings between the two pairs per data set; "
-              f"{n_used} replicates x {a.samples} posterior samples, prior count {a.prior_count:g} "
+              f"{n_used} replicates x {a.samples} posterior samples, prior count {prior_label} "
               f"({time.perf_counter() - start:.0f} s)")
         print(f"{'quantity':<20} {'coverage':>9} {'+-':>6} {'width/true':>11}  (nominal 0.95, target 0.93-0.97)")
         for name, c, s, w in zip(names, cov, se, width):
             print(f"{name:<20} {c:9.3f} {s:6.3f} {w:11.3f}")
         print(f"{'pooled':<20} {cov.mean():9.3f}")
-    fit, per_sample = speed(a.runs, a.frames[0])
-    print(f"\nposterior sample vs reversible MLE fit (4 states, default thin 5): "
-          f"sample {per_sample * 1e3:.3g} ms, fit {fit * 1e3:.3g} ms, ratio {per_sample / fit:.3g}")
-
+    T, pi, _ = true_chain()
+    cases = [("4 states, 10 runs x 1000 frames",
+              mk.count_transitions(simulate(T, pi, a.runs, 1000, np.random.default_rng(1)), 1)),
+             ("100-state double well", double_well_counts())]
+    print("\nposterior sample (default thin 5) against one reversible MLE fit of the same counts:")
+    for name, C in cases:
+        fit, per_sample = speed(C)
+        print(f"{name}: sample {per_sample * 1e3:.3g} ms, fit {fit * 1e3:.3g} ms, ratio {per_sample / fit:.3g}")
 
 if __name__ == "__main__":
     main()
