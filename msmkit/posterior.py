@@ -70,6 +70,8 @@ STEP_FACTOR = 2.4
 MAX_STEP = 3.0
 #: slowest eigenvectors of the start that give a collective move each (see _collective_directions)
 N_COLLECTIVE = 10
+#: largest array of samples sample_reversible_posterior builds (bytes); beyond it, iterate
+MAX_ARRAY_BYTES = 2 ** 31
 
 
 class _FluxChain:
@@ -322,9 +324,14 @@ def sample_reversible_posterior(counts, n_samples, *, seed=None, burn_in=100, th
     iter_reversible_posterior : the same samples one at a time, without storing them all.
     """
     from ._bootstrap import progress_bar
+    n = _as_counts(counts).shape[0]
+    n_samples = _check_int("n_samples", n_samples, 1)
+    if n_samples * n * (n + 1) * 8 > MAX_ARRAY_BYTES:
+        raise InputError(f"n_samples={n_samples} matrices of {n} states need "
+                         f"{n_samples * n * (n + 1) * 8 / 2 ** 30:.1f} GiB; draw fewer, or use "
+                         f"iter_reversible_posterior(), which holds one matrix at a time")
     stream = iter_reversible_posterior(counts, n_samples, seed=seed, burn_in=burn_in, thin=thin,
                                        prior_count=prior_count, initial=initial)
-    n = _as_counts(counts).shape[0]
     Ts = np.empty((n_samples, n, n))
     pis = np.empty((n_samples, n))
     with progress_bar(n_samples, progress, "posterior") as bar:

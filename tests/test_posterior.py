@@ -175,6 +175,13 @@ def test_seed_reproducible_and_iterator_matches_array():
     it = [T for T, _ in iter_reversible_posterior(C, 5, seed=7)]
     np.testing.assert_array_equal(a, np.stack(it))
     assert not np.array_equal(a, sample_reversible_posterior(C, 5, seed=8))
+    np.testing.assert_array_equal(a, sample_reversible_posterior(C, 5, seed=7, progress=True))
+
+
+def test_too_large_sample_array_is_refused_with_the_iterator_named():
+    C = np.eye(400) * 5 + np.eye(400, k=1) + np.eye(400, k=-1)  # 400 states, one band of pairs
+    with pytest.raises(InputError, match="iter_reversible_posterior"):
+        sample_reversible_posterior(C, 2000, seed=0)  # 2.6 GiB
 
 
 def test_initial_matrix_is_used_and_checked():
