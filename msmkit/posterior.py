@@ -93,9 +93,9 @@ class _FluxChain:
         pi0 = equilibrium_distribution(T0)
         self.x = pi0[self.i] * T0[self.i, self.j]
         self._resum()
-        self.diag_idx = np.flatnonzero(diag)
+        self.diag_idx = np.flatnonzero(diag & (k[self.i] > 1))  # a one-entry row (one state) has nothing to update
         off = np.flatnonzero(~diag)
-        self.classes = _matchings(self.i[off], self.j[off], n, off)
+        self.classes = _matchings(self.i[off], self.j[off], off)
         # conditional curvature of log x_ij at the start: r_i t_i (1 - t_i) + r_j t_j (1 - t_j), t = x_ij / x_i
         ti, tj = self.x / self.xr[self.i], self.x / self.xr[self.j]
         curv = self.r[self.i] * ti * (1 - ti) + self.r[self.j] * tj * (1 - tj)
@@ -137,7 +137,8 @@ class _FluxChain:
         self.xr = xr / total
 
     def sweep(self):
-        """Update every element once (diagonal exactly, off-diagonal pairs by Metropolis-Hastings)."""
+        """Update every element once (diagonal exactly, off-diagonal pairs by Metropolis-Hastings),
+        then take one collective step along each slow direction."""
         rng = self.rng
         d = self.diag_idx
         if d.size:
@@ -146,7 +147,7 @@ class _FluxChain:
             # x^e / (x + rest)^r  with  z = x / (x + rest)  ->  z ~ Beta(e + 1, r - e - 1)
             z = rng.beta(self.e[d] + 1.0, self.r[s] - self.e[d] - 1.0)
             new = rest * z / (1.0 - z)
-            ok = (z < 1.0) & (rest > 0)  # z == 1 in floating point: keep the old value
+            ok = z < 1.0  # z == 1 in floating point: keep the old value
             new = np.where(ok, new, self.x[d])
             self.xr[s] += new - self.x[d]
             self.x[d] = new
@@ -188,7 +189,7 @@ class _FluxChain:
         return X / xr[:, None], xr / xr.sum()
 
 
-def _matchings(i: np.ndarray, j: np.ndarray, n: int, labels: np.ndarray) -> list[np.ndarray]:
+def _matchings(i: np.ndarray, j: np.ndarray, labels: np.ndarray) -> list[np.ndarray]:
     """Split the pairs (i, j) into groups in which no state occurs twice (greedy edge colouring).
 
     Returns a list of arrays of ``labels`` (the positions of the pairs in the flux vector)."""

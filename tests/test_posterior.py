@@ -178,6 +178,14 @@ def test_seed_reproducible_and_iterator_matches_array():
     np.testing.assert_array_equal(a, sample_reversible_posterior(C, 5, seed=7, progress=True))
 
 
+def test_degenerate_chains():
+    """One state: T = [[1]]; two states that always swap: T = [[0, 1], [1, 0]] (the only
+    reversible matrix on that pattern)."""
+    np.testing.assert_array_equal(sample_reversible_posterior([[5]], 3, seed=0), np.ones((3, 1, 1)))
+    Ts = sample_reversible_posterior([[0, 3], [2, 0]], 3, seed=0)
+    np.testing.assert_allclose(Ts, np.broadcast_to([[0.0, 1.0], [1.0, 0.0]], (3, 2, 2)), atol=1e-15)
+
+
 def test_too_large_sample_array_is_refused_with_the_iterator_named():
     C = np.eye(400) * 5 + np.eye(400, k=1) + np.eye(400, k=-1)  # 400 states, one band of pairs
     with pytest.raises(InputError, match="iter_reversible_posterior"):
