@@ -302,9 +302,11 @@ def sample_reversible_posterior(counts, n_samples, *, seed=None, burn_in=100, th
         states each row is then Beta(C_ii + b + 1, C_ij + b + 1): the default -0.5 is Jeffreys'
         prior of every such row, 0 a uniform prior, values towards -1 put the posterior mean at
         the maximum-likelihood estimate. Larger values pull the slow rates up when few crossings
-        were counted (measured on a four-state chain with about 34 crossings of the slow
-        process: 95 % intervals of the slowest timescale covered 0.78 of replicates with 0 and
-        0.95 with -0.5; bench/bench_posterior_coverage.py).
+        were counted (measured on a four-state chain with about 32 crossings of the slow
+        process: 95 % intervals of the slowest timescale covered 0.78 of 150 replicates with 0,
+        0.89-0.95 in two runs of 100-150 replicates with -0.5; bench/bench_posterior_coverage.py).
+        With so few crossings the intervals are still somewhat too narrow (populations covered
+        about 0.91); with about 130 crossings coverage was 0.94-0.95 for every quantity.
     initial : ndarray, shape (n, n), optional
         Reversible transition matrix to start from, positive on every counted pair; default: the
         reversible maximum-likelihood estimate.
