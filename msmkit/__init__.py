@@ -17,6 +17,7 @@ from .macro import (Macrostates, check_macrostate_gap, lumped_propagator, find_m
                     pcca_affinity, suggest_n_macrostates)
 from .model import MarkovModel, build_model, load_model
 from .modelfile import save_model
+from .posterior import iter_reversible_posterior, sample_reversible_posterior
 from .reduce import TICA
 from .spectral import eigen_decomposition, implied_timescales, equilibrium_distribution
 from .states import Microstates, nearest_center
@@ -69,6 +70,8 @@ __all__ = sorted([
     "transition_paths",
     "save_model",
     "equilibrium_distribution",
+    "sample_reversible_posterior",
+    "iter_reversible_posterior",
     "suggest_lag",
     "suggest_n_macrostates",
 ])
