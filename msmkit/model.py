@@ -19,7 +19,8 @@ from ._checks import as_label_trajectories, as_state_set, as_transition_matrix, 
 from .counts import _count_flat, _flat_to_csr, _prepare, kept_states
 from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix
-from .spectral import chain_diagnostics, eigen_decomposition, implied_timescales, obeys_detailed_balance, equilibrium_distribution
+from .spectral import (chain_diagnostics, changes_out, eigen_decomposition, implied_timescales,
+                       obeys_detailed_balance, equilibrium_distribution, slow_crossings)
 
 __all__ = ["MarkovModel", "build_model", "GAS_CONSTANT_KJ"]
 
@@ -147,6 +148,28 @@ class MarkovModel:
         (the stationary eigenvalue is left out)."""
         w = self.spectrum(None if k is None else check_int(k, "k", minimum=1) + 1)[1:]
         return implied_timescales(w, self.lag, self.dt)
+
+    def state_changes(self):
+        """How much the data move: changes between distinct states, and crossings of the slowest process.
+
+        Counted from :attr:`transition_counts` at the model's lag; self-transitions do not count.
+        With sliding-window counting every change is seen in about ``lag`` windows, so the
+        counts are divided by the lag (at lag 1 these are exactly the frames at which a run
+        leaves a state). The slowest process splits the states by the sign of its eigenvector;
+        a crossing is a counted transition from one side to the other.
+
+        Returns
+        -------
+        (per_state, crossings) : (ndarray of float, shape (n_states,), float)
+            Changes out of each state (in the order of :attr:`states`) and crossings of the
+            slowest process; ``(None, None)`` for a model built from a matrix.
+        """
+        if self.transition_counts is None:
+            return None, None
+        every_frame = bool(self.metadata.get("parameters", {}).get("every_frame", True))
+        per_state = changes_out(self.transition_counts, lag=self.lag, every_frame=every_frame)
+        side = np.real(self.modes(2)[:, 1]) > 0
+        return per_state, slow_crossings(self.transition_counts, side, lag=self.lag, every_frame=every_frame)
 
     # ----------------------------------------------------------------- populations
     def populations(self, temperature: float | None = None):
@@ -441,9 +464,9 @@ def model_from_counts(counts: sp.csr_matrix, lag: int, *, dt: float, unit: str, 
         model.diagnostics.append(f"The reversible estimate stopped after {info.iterations} iterations without "
                                  "converging; the matrix obeys detailed balance but not exactly the maximum-likelihood one.")
     if spectrum:
-        row_counts = np.asarray(Ck.sum(axis=1)).ravel()
+        changes, crossings = model.state_changes()
         model.diagnostics += chain_diagnostics(model.spectrum(REPORTED + 1), lag=lag, dt=dt, unit=unit,
-                                               row_counts=row_counts, states=model.states,
+                                               changes=changes, crossings=crossings, states=model.states,
                                                dropped_states=dropped, kept_fraction=kept_fraction,
                                                n_reported=min(REPORTED, model.n_states - 1))
     if warn:
