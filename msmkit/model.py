@@ -155,7 +155,7 @@ class MarkovModel:
         Counted from :attr:`transition_counts` at the model's lag; self-transitions do not count.
         With sliding-window counting every change is seen in about ``lag`` windows, so the
         counts are divided by the lag (at lag 1 these are exactly the frames at which a run
-        leaves a state). The slowest process splits the states by the sign of its eigenvector;
+        leaves a state). The slowest process splits the states by the sign of the eigenvector;
         a crossing is a counted transition from one side to the other.
 
         Returns

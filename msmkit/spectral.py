@@ -244,9 +244,9 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, changes=No
         total = float(changes.sum())
         if crossings is not None and crossings < FEW_CROSSINGS:
             found.append(f"The sampling cannot support this model: the data cross between the two sides of "
-                         f"the slowest process (split by the sign of its eigenvector) only {crossings:.3g} "
+                         f"the slowest process (split by the sign of the eigenvector) only {crossings:.3g} "
                          f"time(s) at this lag, among {total:.3g} change(s) between distinct states in all. "
-                         f"Fewer than {FEW_CROSSINGS} crossings leave its timescale, the populations of its "
+                         f"Fewer than {FEW_CROSSINGS} crossings leave the timescale, the populations of the "
                          f"two sides and every test of the model (Chapman-Kolmogorov included) without "
                          f"support; collect more or longer runs.")
     if dropped_states is not None and len(dropped_states):
