@@ -86,10 +86,10 @@ class CKResult:
         (predicted - estimated) in units of the bootstrap standard error of the estimate; NaN
         where no interval was usable.
     within : ndarray of bool, shape (K, m, m)
-        The prediction passes: its deviation stays below :attr:`threshold` (the family-wise
+        The prediction passes: the deviation stays below :attr:`threshold` (the family-wise
         limit over all compared points), or within ``tolerance`` where no interval was usable.
     outside_interval : ndarray of bool, shape (K, m, m)
-        The prediction lies outside the pointwise percentile interval of its estimate. About
+        The prediction lies outside the pointwise percentile interval of the estimate. About
         ``1 - confidence`` of the points do so by chance even for a Markovian model, so this
         alone is not a failure.
     used_tolerance : ndarray of bool, shape (K, m, m)
@@ -162,7 +162,7 @@ class CKResult:
 
     @property
     def estimate_outside(self) -> np.ndarray:
-        """Where the estimate lies outside its own bootstrap interval (bool, shape (K, m, m)):
+        """Where the estimate lies outside the bootstrap interval of the same point (bool, shape (K, m, m)):
         the resampled values are skewed or too few, so that interval does not describe the
         estimate's uncertainty."""
         with np.errstate(invalid="ignore"):
@@ -182,7 +182,7 @@ class CKResult:
         ``deviation`` (predicted - estimated in bootstrap standard errors), ``within`` (passes
         the family-wise criterion), ``outside_interval`` (outside the pointwise interval),
         ``used_tolerance`` (bool), ``outside_by`` (how far a failing prediction misses, 0 when it
-        passes), ``estimate_outside`` (the estimate lies outside its own interval). ``df.attrs``
+        passes), ``estimate_outside`` (the estimate lies outside the interval of the same row). ``df.attrs``
         also holds ``threshold`` and ``n_compared``.
         """
         import pandas as pd
@@ -250,7 +250,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
     Returns
     -------
     CKResult
-        ``.verdict``, ``.passed`` (its summary), ``.n_failed``, ``.deviation``, ``.criterion`` (in
+        ``.verdict``, ``.passed`` (a summary of it), ``.n_failed``, ``.deviation``, ``.criterion`` (in
         words), ``.table()``.
 
     Notes
@@ -399,7 +399,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
                       threshold=judged["threshold"], n_compared=judged["n_compared"], verdict=verdict)
     skewed = result.estimate_outside
     if skewed.any():
-        notes.append(f"At {int(skewed.sum())} point(s) the estimate lies outside its own {100 * confidence:g}% "
+        notes.append(f"At {int(skewed.sum())} point(s) the estimate lies outside the {100 * confidence:g}% "
                      f"bootstrap interval ({_pairs_text(skewed, result.multiples)}): the resampled values are "
                      f"skewed or too few there, so those intervals do not describe the estimate's uncertainty "
                      f"(column estimate_outside of the table).")
