@@ -279,7 +279,9 @@ class MarkovModel:
     def passage_time(self, source, target) -> float:
         """Mean first-passage time from ``source`` to ``target`` (lists of original labels), in
         :attr:`unit`; over several sources averaged with the stationary weights inside the set
-        (Kemeny & Snell 1960)."""
+        (Kemeny & Snell 1960). Computed at lag resolution: passages are seen at multiples of
+        the lag only, so the time is resolved to about one lag and tends to come out too long
+        when the lag is not small against it (see :func:`msmkit.kinetics.mean_passage_time`)."""
         from .kinetics import mean_passage_time
         return mean_passage_time(self.propagator, self.equilibrium,
                                        self.index_of(source, "source"), self.index_of(target, "target"),
@@ -287,7 +289,8 @@ class MarkovModel:
 
     def passage_time_matrix(self, sets):
         """Mean first-passage times between disjoint sets of labels (e.g. macrostates), as a
-        (k, k) ndarray in :attr:`unit`; entry (a, b) is the time from set a to set b."""
+        (k, k) ndarray in :attr:`unit`; entry (a, b) is the time from set a to set b. Computed
+        at lag resolution, like :meth:`passage_time`."""
         from .kinetics import passage_time_matrix
         return passage_time_matrix(self.propagator, self.equilibrium,
                            [self.index_of(s, f"sets[{i}]") for i, s in enumerate(sets)],
@@ -468,7 +471,7 @@ def model_from_counts(counts: sp.csr_matrix, lag: int, *, dt: float, unit: str, 
         model.diagnostics += chain_diagnostics(model.spectrum(REPORTED + 1), lag=lag, dt=dt, unit=unit,
                                                changes=changes, crossings=crossings, states=model.states,
                                                dropped_states=dropped, kept_fraction=kept_fraction,
-                                               n_reported=min(REPORTED, model.n_states - 1))
+                                               n_reported=min(REPORTED, model.n_states - 1), estimated=True)
     if warn:
         for line in model.diagnostics:
             warnings.warn(line, DiagnosticWarning, stacklevel=3)

@@ -27,6 +27,8 @@ UNIT_CIRCLE_TOL = 1e-9
 ITERATIVE_MIN_STATES = 1000
 #: states left for another state fewer times than this are flagged as poorly sampled
 FEW_COUNTS = 10
+#: above this share of the slowest timescale, the lag visibly coarsens first-passage times
+LAG_RESOLUTION_SHARE = 0.1
 #: a slow process crossed fewer times than this cannot support its timescale or the populations
 #: of its two sides: the relative error of a rate from N independent crossings is about
 #: 1/sqrt(N/2), above 30 % below 20 crossings (Poisson counting, common practice)
@@ -173,7 +175,7 @@ def implied_timescales(eigenvalues, lag: int, dt: float = 1.0) -> np.ndarray:
 
 def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, changes=None, crossings=None,
                       states=None, dropped_states=None, kept_fraction=None,
-                      n_reported: int | None = None) -> list[str]:
+                      n_reported: int | None = None, estimated: bool = False) -> list[str]:
     """Plain-language findings about a model that a user must not miss.
 
     Parameters
@@ -196,6 +198,10 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, changes=No
     n_reported : int, optional
         How many eigenvalues after the first are reported to the user (negative and complex
         values are flagged among those); default all.
+    estimated : bool
+        The model was estimated from data at this lag: a lag above a tenth of the slowest
+        timescale is flagged, since first-passage times are then coarsened by the lag (a matrix
+        given as the dynamics itself has no such lag).
 
     Returns
     -------
@@ -231,6 +237,12 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, changes=No
     if np.any(short):
         found.append(f"{int(np.sum(short))} reported timescale(s) are shorter than the lag time "
                      f"({tau:g} {unit}); they cannot be resolved at this lag and are not physical.")
+    resolved = ts[np.isfinite(ts) & (ts > tau)]
+    if estimated and resolved.size and tau > LAG_RESOLUTION_SHARE * resolved.max():
+        found.append(f"The lag time ({tau:g} {unit}) is more than {LAG_RESOLUTION_SHARE:g} of the slowest timescale "
+                     f"({resolved.max():.4g} {unit}): first-passage times and rates from this model are computed at "
+                     f"lag resolution, see passages at multiples of the lag only, and can come out too long by "
+                     f"a lag or more; compare them across lags.")
     if changes is not None:
         changes = np.asarray(changes, dtype=float)
         few = np.flatnonzero(changes < FEW_COUNTS)

@@ -491,3 +491,27 @@ def test_macrostate_population_intervals_cover_the_truth(sample_chain, stationar
     assert np.allclose(np.nansum(samples, axis=1), 1.0)
     with pytest.raises(mk.InputError, match="needs labels="):
         model.find_macrostates(2, n_samples=10)
+
+
+def test_passage_times_are_said_to_be_at_lag_resolution(sample_chain, reversible_chain):
+    # The model at lag tau of a Markov chain is T^tau (Chapman-Kolmogorov, common practice): its
+    # first-passage time 0 -> 2 only sees multiples of tau and comes out longer than the exact
+    # one of T at lag 1 (numpy.linalg.solve of (I - T_cc) m = 1, Kemeny & Snell 1960).
+    T = reversible_chain
+    exact = np.linalg.solve(np.eye(2) - T[:2, :2], np.ones(2))[0]
+    coarse = MarkovModel.from_transition_matrix(np.linalg.matrix_power(T, 20), dt=20.0)
+    assert coarse.passage_time([0], [2]) > exact + 10  # more than half a lag too long
+    for doc in (mk.mean_passage_time.__doc__, mk.passage_time_matrix.__doc__, MarkovModel.passage_time.__doc__):
+        assert "lag resolution" in doc
+    # the table says it in its caption, with the resolution
+    runs = sample_chain(T, 2000, n_runs=10, seed=8)
+    model = quiet(build_model, runs, 4, dt=0.5, unit="ns")
+    table = model.find_macrostates(2).passage_time_table()
+    assert table.attrs["resolution"] == 2.0 and table.attrs["unit"] == "ns"
+    assert "computed at lag resolution (2 ns)" in table.attrs["caption"]
+    # and the diagnostics say it when the lag is not small against the slowest timescale
+    slowest = model.relaxation_times(1)[0]
+    coarse_lag = int(np.ceil(0.15 * slowest / 0.5))
+    far = quiet(build_model, runs, coarse_lag, dt=0.5, unit="ns")
+    assert any("computed at lag resolution" in d for d in far.diagnostics)
+    assert not any("lag resolution" in d for d in quiet(build_model, runs, 1, dt=0.5, unit="ns").diagnostics)
