@@ -342,11 +342,12 @@ def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow:
                for b in later for p in procs if p == 0 or timescales[b, p] > times[b]):
             names = "slowest timescale" if len(procs) == 1 else f"{len(procs)} slowest timescales"
             confirm = ", ".join(str(int(lags[b])) for b in later)
-            support = "" if crossings is None else f", crossed {crossings[a]:.3g} times at that lag"
+            support = "" if crossings is None else (f"; the data cross the slowest process {crossings[a]:.3g} "
+                                                    f"times at that lag")
             return int(lags[a]), (
                 f"Lag {int(lags[a])} frames ({times[a]:g} {unit}) is the smallest scanned lag from which the "
                 f"{names} stay constant at every larger scanned lag where they are resolved ({confirm} frames): "
-                f"{how}. The slowest timescale there, {t0[0]:.4g} {unit}{support}, is above the lag time.")
+                f"{how}. The slowest timescale there, {t0[0]:.4g} {unit}, is above the lag time{support}.")
         refused.setdefault("changing", "")
     if never_resolved:
         return None, (f"No scanned lag is shorter than the slowest implied timescale: nothing is resolved. "

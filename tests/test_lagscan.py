@@ -299,7 +299,7 @@ def test_well_sampled_two_wells_get_a_suggestion(sample_chain):
     # the suggestion rests on a narrow interval above the lag time, containing the truth (61 steps)
     assert scan.upper[a, 0] - scan.lower[a, 0] <= 0.5 * scan.timescales[a, 0]
     assert scan.lower[a, 0] > scan.lag_times[a] and scan.lower[a, 0] <= 61.0 <= scan.upper[a, 0]
-    assert "crossed" in scan.reason
+    assert "the data cross the slowest process" in scan.reason
 
 
 def test_suggestion_needs_support_narrow_intervals_and_two_later_lags():
