@@ -90,8 +90,9 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
         mfpt = macro.passage_time_table()
         lines.append(f"  mean first-passage times between macrostates [{model.unit}] (row -> column):")
         lines += ["    " + line for line in mfpt.to_string(float_format=lambda v: f"{v:.4g}").splitlines()]
+        lines.append(f"    {mfpt.attrs['caption']}")
     if ck is not None:
-        lines.append(f"  Chapman-Kolmogorov test: {'passed' if ck.passed else 'FAILED'}")
+        lines.append(f"  Chapman-Kolmogorov test: {'passed' if ck.passed else ck.verdict.upper()}")
         lines.append(f"    {ck.criterion}")
     if model.diagnostics:
         lines.append("  diagnostics:")

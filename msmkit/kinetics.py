@@ -1,5 +1,8 @@
 """Kinetics of a Markov chain: mean first-passage times, committors, reactive flux, routes.
 
+First-passage times are computed at lag resolution: one step of ``T`` is one lag time, so
+passages are seen at multiples of the lag only (see :func:`mean_passage_time`).
+
 Every function here works on plain arrays: a row-stochastic transition matrix ``T`` (one row
 per state of the kept set, one step = one lag time), the stationary distribution ``pi`` and
 sets of states given as *positions* (row indices) in ``T``. Results meant for people report
@@ -246,6 +249,15 @@ def hitting_steps(T, target) -> np.ndarray:
         Mean number of steps until the chain first enters the target set (unit: steps; multiply
         by the lag time lag x dt for physical time). Zero on the target states.
 
+    Notes
+    -----
+    Computed at lag resolution: a model at lag tau sees the trajectory only every tau, so a passage counts
+    when the target is occupied at a multiple of tau; visits shorter than the lag are missed
+    and the result is a multiple-of-tau view of the dynamics. Mean first-passage times from a
+    model at lag tau are therefore resolved only to about tau and tend to come out too long
+    (by a lag or more when the lag is not small against the time itself); compare the values
+    of models at several lags before quoting one.
+
     Examples
     --------
     >>> hitting_steps([[0.9, 0.1], [0.5, 0.5]], [1])
@@ -279,7 +291,16 @@ def mean_passage_time(T, pi, source, target, *, states=None, time_per_step: floa
     -------
     float
         Mean first-passage time in the unit of ``time_per_step`` (``inf`` if the target is not
-        reached with certainty).
+        reached with certainty), resolved only to one step (the lag; see Notes).
+
+    Notes
+    -----
+    Computed at lag resolution: a model at lag tau sees the trajectory only every tau, so a passage counts
+    when the target is occupied at a multiple of tau; visits shorter than the lag are missed
+    and the result is a multiple-of-tau view of the dynamics. Mean first-passage times from a
+    model at lag tau are therefore resolved only to about tau and tend to come out too long
+    (by a lag or more when the lag is not small against the time itself); compare the values
+    of models at several lags before quoting one.
 
     References
     ----------
@@ -318,7 +339,17 @@ def passage_time_matrix(T, pi, sets, *, states=None, time_per_step: float = 1.0)
     Returns
     -------
     ndarray, shape (k, k)
-        Mean first-passage times in the unit of ``time_per_step``.
+        Mean first-passage times in the unit of ``time_per_step``, resolved only to one step
+        (the lag; see Notes).
+
+    Notes
+    -----
+    Computed at lag resolution: a model at lag tau sees the trajectory only every tau, so a passage counts
+    when the target is occupied at a multiple of tau; visits shorter than the lag are missed
+    and the result is a multiple-of-tau view of the dynamics. Mean first-passage times from a
+    model at lag tau are therefore resolved only to about tau and tend to come out too long
+    (by a lag or more when the lag is not small against the time itself); compare the values
+    of models at several lags before quoting one.
 
     References
     ----------

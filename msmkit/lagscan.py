@@ -84,8 +84,9 @@ class LagScan:
         """One row per (lag, process): timescale and interval in :attr:`unit`.
 
         Columns: ``lag`` (frames), ``lag_time``, ``process`` (1 = slowest), ``timescale``,
-        ``lower``, ``upper``, ``resolved`` (timescale above the lag time). Time columns are in
-        ``df.attrs['unit']``.
+        ``lower``, ``upper``, ``resolved`` (timescale above the lag time), ``estimate_outside``
+        (the timescale lies outside the bootstrap interval of the same row, which then does not describe
+        it). Time columns are in ``df.attrs['unit']``.
         """
         import pandas as pd
         L, k = self.timescales.shape
@@ -98,6 +99,7 @@ class LagScan:
             "upper": self.upper.ravel(),
         })
         df["resolved"] = df["timescale"] > df["lag_time"]
+        df["estimate_outside"] = _estimate_outside(self.timescales, self.lower, self.upper).ravel()
         df.attrs["unit"] = self.unit
         return df
 
@@ -218,8 +220,8 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
 
     lags_arr = np.asarray(lags, dtype=np.int64)
     suggested, reason = suggest_lag(lags_arr, ts, lower, upper, dt=dt, unit=unit, n_slow=n_slow, rtol=rtol,
-                                    confidence=confidence)
-    notes += _scan_findings(lags_arr, ts, models, dt, unit)
+                                    confidence=confidence, **_data_support(models, lags_arr, runs, dt))
+    notes += _scan_findings(lags_arr, ts, models, dt, unit, lower, upper)
     return LagScan(lags_arr, ts, lower, upper, samples, dt, unit, confidence, n_samples, suggested, reason,
                    notes, models)
 
@@ -262,31 +264,71 @@ def sample_timescales_batch(rows, n, lag, dt, reversible, initial, k) -> np.ndar
         got = _sample_timescales(rows.getrow(b), n, lag, dt, reversible, initial, k)
         out[b, :got.size] = got
     return out
+#: a suggestion needs the candidate's interval narrower than this share of the estimate
+#: (upper - lower <= 0.5 x timescale, i.e. about +-25 %); wider intervals agree with anything
+MAX_RELATIVE_WIDTH = 0.5
+#: a suggestion needs at least this many larger scanned lags that confirm the value
+MIN_CONFIRMING_LAGS = 2
 
 
 def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow: int = 2, rtol: float = 0.05,
-                confidence: float = 0.95):
+                confidence: float = 0.95, crossings=None, run_time: float | None = None,
+                max_width: float = MAX_RELATIVE_WIDTH):
     """The smallest lag from which the slowest timescales stay constant, with the reason in words.
 
-    A lag qualifies when (1) the slowest timescale exceeds the lag time there, and (2) at every
-    larger scanned lag where it is still resolved, each of the ``n_slow`` slowest timescales
-    resolved at the candidate lag stays at the candidate's value: it lies inside the candidate's
-    bootstrap interval, or differs by at most ``rtol`` relatively. At least one larger lag must
-    confirm it.
+    A lag qualifies when
+
+    1. the slowest timescale exceeds the lag time there;
+    2. the data are long enough: the slowest process is crossed at least ``FEW_CROSSINGS`` (20)
+       times at that lag (``crossings``), and the slowest timescale is not longer than the
+       longest run (``run_time``) -- otherwise no run shows the process relax and a level
+       value cannot be told from noise;
+    3. with bootstrap intervals, the interval of each followed timescale means something: it
+       contains the estimate, it is at most ``max_width`` times the estimate wide, and the
+       slowest one's lower end lies above the lag time;
+    4. at least two larger scanned lags resolve the slowest timescale, and at every one of them
+       each of the ``n_slow`` slowest timescales resolved at the candidate stays at the
+       candidate's value: inside the candidate's bootstrap interval, or within ``rtol``
+       relatively.
+
+    Parameters
+    ----------
+    lags : array_like of int, shape (L,)
+        Scanned lags in frames, ascending.
+    timescales, lower, upper : ndarray, shape (L, k)
+        Timescales and their interval in ``unit`` (NaN intervals: none computed).
+    dt : float
+    unit : str
+    n_slow : int
+    rtol : float
+    confidence : float
+        Coverage of the intervals, for the text.
+    crossings : array_like of float, shape (L,), optional
+        Crossings of the slowest process at each lag (``MarkovModel.state_changes``); not
+        checked when missing.
+    run_time : float, optional
+        Duration of the longest run in ``unit``; not checked when missing.
+    max_width : float
+        Largest accepted (upper - lower) / timescale.
 
     Returns
     -------
     (lag or None, reason : str)
     """
+    from .spectral import FEW_CROSSINGS
+
     lags = np.asarray(lags)
     times = lags * dt
     has_ci = np.any(np.isfinite(lower))
     how = (f"each later value lies inside the {100 * confidence:g}% interval at the smaller lag or differs "
            f"from it by at most {100 * rtol:g}%"
-           if has_ci else f"they differ by at most {100 * rtol:g}% (no bootstrap intervals were computed)")
+           if has_ci else f"they differ by at most {100 * rtol:g}% (no bootstrap intervals were computed, so "
+                          f"the precision of the timescales was not checked)")
     if timescales.shape[0] < 2:
         return None, ("Only one lag was scanned: a lag can only be suggested where the timescales are seen "
                       "to level off across several lags.")
+    crossings = None if crossings is None else np.asarray(crossings, dtype=float)
+    refused = {}  # why resolved candidates were refused: first example of each kind
     never_resolved = True
     for a in range(len(lags)):
         t0 = timescales[a]
@@ -295,32 +337,70 @@ def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow:
         never_resolved = False
         procs = [p for p in range(min(n_slow, t0.size)) if np.isfinite(t0[p]) and t0[p] > times[a]]
         later = [b for b in range(a + 1, len(lags)) if timescales[b, 0] > times[b]]
-        if not later:
+        why = _refusal(a, t0, procs, later, lags, times, lower, upper, has_ci, crossings, run_time, max_width,
+                       unit, FEW_CROSSINGS, confidence)
+        if why is not None:
+            refused.setdefault(why[0], why[1])
             continue
-        ok = True
-        for b in later:
-            for p in procs:
-                tb = timescales[b, p]
-                if p > 0 and not tb > times[b]:
-                    continue  # a faster process that the larger lag no longer resolves
-                if not _agree(t0[p], tb, lower[a, p], upper[a, p], rtol):
-                    ok = False
-                    break
-            if not ok:
-                break
-        if ok:
+        if all(_agree(t0[p], timescales[b, p], lower[a, p], upper[a, p], rtol)
+               for b in later for p in procs if p == 0 or timescales[b, p] > times[b]):
             names = "slowest timescale" if len(procs) == 1 else f"{len(procs)} slowest timescales"
             confirm = ", ".join(str(int(lags[b])) for b in later)
+            support = "" if crossings is None else (f"; the data cross the slowest process {crossings[a]:.3g} "
+                                                    f"times at that lag")
             return int(lags[a]), (
                 f"Lag {int(lags[a])} frames ({times[a]:g} {unit}) is the smallest scanned lag from which the "
                 f"{names} stay constant at every larger scanned lag where they are resolved ({confirm} frames): "
-                f"{how}. The slowest timescale there, {t0[0]:.4g} {unit}, is above the lag time.")
+                f"{how}. The slowest timescale there, {t0[0]:.4g} {unit}, is above the lag time{support}.")
+        refused.setdefault("changing", "")
     if never_resolved:
         return None, (f"No scanned lag is shorter than the slowest implied timescale: nothing is resolved. "
                       f"Scan shorter lags, or the data hold no process slower than {times[0]:g} {unit}.")
-    return None, (f"The slowest timescales keep changing with the lag across the scanned range "
-                  f"({int(lags[0])}-{int(lags[-1])} frames; two values count as equal when {how}). "
-                  f"Scan longer lags, refine the state definition, or collect more data.")
+    kinds = ("data", "interval") if "changing" in refused else ("data", "interval", "later")
+    texts = [refused[kind] for kind in kinds if kind in refused]
+    if "changing" in refused:
+        texts.append(f"the slowest timescales keep changing with the lag across the scanned range "
+                     f"({int(lags[0])}-{int(lags[-1])} frames; two values count as equal when {how})")
+    reason = "No lag is suggested: " + "; ".join(texts) + "."
+    if not has_ci and "changing" not in refused:
+        reason += " The precision of the timescales was not checked: no bootstrap intervals were computed."
+    if "data" in refused or "interval" in refused:
+        return None, reason + " Collect more or longer runs before choosing a lag."
+    return None, reason + " Scan longer lags, refine the state definition, or collect more data."
+
+
+def _refusal(a, t0, procs, later, lags, times, lower, upper, has_ci, crossings, run_time, max_width, unit,
+             few_crossings, confidence):
+    """Why the candidate lag ``a`` cannot be suggested before the later values are even compared:
+    (kind, text) or None. Kinds: "data" (too little data), "interval" (intervals that mean
+    nothing), "later" (too few larger lags to confirm)."""
+    lag = int(lags[a])
+    if crossings is not None and not crossings[a] >= few_crossings:
+        return "data", (f"the data cross the slowest process only {crossings[a]:.3g} time(s) at lag {lag} frames "
+                        f"(at least {few_crossings} are needed for the timescale to mean something)")
+    if run_time is not None and t0[0] > run_time:
+        return "data", (f"the slowest timescale at lag {lag} frames, {t0[0]:.4g} {unit}, is longer than the "
+                        f"longest run ({run_time:g} {unit}): no run shows the process relax")
+    if has_ci:
+        conf = f"{100 * confidence:g}%"
+        for p in procs:
+            lo, hi = lower[a, p], upper[a, p]
+            if not (np.isfinite(lo) and np.isfinite(hi)):
+                return "interval", f"timescale {p + 1} at lag {lag} frames has no {conf} interval"
+            if not lo <= t0[p] <= hi:
+                return "interval", (f"at lag {lag} frames timescale {p + 1} ({t0[p]:.4g} {unit}) lies outside the "
+                                    f"{conf} interval made for it, [{lo:.4g}, {hi:.4g}]")
+            if hi - lo > max_width * t0[p]:
+                return "interval", (f"at lag {lag} frames the {conf} interval of timescale {p + 1}, "
+                                    f"[{lo:.4g}, {hi:.4g}] {unit}, is wider than {max_width:g} x the estimate "
+                                    f"{t0[p]:.4g}: later values would agree with it whatever they are")
+        if not lower[a, 0] > times[a]:
+            return "interval", (f"at lag {lag} frames the {conf} interval of the slowest timescale reaches down "
+                                f"to {lower[a, 0]:.4g} {unit}, not above the lag time {times[a]:g} {unit}")
+    if len(later) < MIN_CONFIRMING_LAGS:
+        return "later", (f"from lag {lag} frames on fewer than {MIN_CONFIRMING_LAGS} larger scanned lags resolve "
+                         f"the slowest timescale to confirm it")
+    return None
 
 
 def _agree(ta, tb, la, ua, rtol) -> bool:
@@ -335,8 +415,28 @@ def _agree(ta, tb, la, ua, rtol) -> bool:
     return bool(np.isfinite(la) and np.isfinite(ua) and la <= tb <= ua)
 
 
-def _scan_findings(lags, ts, models, dt, unit) -> list[str]:
+def _data_support(models, lags, runs, dt) -> dict:
+    """Crossings of the slowest process at every scanned lag, and the longest run in time: what
+    :func:`suggest_lag` weighs against the timescales."""
+    return {"crossings": np.array([models[int(lag)].state_changes()[1] for lag in lags]),
+            "run_time": max(r.size for r in runs) * dt}
+
+
+def _estimate_outside(ts, lower, upper) -> np.ndarray:
+    """Where the full-data timescale lies outside the bootstrap interval of the same lag (False without one)."""
+    with np.errstate(invalid="ignore"):
+        return np.isfinite(ts) & np.isfinite(lower) & np.isfinite(upper) & ((ts < lower) | (ts > upper))
+
+
+def _scan_findings(lags, ts, models, dt, unit, lower=None, upper=None) -> list[str]:
     found = []
+    if lower is not None:
+        outside = _estimate_outside(ts, lower, upper)
+        if outside.any():
+            where = sorted({int(lags[a]) for a in np.nonzero(outside)[0]})
+            found.append(f"At lag(s) {where} frames {int(outside.sum())} timescale(s) lie outside the bootstrap "
+                         f"interval computed for them (column estimate_outside of the table): the resampled "
+                         f"values are skewed or too few, so those intervals do not describe the uncertainty.")
     unresolved = [int(l) for l, t in zip(lags, ts[:, 0]) if np.isfinite(t) and t <= l * dt]
     if unresolved:
         found.append(f"At lag(s) {unresolved} frames the slowest timescale is shorter than the lag itself: "

@@ -568,6 +568,12 @@ class Macrostates:
 
         Row a, column b: mean time to first enter macrostate b from macrostate a, starting from
         the stationary distribution inside a (Kemeny & Snell 1960). Needs ``propagator``.
+
+        The times are computed at lag resolution: the model sees the dynamics every
+        ``time_per_step`` (one lag) only, so they are resolved to about one lag and tend to
+        come out too long when the lag is not small against them (see
+        :func:`msmkit.kinetics.mean_passage_time`). ``df.attrs`` holds ``unit``,
+        ``resolution`` (the lag time, in ``unit``) and ``caption`` saying so in words.
         """
         import pandas as pd
 
@@ -583,7 +589,13 @@ class Macrostates:
         M = passage_time_matrix(self.propagator, self.equilibrium, sets,
                         states=self.states, time_per_step=self.time_per_step)
         idx = pd.Index(np.arange(self.n_sets), name="from")
-        return pd.DataFrame(M, index=idx, columns=pd.Index(np.arange(self.n_sets), name="to"))
+        df = pd.DataFrame(M, index=idx, columns=pd.Index(np.arange(self.n_sets), name="to"))
+        df.attrs.update(unit=self.unit, resolution=float(self.time_per_step),
+                        caption=f"Mean first-passage times between macrostates in {self.unit}, computed at lag "
+                                f"resolution ({self.time_per_step:g} {self.unit}): passages are seen at multiples "
+                                f"of the lag only, so times are resolved to about one lag and tend to come out "
+                                f"too long when the lag is not small against them.")
+        return df
 
 
 def find_macrostates(T, pi, n_sets: int, *, states=None, time_per_step: float = 1.0,

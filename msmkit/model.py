@@ -21,7 +21,8 @@ from .counts import count_flat, flat_counts_to_csr, kept_states, prepare_countin
 from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix
 from .modelfile import read_model_file, save_model
-from .spectral import chain_diagnostics, eigen_decomposition, implied_timescales, obeys_detailed_balance, equilibrium_distribution
+from .spectral import (chain_diagnostics, changes_out, eigen_decomposition, implied_timescales,
+                       obeys_detailed_balance, equilibrium_distribution, slow_crossings)
 
 __all__ = ["MarkovModel", "build_model", "load_model", "GAS_CONSTANT_KJ"]
 
@@ -150,6 +151,28 @@ class MarkovModel:
         w = self.spectrum(None if k is None else check_int(k, "k", minimum=1) + 1)[1:]
         return implied_timescales(w, self.lag, self.dt)
 
+    def state_changes(self):
+        """How much the data move: changes between distinct states, and crossings of the slowest process.
+
+        Counted from :attr:`transition_counts` at the model's lag; self-transitions do not count.
+        With sliding-window counting every change is seen in about ``lag`` windows, so the
+        counts are divided by the lag (at lag 1 these are exactly the frames at which a run
+        leaves a state). The slowest process splits the states by the sign of the eigenvector;
+        a crossing is a counted transition from one side to the other.
+
+        Returns
+        -------
+        (per_state, crossings) : (ndarray of float, shape (n_states,), float)
+            Changes out of each state (in the order of :attr:`states`) and crossings of the
+            slowest process; ``(None, None)`` for a model built from a matrix.
+        """
+        if self.transition_counts is None:
+            return None, None
+        every_frame = bool(self.metadata.get("parameters", {}).get("every_frame", True))
+        per_state = changes_out(self.transition_counts, lag=self.lag, every_frame=every_frame)
+        side = np.real(self.modes(2)[:, 1]) > 0
+        return per_state, slow_crossings(self.transition_counts, side, lag=self.lag, every_frame=every_frame)
+
     # ----------------------------------------------------------------- populations
     def populations(self, temperature: float | None = None):
         """Stationary populations and free energies of the kept states.
@@ -258,7 +281,9 @@ class MarkovModel:
     def passage_time(self, source, target) -> float:
         """Mean first-passage time from ``source`` to ``target`` (lists of original labels), in
         :attr:`unit`; over several sources averaged with the stationary weights inside the set
-        (Kemeny & Snell 1960)."""
+        (Kemeny & Snell 1960). Computed at lag resolution: passages are seen at multiples of
+        the lag only, so the time is resolved to about one lag and tends to come out too long
+        when the lag is not small against it (see :func:`msmkit.kinetics.mean_passage_time`)."""
         from .kinetics import mean_passage_time
         return mean_passage_time(self.propagator, self.equilibrium,
                                        self.index_of(source, "source"), self.index_of(target, "target"),
@@ -266,7 +291,8 @@ class MarkovModel:
 
     def passage_time_matrix(self, sets):
         """Mean first-passage times between disjoint sets of labels (e.g. macrostates), as a
-        (k, k) ndarray in :attr:`unit`; entry (a, b) is the time from set a to set b."""
+        (k, k) ndarray in :attr:`unit`; entry (a, b) is the time from set a to set b. Computed
+        at lag resolution, like :meth:`passage_time`."""
         from .kinetics import passage_time_matrix
         return passage_time_matrix(self.propagator, self.equilibrium,
                            [self.index_of(s, f"sets[{i}]") for i, s in enumerate(sets)],
@@ -461,11 +487,11 @@ def model_from_counts(counts: sp.csr_matrix, lag: int, *, dt: float, unit: str, 
         model.diagnostics.append(f"The reversible estimate stopped after {info.iterations} iterations without "
                                  "converging; the matrix obeys detailed balance but not exactly the maximum-likelihood one.")
     if spectrum:
-        row_counts = np.asarray(Ck.sum(axis=1)).ravel()
+        changes, crossings = model.state_changes()
         model.diagnostics += chain_diagnostics(model.spectrum(REPORTED + 1), lag=lag, dt=dt, unit=unit,
-                                               row_counts=row_counts, states=model.states,
+                                               changes=changes, crossings=crossings, states=model.states,
                                                dropped_states=dropped, kept_fraction=kept_fraction,
-                                               n_reported=min(REPORTED, model.n_states - 1))
+                                               n_reported=min(REPORTED, model.n_states - 1), estimated=True)
     if warn:
         for line in model.diagnostics:
             warnings.warn(line, DiagnosticWarning, stacklevel=3)

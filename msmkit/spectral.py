@@ -13,6 +13,8 @@ import scipy.linalg as la
 
 __all__ = [
     "chain_diagnostics",
+    "changes_out",
+    "slow_crossings",
     "eigen_decomposition",
     "implied_timescales",
     "obeys_detailed_balance",
@@ -23,8 +25,14 @@ __all__ = [
 UNIT_CIRCLE_TOL = 1e-9
 #: above this many states, a few leading eigenvalues are found iteratively instead of by a full solve
 ITERATIVE_MIN_STATES = 1000
-#: states whose row holds fewer transitions than this are flagged as poorly sampled
+#: states left for another state fewer times than this are flagged as poorly sampled
 FEW_COUNTS = 10
+#: above this share of the slowest timescale, the lag visibly coarsens first-passage times
+LAG_RESOLUTION_SHARE = 0.1
+#: a slow process crossed fewer times than this cannot support its timescale or the populations
+#: of its two sides: the relative error of a rate from N independent crossings is about
+#: 1/sqrt(N/2), above 30 % below 20 crossings (Poisson counting, common practice)
+FEW_CROSSINGS = 20
 
 
 def equilibrium_distribution(T: np.ndarray) -> np.ndarray:
@@ -165,8 +173,9 @@ def implied_timescales(eigenvalues, lag: int, dt: float = 1.0) -> np.ndarray:
     return np.where(mag == 0, 0.0, out)
 
 
-def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, row_counts=None, states=None,
-                      dropped_states=None, kept_fraction=None, n_reported: int | None = None) -> list[str]:
+def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, changes=None, crossings=None,
+                      states=None, dropped_states=None, kept_fraction=None,
+                      n_reported: int | None = None, estimated: bool = False) -> list[str]:
     """Plain-language findings about a model that a user must not miss.
 
     Parameters
@@ -175,8 +184,11 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, row_counts
         Eigenvalues sorted by magnitude (the first is the stationary 1).
     lag, dt, unit
         Lag in frames, frame time and the unit of time, for the timescale checks.
-    row_counts : ndarray, optional
-        Transitions counted out of each kept state.
+    changes : ndarray, optional
+        Changes to another state out of each kept state (:func:`changes_out`; self-transitions
+        do not count).
+    crossings : float, optional
+        Crossings between the two sides of the slowest process (:func:`slow_crossings`).
     states : ndarray, optional
         Original labels of the kept states, used to name them.
     dropped_states : ndarray, optional
@@ -186,6 +198,10 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, row_counts
     n_reported : int, optional
         How many eigenvalues after the first are reported to the user (negative and complex
         values are flagged among those); default all.
+    estimated : bool
+        The model was estimated from data at this lag: a lag above a tenth of the slowest
+        timescale is flagged, since first-passage times are then coarsened by the lag (a matrix
+        given as the dynamics itself has no such lag).
 
     Returns
     -------
@@ -221,20 +237,92 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, row_counts
     if np.any(short):
         found.append(f"{int(np.sum(short))} reported timescale(s) are shorter than the lag time "
                      f"({tau:g} {unit}); they cannot be resolved at this lag and are not physical.")
-    if row_counts is not None:
-        few = np.flatnonzero(np.asarray(row_counts) < FEW_COUNTS)
+    resolved = ts[np.isfinite(ts) & (ts > tau)]
+    if estimated and resolved.size and tau > LAG_RESOLUTION_SHARE * resolved.max():
+        found.append(f"The lag time ({tau:g} {unit}) is more than {LAG_RESOLUTION_SHARE:g} of the slowest timescale "
+                     f"({resolved.max():.4g} {unit}): first-passage times and rates from this model are computed at "
+                     f"lag resolution, see passages at multiples of the lag only, and can come out too long by "
+                     f"a lag or more; compare them across lags.")
+    if changes is not None:
+        changes = np.asarray(changes, dtype=float)
+        few = np.flatnonzero(changes < FEW_COUNTS)
         if few.size:
             names = few if states is None else np.asarray(states)[few]
             shown = ", ".join(str(int(s)) for s in names[:8]) + (" ..." if few.size > 8 else "")
-            found.append(f"{few.size} state(s) have fewer than {FEW_COUNTS} transitions out of them "
-                         f"(states {shown}); their probabilities are poorly determined. More sampling, "
-                         "fewer microstates or a shorter lag help.")
+            found.append(f"{few.size} state(s) are left for another state fewer than {FEW_COUNTS} times "
+                         f"(states {shown}; staying in a state does not count); their transition "
+                         f"probabilities are poorly determined. More sampling, fewer microstates or a "
+                         f"shorter lag help.")
+        total = float(changes.sum())
+        if crossings is not None and crossings < FEW_CROSSINGS:
+            found.append(f"The sampling cannot support this model: the data cross between the two sides of "
+                         f"the slowest process (split by the sign of the eigenvector) only {crossings:.3g} "
+                         f"time(s) at this lag, among {total:.3g} change(s) between distinct states in all. "
+                         f"Fewer than {FEW_CROSSINGS} crossings leave the timescale, the populations of the "
+                         f"two sides and every test of the model (Chapman-Kolmogorov included) without "
+                         f"support; collect more or longer runs.")
     if dropped_states is not None and len(dropped_states):
         shown = ", ".join(str(int(s)) for s in np.asarray(dropped_states)[:8]) + (" ..." if len(dropped_states) > 8 else "")
         frac = "" if kept_fraction is None else f", holding {100 * (1 - kept_fraction):.3g}% of the transition counts"
         found.append(f"Data not fully connected: {len(dropped_states)} visited state(s) lie outside the largest "
                      f"strongly connected set and were dropped (states {shown}{frac}).")
     return found
+
+
+def _windows(counts, lag: int, every_frame: bool) -> float:
+    """How many counted windows make one independent observation: sliding windows at lag tau
+    count every change about tau times (one per offset), so their counts are divided by tau."""
+    return float(lag) if every_frame else 1.0
+
+
+def changes_out(counts, *, lag: int = 1, every_frame: bool = True) -> np.ndarray:
+    """Changes to a different state out of each state, at the lag (self-transitions left out).
+
+    Parameters
+    ----------
+    counts : array_like or sparse matrix, shape (n, n)
+        Transition counts at ``lag``.
+    lag : int
+        The lag of the counts, in frames.
+    every_frame : bool
+        The counts come from sliding windows: off-diagonal counts are divided by ``lag`` so that
+        each independent change counts once (exact at lag 1, where it is the number of frames
+        at which the trajectory leaves the state).
+
+    Returns
+    -------
+    ndarray, shape (n,)
+        Number of changes out of each state (a float for sliding windows at lag > 1).
+    """
+    C = counts.toarray() if hasattr(counts, "toarray") else np.asarray(counts)
+    C = np.asarray(C, dtype=float)
+    return (C.sum(axis=1) - np.diag(C)) / _windows(C, lag, every_frame)
+
+
+def slow_crossings(counts, side, *, lag: int = 1, every_frame: bool = True) -> float:
+    """How often the data cross between the two sides of a slow process, at the lag.
+
+    The sides are the states where the process's right eigenvector is positive or not;
+    a crossing is a counted transition from one side to the other (sliding windows divided by
+    ``lag``, as in :func:`changes_out`).
+
+    Parameters
+    ----------
+    counts : array_like or sparse matrix, shape (n, n)
+    side : array_like of bool, shape (n,)
+        True for the states on one side.
+    lag : int
+    every_frame : bool
+
+    Returns
+    -------
+    float
+    """
+    C = counts.toarray() if hasattr(counts, "toarray") else np.asarray(counts)
+    C = np.asarray(C, dtype=float)
+    side = np.asarray(side, dtype=bool)
+    across = C[np.ix_(side, ~side)].sum() + C[np.ix_(~side, side)].sum()
+    return float(across / _windows(C, lag, every_frame))
 
 
 def _fmt(z) -> str:

@@ -33,6 +33,7 @@ from .counts import count_flat, run_count_rows
 from .defaults import CK_MULTIPLES
 from .errors import DiagnosticWarning, InputError
 from .model import MarkovModel, build_model, fingerprint
+from .spectral import FEW_CROSSINGS, slow_crossings
 
 __all__ = [
     "CKResult",
@@ -83,22 +84,42 @@ class CKResult:
         connected set at that lag).
     lower, upper : ndarray, shape (K, m, m)
         Percentile bootstrap interval of ``estimated`` (NaN without bootstrap).
+    deviation : ndarray, shape (K, m, m)
+        (predicted - estimated) in units of the bootstrap standard error of the estimate; NaN
+        where no interval was usable.
     within : ndarray of bool, shape (K, m, m)
-        The prediction passes: inside the interval, or within ``tolerance`` where no interval
-        was usable.
+        The prediction passes: the deviation stays below :attr:`threshold` (the family-wise
+        limit over all compared points), or within ``tolerance`` where no interval was usable.
+    outside_interval : ndarray of bool, shape (K, m, m)
+        The prediction lies outside the pointwise percentile interval of the estimate. About
+        ``1 - confidence`` of the points do so by chance even for a Markovian model, so this
+        alone is not a failure.
     used_tolerance : ndarray of bool, shape (K, m, m)
         Pairs judged by ``tolerance`` because the data were too few for an interval (no
         bootstrap, fewer than 80 % of the samples giving a value, or all samples equal).
     outside_by : ndarray, shape (K, m, m)
-        How far a failing prediction lies outside the interval (or beyond the tolerance); 0
-        where it passes, NaN where nothing could be estimated.
+        How far a failing prediction lies beyond the family-wise band
+        ``estimated +- threshold x standard error`` (or beyond the tolerance), as a probability;
+        0 where it passes, NaN where nothing could be estimated.
+    threshold : float
+        Family-wise limit on ``|deviation|``: the two-sided quantile of Student's t (n_samples - 1
+        degrees of freedom) at ``(1 - confidence) / n_compared`` (Bonferroni; the failing points
+        are found with Holm's step-down procedure, which gives the same verdict).
+    n_compared : int
+        Points judged against an interval (k >= 2 and the prediction not identical with the
+        estimate).
     set_populations : ndarray, shape (m,)
         Stationary probability of each set in the model (the limit of every row as k grows).
     samples : ndarray, shape (K, n_samples, m, m)
         Bootstrap estimates.
     confidence, tolerance : float
     n_samples : int
+    verdict : str
+        "passed", "failed", or "inconclusive" (the data hold too few changes between the sets,
+        or too few crossings of the slowest process, to test the model).
     passed : bool
+        Summary of :attr:`verdict`: True only for "passed". Read :attr:`n_failed`,
+        :attr:`deviation` and :meth:`table` for how many points miss and by how much.
     criterion : str
         The verdict and the rule behind it, in words.
     notes : list of str
@@ -125,10 +146,30 @@ class CKResult:
     passed: bool = False
     criterion: str = ""
     notes: list = field(default_factory=list)
+    deviation: np.ndarray | None = None
+    outside_interval: np.ndarray | None = None
+    threshold: float = np.nan
+    n_compared: int = 0
+    verdict: str = ""
 
     @property
     def n_sets(self) -> int:
         return len(self.members)
+
+    @property
+    def n_failed(self) -> int:
+        """How many predictions fail (beyond the family-wise threshold or the tolerance, or not
+        estimable)."""
+        return int((~self.within).sum())
+
+    @property
+    def estimate_outside(self) -> np.ndarray:
+        """Where the estimate lies outside the bootstrap interval of the same point (bool, shape (K, m, m)):
+        the resampled values are skewed or too few, so that interval does not describe the
+        estimate's uncertainty."""
+        with np.errstate(invalid="ignore"):
+            return np.isfinite(self.estimated) & ((self.estimated < self.lower - 1e-12)
+                                                  | (self.estimated > self.upper + 1e-12))
 
     @property
     def lag_times(self) -> np.ndarray:
@@ -140,8 +181,11 @@ class CKResult:
 
         Columns: ``from_set``, ``to_set``, ``k``, ``lag`` (frames), ``lag_time`` (in
         ``df.attrs['unit']``), ``predicted``, ``estimated``, ``lower``, ``upper`` (probabilities),
-        ``within`` and ``used_tolerance`` (bool), ``outside_by`` (how far a failing prediction
-        misses, 0 when it passes).
+        ``deviation`` (predicted - estimated in bootstrap standard errors), ``within`` (passes
+        the family-wise criterion), ``outside_interval`` (outside the pointwise interval),
+        ``used_tolerance`` (bool), ``outside_by`` (how far a failing prediction misses, 0 when it
+        passes), ``estimate_outside`` (the estimate lies outside the interval of the same row). ``df.attrs``
+        also holds ``threshold`` and ``n_compared``.
         """
         import pandas as pd
         K, m, _ = self.predicted.shape
@@ -151,10 +195,11 @@ class CKResult:
             "lag": k.ravel() * self.lag, "lag_time": k.ravel() * self.lag * self.dt,
             "predicted": self.predicted.ravel(), "estimated": self.estimated.ravel(),
             "lower": self.lower.ravel(), "upper": self.upper.ravel(),
-            "within": self.within.ravel(), "used_tolerance": self.used_tolerance.ravel(),
-            "outside_by": self.outside_by.ravel(),
+            "deviation": self.deviation.ravel(), "within": self.within.ravel(),
+            "outside_interval": self.outside_interval.ravel(), "used_tolerance": self.used_tolerance.ravel(),
+            "outside_by": self.outside_by.ravel(), "estimate_outside": self.estimate_outside.ravel(),
         }).sort_values(["from_set", "to_set", "k"], kind="stable").reset_index(drop=True)
-        df.attrs["unit"] = self.unit
+        df.attrs.update(unit=self.unit, threshold=self.threshold, n_compared=self.n_compared)
         return df
 
 
@@ -207,18 +252,26 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
     Returns
     -------
     CKResult
-        ``.passed``, ``.criterion`` (in words), ``.table()``.
+        ``.verdict``, ``.passed`` (a summary of it), ``.n_failed``, ``.deviation``, ``.criterion`` (in
+        words), ``.table()``.
 
     Notes
     -----
     Macrostates are used as crisp sets: each state belongs to the macrostate of largest
     PCCA+ membership. Crisp sets let the data side count transitions between sets directly;
     membership-weighted probabilities would mix states that the data never saw together.
-    The test passes when every prediction lies inside the bootstrap interval of the
-    corresponding estimate (or within ``tolerance`` where no interval could be formed). The
-    intervals cover the sampling error of the estimates only, not that of the model; with
-    many sets and multiples, an occasional miss by a hair is expected by chance even for
-    Markovian data, so read the table and the figure, not only the verdict.
+    Every compared point (k >= 2) gets a deviation, (predicted - estimated) in units of the
+    bootstrap standard error of the estimate. Judged one at a time at ``confidence``, about
+    1 - ``confidence`` of the points of a Markovian model would miss by chance, and with m^2 K
+    points nearly every test would fail somewhere; the verdict therefore holds the family-wise
+    error at 1 - ``confidence``: a point fails when Holm's step-down procedure rejects it (some
+    point does exactly when the largest deviation exceeds the Bonferroni threshold, the quantile
+    of Student's t with n_samples - 1 degrees of freedom at (1 - confidence) / (2 n)). Pairs without a usable interval are held to
+    ``tolerance``. The standard errors cover the sampling error of the estimates only, not that
+    of the model, which makes the test conservative for Markovian data. The verdict is
+    "inconclusive" when the data change between the sets, or cross the slowest process, fewer
+    than 20 times at the model's lag. Read the number of failing points, the deviations and the
+    figure, not only the verdict.
 
     References
     ----------
@@ -233,7 +286,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
     >>> model = build_model(runs, lag=1)
     >>> ck = chapman_kolmogorov(model, runs, multiples=3, n_samples=10, seed=0)
     >>> ck.passed, ck.table().shape
-    (True, (12, 12))
+    (True, (12, 15))
     """
     model = _check_model(model)
     runs = as_label_trajectories(labels)
@@ -277,6 +330,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
     estimated = np.full((K, m, m), np.nan)
     samples = np.full((K, n_samples, m, m), np.nan)
     lost = []
+    support_counts = None
     placed = place(runs, client)  # label arrays sent to the workers once, for every multiple of the lag
     bar = progress_bar(K * (1 + n_samples), progress, "Chapman-Kolmogorov test")
     try:
@@ -284,6 +338,8 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
             rows, _ = run_count_rows(placed, k * model.lag, n_states=n_lab, every_frame=every_frame,
                                      blocks_per_run=blocks, client=client)
             full = _on_model_states(unflatten(np.asarray(rows.sum(axis=0)).ravel(), n_lab), model)
+            if k == 1:
+                support_counts = full
             fit = fit_sample(full, reversible=model.reversible)
             bar.update(1)
             if fit is None:
@@ -312,32 +368,107 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
     if n_samples:
         lower, upper = percentile_interval(samples, confidence, axis=1)
         share = np.mean(np.isfinite(samples), axis=1)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN or single-value slices
+            spread = np.nanstd(samples, axis=1, ddof=1) if n_samples > 1 else np.full_like(estimated, np.nan)
     else:
-        lower = upper = np.full_like(estimated, np.nan)
+        lower = upper = spread = np.full_like(estimated, np.nan)
         share = np.zeros_like(estimated)
-    finite = np.isfinite(estimated)
-    has_ci = np.isfinite(lower) & np.isfinite(upper) & (upper - lower > 0) & (share >= MIN_VALID_SHARE)
-    diff = np.abs(predicted - estimated)
-    in_ci = has_ci & (predicted >= lower - 1e-12) & (predicted <= upper + 1e-12)
-    used_tol = finite & ~has_ci
-    within = finite & (in_ci | (used_tol & (diff <= tolerance)) | (diff <= _SAME))
-    with np.errstate(invalid="ignore"):
-        outside_by = np.where(has_ci, np.maximum(np.maximum(lower - predicted, predicted - upper), 0.0),
-                              np.maximum(diff - tolerance, 0.0))
-    outside_by[within] = 0.0
-    outside_by[~finite] = np.nan
     for k, n_lost, frac in lost:
         notes.append(f"At lag {k} x tau ({k * model.lag} frames) {n_lost} of the model's {n_kept} states fall "
                      f"outside the largest connected set ({100 * frac:.3g}% of the counts); they are left out of "
                      f"the estimate at that lag.")
-    passed = bool(np.all(within))
-    criterion = _ck_criterion(passed, predicted, estimated, lower, upper, within, used_tol, finite, outside_by,
-                              model, confidence, tolerance, n_samples)
-    return CKResult(members=[np.asarray(s, dtype=np.int64) for s in sets], multiples=np.arange(1, K + 1),
-                    lag=model.lag, dt=model.dt, unit=model.unit, predicted=predicted, estimated=estimated,
-                    lower=lower, upper=upper, within=within, used_tolerance=used_tol, outside_by=outside_by,
-                    set_populations=populations, samples=samples, confidence=confidence, tolerance=tolerance,
-                    n_samples=n_samples, passed=passed, criterion=criterion, notes=notes)
+    judged = _judge(predicted, estimated, lower, upper, spread, share, share * n_samples, confidence, tolerance)
+    support = _support(model, support_counts, M, every_frame)
+    verdict = _verdict(judged["within"], support)
+    criterion = _ck_criterion(verdict, predicted, estimated, lower, upper, judged, support, model, confidence,
+                              tolerance, n_samples)
+    result = CKResult(members=[np.asarray(s, dtype=np.int64) for s in sets], multiples=np.arange(1, K + 1),
+                      lag=model.lag, dt=model.dt, unit=model.unit, predicted=predicted, estimated=estimated,
+                      lower=lower, upper=upper, within=judged["within"], used_tolerance=judged["used_tolerance"],
+                      outside_by=judged["outside_by"], set_populations=populations, samples=samples,
+                      confidence=confidence, tolerance=tolerance, n_samples=n_samples,
+                      passed=verdict == "passed", criterion=criterion, notes=notes,
+                      deviation=judged["deviation"], outside_interval=judged["outside_interval"],
+                      threshold=judged["threshold"], n_compared=judged["n_compared"], verdict=verdict)
+    skewed = result.estimate_outside
+    if skewed.any():
+        notes.append(f"At {int(skewed.sum())} point(s) the estimate lies outside the {100 * confidence:g}% "
+                     f"bootstrap interval ({_pairs_text(skewed, result.multiples)}): the resampled values are "
+                     f"skewed or too few there, so those intervals do not describe the estimate's uncertainty "
+                     f"(column estimate_outside of the table).")
+    return result
+
+
+def _judge(pred, est, lower, upper, spread, share, n_valid, confidence, tolerance) -> dict:
+    """Judge every point: deviations in standard errors against one family-wise threshold.
+
+    Each pointwise comparison at ``confidence`` would fail by chance at a rate 1 - confidence;
+    over n compared points at least one such miss is nearly certain. The verdict therefore
+    controls the family-wise error: with p-values of the deviation from Student's t (the
+    standard error is estimated from the samples), Holm's step-down procedure (Holm, Scand. J. Stat. 6, 65 (1979)) finds the failing
+    points; it fails some point exactly when the Bonferroni threshold ``threshold`` is exceeded.
+    """
+    from scipy.stats import t as student
+
+    finite = np.isfinite(est)
+    diff = pred - est
+    has_ci = (np.isfinite(lower) & np.isfinite(upper) & (upper - lower > 0) & (share >= MIN_VALID_SHARE)
+              & np.isfinite(spread) & (spread > 0))
+    same = np.abs(diff) <= _SAME
+    with np.errstate(invalid="ignore", divide="ignore"):
+        deviation = np.where(has_ci, diff / np.where(has_ci, spread, 1.0), np.nan)
+    compared = has_ci & finite & ~same
+    n = int(compared.sum())
+    alpha = 1.0 - confidence
+    # the standard error is itself estimated from the samples: Student's t with (samples - 1)
+    # degrees of freedom, not the normal law (with 20 samples the normal one fails too often)
+    dof = np.maximum(n_valid - 1, 1)
+    threshold = float(student.isf(alpha / (2 * max(n, 1)), dof[compared].min() if n else np.inf))
+    # Holm: the i-th smallest p-value (i = 0..n-1) is compared with alpha / (n - i) until one passes
+    p = 2 * student.sf(np.abs(deviation[compared]), dof[compared])
+    order = np.argsort(p, kind="stable")
+    ok = p[order] > alpha / (n - np.arange(n))
+    n_rejected = int(np.argmax(ok)) if ok.any() else n
+    failing = np.zeros(n, dtype=bool)
+    failing[order[:n_rejected]] = True
+    fail_ci = np.zeros_like(compared)
+    fail_ci[compared] = failing
+    used_tol = finite & ~has_ci
+    fail_tol = used_tol & ~same & (np.abs(diff) > tolerance)
+    within = finite & ~fail_ci & ~fail_tol
+    with np.errstate(invalid="ignore"):
+        outside_interval = has_ci & ((pred < lower - 1e-12) | (pred > upper + 1e-12))
+        outside_by = np.where(has_ci, np.maximum(np.abs(diff) - threshold * np.where(has_ci, spread, 0.0), 0.0),
+                              np.maximum(np.abs(diff) - tolerance, 0.0))
+    outside_by[within] = 0.0
+    outside_by[~finite] = np.nan
+    return dict(within=within, used_tolerance=used_tol, outside_by=outside_by, deviation=deviation,
+                outside_interval=outside_interval, threshold=threshold, n_compared=n, compared=compared,
+                finite=finite)
+
+
+def _support(model, counts, M, every_frame) -> dict:
+    """How much the data can say: changes between the tested sets and crossings of the slowest
+    process, counted at the model's lag (sliding windows divided by the lag)."""
+    if counts is None:
+        return {"set_changes": np.nan, "crossings": np.nan}
+    per = float(model.lag) if every_frame else 1.0
+    C = np.asarray(counts.toarray() if hasattr(counts, "toarray") else counts, dtype=float)
+    between = M.T @ C @ M
+    set_changes = float((between.sum() - np.trace(between)) / per)
+    crossings = np.nan
+    if model.n_states >= 2:
+        side = np.real(model.modes(2)[:, 1]) > 0
+        crossings = slow_crossings(C, side, lag=model.lag, every_frame=every_frame)
+    return {"set_changes": set_changes, "crossings": crossings}
+
+
+def _verdict(within, support) -> str:
+    few = [v for v in (support["set_changes"], support["crossings"]) if np.isfinite(v) and v < FEW_CROSSINGS]
+    if few:
+        return "inconclusive"
+    return "passed" if bool(np.all(within)) else "failed"
 
 
 def _check_model(model) -> MarkovModel:
@@ -458,37 +589,62 @@ def _pairs_text(mask, multiples, limit=8) -> str:
     return ", ".join(items[:limit]) + (f" and {len(items) - limit} more" if len(items) > limit else "")
 
 
-def _ck_criterion(passed, pred, est, lower, upper, within, used_tol, finite, outside_by, model, confidence,
-                  tolerance, n_samples) -> str:
+def _ck_criterion(verdict, pred, est, lower, upper, judged, support, model, confidence, tolerance,
+                  n_samples) -> str:
     K = pred.shape[0]
     total = pred.size
     multiples = np.arange(1, K + 1)
     conf = f"{100 * confidence:g}%"
-    rule = (f"every prediction T(tau)^k (k = 1..{K}, tau = {model.lag_time:g} {model.unit}) must lie inside "
-            f"the {conf} bootstrap interval of the estimate at lag k tau"
-            if n_samples else
-            f"without bootstrap (n_samples=0) every prediction T(tau)^k (k = 1..{K}, tau = {model.lag_time:g} "
-            f"{model.unit}) must lie within {tolerance:g} of the estimate at lag k tau")
+    within, used_tol, finite = judged["within"], judged["used_tolerance"], judged["finite"]
+    dev, n = judged["deviation"], judged["n_compared"]
+    head = f"T(tau)^k (k = 1..{K}, tau = {model.lag_time:g} {model.unit})"
+    if n_samples:
+        rule = (f"a prediction {head} fails when it deviates from the estimate at lag k tau by more than "
+                f"{judged['threshold']:.2f} bootstrap standard errors of that estimate, the {conf} family-wise "
+                f"limit over the {n} compared point(s) (Bonferroni-Holm; k = 1 and identical values are not "
+                f"compared)")
+    else:
+        rule = (f"without bootstrap (n_samples=0) every prediction {head} must lie within {tolerance:g} of the "
+                f"estimate at lag k tau")
+    spread_text = ""
+    if n:
+        z = np.where(judged["compared"], np.abs(dev), -1.0)
+        kz, az, bz = np.unravel_index(int(np.argmax(z)), z.shape)
+        n_out = int((judged["outside_interval"] & judged["compared"]).sum())
+        spread_text = (f" {n_out} of the {n} compared point(s) lie outside their pointwise {conf} interval "
+                       f"(about {(1 - confidence) * n:.2g} expected by chance for a Markovian model); the largest "
+                       f"deviation is {z[kz, az, bz]:.2f} standard errors (set {az} -> set {bz} at k = {kz + 1}).")
     tol_text = ""
     if n_samples and used_tol.any():
         tol_text = (f" {int(used_tol.sum())} pair(s) had too few data for an interval and were held to within "
                     f"{tolerance:g} instead: {_pairs_text(used_tol, multiples)}.")
-    if passed:
-        return f"Passed: {rule}; all {total} do.{tol_text}"
-    text = f"Failed: {rule}; {int((~within).sum())} of {total} do not."
+    n_fail = int((~within).sum())
+    details = ""
     if (~finite).any():
-        text += (f" {int((~finite).sum())} pair(s) could not be estimated because their start set has no state "
-                 f"left in the connected set at that lag: {_pairs_text(~finite, multiples)}.")
-    miss = np.where(~within & finite, outside_by, -1.0)
+        details += (f" {int((~finite).sum())} pair(s) could not be estimated because their start set has no "
+                    f"state left in the connected set at that lag: {_pairs_text(~finite, multiples)}.")
+    miss = np.where(~within & finite, judged["outside_by"], -1.0)
     if miss.max() >= 0:
         k, a, b = np.unravel_index(int(np.argmax(miss)), miss.shape)
         if used_tol[k, a, b]:
-            ref = f"beyond the tolerance {tolerance:g}"
+            ref = f"{miss[k, a, b]:.2g} beyond the tolerance {tolerance:g}"
         else:
-            ref = f"outside the interval [{lower[k, a, b]:.3g}, {upper[k, a, b]:.3g}]"
-        text += (f" Furthest off: set {a} -> set {b} at k = {k + 1} ({(k + 1) * model.lag_time:g} {model.unit}): "
-                 f"predicted {pred[k, a, b]:.3g}, estimated {est[k, a, b]:.3g}, {miss[k, a, b]:.2g} {ref}; the "
-                 f"largest difference is {np.nanmax(np.abs(pred - est)):.2g}.")
+            ref = (f"{dev[k, a, b]:+.2f} standard errors off (pointwise interval [{lower[k, a, b]:.3g}, "
+                   f"{upper[k, a, b]:.3g}])")
+        details += (f" Furthest off: set {a} -> set {b} at k = {k + 1} ({(k + 1) * model.lag_time:g} "
+                    f"{model.unit}): predicted {pred[k, a, b]:.3g}, estimated {est[k, a, b]:.3g}, {ref}; the "
+                    f"largest difference is {np.nanmax(np.abs(pred - est)):.2g}.")
+    if verdict == "inconclusive":
+        found = "none fails" if n_fail == 0 else f"{n_fail} of {total} fail"
+        return (f"Inconclusive: at the model's lag the data change between the tested sets only "
+                f"{support['set_changes']:.3g} time(s) and cross between the two sides of the slowest process "
+                f"{support['crossings']:.3g} time(s); with fewer than {FEW_CROSSINGS} the intervals, and so this "
+                f"test, have no support whatever the comparison shows. By the rule ({rule}) {found}."
+                f"{details}{spread_text}{tol_text} Collect more or longer runs before trusting this model.")
+    if verdict == "passed":
+        return f"Passed: {rule}; all {total} pass.{spread_text}{tol_text}"
+    text = f"Failed: {rule}; {n_fail} of {total} do not.{details}"
+    text += spread_text
     text += (" A model that fails is not Markovian at this lag on these sets: try a longer lag, finer "
              "microstates, or other coordinates.")
     return text + tol_text

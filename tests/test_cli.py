@@ -39,6 +39,7 @@ def test_demo_writes_every_output(demo_output):
     assert model.extras["affinity"].shape == (model.n_states, 3)
     summary = (demo_output / "summary.txt").read_text()
     assert "Chapman-Kolmogorov test" in summary and "macrostates (PCCA+): 3" in summary
+    assert "computed at lag resolution" in summary  # the passage times say how coarse they are
 
 
 def test_demo_recovers_the_slow_process_of_the_three_basins(demo_output):

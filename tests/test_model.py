@@ -307,9 +307,42 @@ def test_dropped_state_reported_with_its_share_and_warned():
 
 
 def test_few_transitions_warned_by_label():
+    # counted by hand: the run leaves 5 once (5 -> 8) and 8 once (8 -> 5); staying does not count
     run = np.array([5, 5, 5, 5, 5, 5, 5, 5, 5, 5, 5, 5, 8, 8, 5, 5, 5, 5, 5, 5, 5, 5, 5, 5, 5])
-    with pytest.warns(DiagnosticWarning, match=r"1 state\(s\) have fewer than 10 transitions out of them \(states 8\)"):
+    with pytest.warns(DiagnosticWarning, match=r"2 state\(s\) are left for another state fewer than 10 times "
+                                               r"\(states 5, 8;"):
         build_model(run, 1)
+
+
+def test_state_changes_count_only_changes_between_distinct_states():
+    # the crossings of the slow process are the counts between the two sign sides of its eigenvector
+    run = np.array([0, 0, 0, 1, 1, 0, 2, 2, 2, 2, 1, 1, 0])
+    model = quiet(build_model, run, 1)
+    per_state, crossings = model.state_changes()
+    # by hand: 0->1, 0->2 (0 left twice); 1->0, 1->0 (twice); 2->1 (once)
+    np.testing.assert_array_equal(per_state, [2, 2, 1])
+    C = model.transition_counts.toarray()
+    side = np.real(model.modes(2)[:, 1]) > 0
+    assert crossings == C[np.ix_(side, ~side)].sum() + C[np.ix_(~side, side)].sum()
+    # sliding windows at lag 2 see each change about twice: divided by the lag
+    lag2 = quiet(build_model, run, 2)
+    C2 = lag2.transition_counts.toarray()
+    np.testing.assert_allclose(lag2.state_changes()[0], (C2.sum(axis=1) - np.diag(C2)) / 2)
+    assert MarkovModel.from_transition_matrix([[0.9, 0.1], [0.2, 0.8]]).state_changes() == (None, None)
+
+
+def test_model_on_three_state_changes_says_the_sampling_cannot_support_it():
+    # 200 frames, 3 changes: plenty of self-transitions (the old rule saw no problem), but the
+    # slow process is crossed 3 times only (counted by hand)
+    run = np.repeat([0, 1, 0, 1], 50)
+    model = quiet(build_model, run, 1)
+    assert np.asarray(model.transition_counts.sum(axis=1)).ravel().min() >= 10  # what the old rule counted
+    per_state, crossings = model.state_changes()
+    np.testing.assert_array_equal(per_state, [2, 1])
+    assert crossings == 3
+    line = next(d for d in model.diagnostics if d.startswith("The sampling cannot support this model"))
+    assert "only 3 time(s)" in line and "Chapman-Kolmogorov" in line
+    assert any("2 state(s) are left for another state fewer than 10 times" in d for d in model.diagnostics)
 
 
 def test_nonreversible_cyclic_data_flags_complex_eigenvalues(sample_chain):
@@ -471,3 +504,27 @@ def test_splitting_probability_backward_in_time_on_a_model():
     forward = model.splitting_probability([0], [3])
     backward = model.splitting_probability([0], [3], reverse_time=True)
     np.testing.assert_allclose(backward, 1 - forward, atol=1e-12)
+
+
+def test_passage_times_are_said_to_be_at_lag_resolution(sample_chain, reversible_chain):
+    # The model at lag tau of a Markov chain is T^tau (Chapman-Kolmogorov, common practice): its
+    # first-passage time 0 -> 2 only sees multiples of tau and comes out longer than the exact
+    # one of T at lag 1 (numpy.linalg.solve of (I - T_cc) m = 1, Kemeny & Snell 1960).
+    T = reversible_chain
+    exact = np.linalg.solve(np.eye(2) - T[:2, :2], np.ones(2))[0]
+    coarse = MarkovModel.from_transition_matrix(np.linalg.matrix_power(T, 20), dt=20.0)
+    assert coarse.passage_time([0], [2]) > exact + 10  # more than half a lag too long
+    for doc in (mk.mean_passage_time.__doc__, mk.passage_time_matrix.__doc__, MarkovModel.passage_time.__doc__):
+        assert "lag resolution" in doc
+    # the table says it in its caption, with the resolution
+    runs = sample_chain(T, 2000, n_runs=10, seed=8)
+    model = quiet(build_model, runs, 4, dt=0.5, unit="ns")
+    table = model.find_macrostates(2).passage_time_table()
+    assert table.attrs["resolution"] == 2.0 and table.attrs["unit"] == "ns"
+    assert "computed at lag resolution (2 ns)" in table.attrs["caption"]
+    # and the diagnostics say it when the lag is not small against the slowest timescale
+    slowest = model.relaxation_times(1)[0]
+    coarse_lag = int(np.ceil(0.15 * slowest / 0.5))
+    far = quiet(build_model, runs, coarse_lag, dt=0.5, unit="ns")
+    assert any("computed at lag resolution" in d for d in far.diagnostics)
+    assert not any("lag resolution" in d for d in quiet(build_model, runs, 1, dt=0.5, unit="ns").diagnostics)

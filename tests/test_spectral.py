@@ -200,11 +200,11 @@ def test_timescale_shorter_than_lag_flagged():
 
 
 def test_few_count_states_flagged_by_label():
-    rows = np.array([500, FEW_COUNTS - 1, 200, 0])
-    found = chain_diagnostics(np.array([1.0, 0.9, 0.5, 0.3]), lag=1, dt=1.0, unit="ns", row_counts=rows,
+    changes = np.array([500, FEW_COUNTS - 1, 200, 0])
+    found = chain_diagnostics(np.array([1.0, 0.9, 0.5, 0.3]), lag=1, dt=1.0, unit="ns", changes=changes,
                               states=np.array([3, 7, 42, 50]))
     line = next(line for line in found if "fewer than" in line)
-    assert "2 state(s)" in line and "states 7, 50" in line
+    assert "2 state(s)" in line and "states 7, 50" in line and "staying in a state does not count" in line
 
 
 def test_dropped_states_reported_with_share():
@@ -217,7 +217,7 @@ def test_dropped_states_reported_with_share():
 def test_clean_chain_has_no_findings():
     X = np.array([[900.0, 30, 2], [30, 500, 25], [2, 25, 400]])
     T = X / X.sum(axis=1, keepdims=True)
-    assert _diag(T, row_counts=np.array([1000, 1000, 1000])) == []
+    assert _diag(T, changes=np.array([1000, 1000, 1000]), crossings=1000.0) == []
 
 
 def test_leading_eigenvalues_of_a_large_chain_match_the_dense_solver():
