@@ -61,10 +61,9 @@ NPY_SUFFIXES = (".npy",)
 NPZ_SUFFIXES = (".npz",)
 TEXT_SUFFIXES = {".csv": ",", ".tsv": "\t"}
 HDF5_SUFFIXES = (".h5", ".hdf5", ".hdf")
-MD_SUFFIXES = (".xtc", ".trr", ".dcd", ".pdb", ".nc", ".netcdf", ".gro", ".xyz", ".lammpstrj",
+MD_SUFFIXES = (".xtc", ".trr", ".dcd", ".pdb", ".nc", ".ncdf", ".netcdf", ".gro", ".xyz", ".lammpstrj",
                ".binpos", ".mdcrd", ".crd", ".arc", ".dtr", ".lh5")
 _GLOB_CHARS = set("*?[")
-_MD_TORSIONS = ("phi", "psi", "omega", "chi1", "chi2", "chi3", "chi4")
 
 
 def _supported() -> str:
@@ -360,6 +359,9 @@ class TrajectorySet(Sequence):
         Time between frames, if known (physical units, see ``unit``).
     unit : str, optional
         Time unit of ``dt`` (e.g. ``"ns"``).
+    feature_atoms : sequence of tuple of int, optional
+        For features computed from coordinates: the atom indices (0-based, topology order)
+        each feature is computed from.
 
     Attributes
     ----------
@@ -368,9 +370,11 @@ class TrajectorySet(Sequence):
     n_frames : ndarray of int64, frames per run
     total_frames : int
     sources : tuple of str or None, the file each run came from (None for in-memory arrays)
+    feature_atoms : tuple of tuple of int, or None
     """
 
-    def __init__(self, runs, feature_names=None, *, dt=None, unit=None, sources=None):
+    def __init__(self, runs, feature_names=None, *, dt=None, unit=None, sources=None,
+                 feature_atoms=None):
         if feature_names is None:
             feature_names = feature_names_of(runs)
         checked = as_float_trajectories(runs, "runs")
@@ -385,6 +389,12 @@ class TrajectorySet(Sequence):
                               else _check_names(feature_names, n_features, "the runs"))
         self.dt = None if dt is None else check_dt(dt)
         self.unit = None if unit is None else check_unit(unit)
+        if feature_atoms is not None:
+            feature_atoms = tuple(tuple(int(i) for i in a) for a in feature_atoms)
+            if len(feature_atoms) != n_features:
+                raise InputError(f"feature_atoms has {len(feature_atoms)} entries for "
+                                 f"{n_features} features; give one tuple of atoms per feature")
+        self.feature_atoms = feature_atoms
 
     @property
     def n_features(self) -> int:
@@ -412,7 +422,7 @@ class TrajectorySet(Sequence):
     def __getitem__(self, index):
         if isinstance(index, slice):
             return TrajectorySet(self._runs[index], self.feature_names, dt=self.dt, unit=self.unit,
-                                 sources=self._sources[index])
+                                 sources=self._sources[index], feature_atoms=self.feature_atoms)
         return self._runs[index]
 
     def __repr__(self) -> str:
@@ -426,7 +436,8 @@ class TrajectorySet(Sequence):
     def in_memory(self) -> "TrajectorySet":
         """The same runs with every lazy run read into memory."""
         return TrajectorySet([np.asarray(r) for r in self._runs], self.feature_names,
-                             dt=self.dt, unit=self.unit, sources=self._sources)
+                             dt=self.dt, unit=self.unit, sources=self._sources,
+                             feature_atoms=self.feature_atoms)
 
     def check_values(self, chunk_size: int | None = None, *, client=None) -> "TrajectorySet":
         """Read every lazy run once, raising InputError at the first NaN/infinite frame.
@@ -635,75 +646,33 @@ def _h5_datasets(fh, h5py) -> list[str]:
     return found
 
 
-def _residue_label(topology, atom_index: int) -> str:
-    return str(topology.atom(int(atom_index)).residue)
+def _md_spec(features, torsions, atom_pairs, periodic, selection):
+    from .mdfeatures import MDFeatures
+
+    if isinstance(features, MDFeatures):
+        return features
+    if features is None:
+        torsions = () if torsions is None else torsions
+        return MDFeatures(kinds=(), torsions=torsions, atom_pairs=atom_pairs, periodic=periodic,
+                          selection=selection)
+    return MDFeatures(kinds=features, atom_pairs=atom_pairs, periodic=periodic,
+                      selection=selection)
 
 
 def _read_md(path: str, *, topology=None, torsions=("phi", "psi"), atom_pairs=None,
-             md_chunk: int = 10_000, **_):
-    md = require_optional("mdtraj", "md", "Reading molecular-dynamics trajectory files")
+             features=None, periodic="whole", selection=None, frames=None, details=None, **_):
+    """MD file -> features; fills ``details`` (if a dict) with each feature's atom indices
+    and the time between frames (ps) found in the file."""
+    from .mdfeatures import read_md_features
+
+    require_optional("mdtraj", "md", "Reading molecular-dynamics trajectory files")
     _check_not_empty(path)
-    suffix = Path(path).suffix.lower()
-    torsions = () if torsions is None else ((torsions,) if isinstance(torsions, str)
-                                           else tuple(torsions))
-    for kind in torsions:
-        if kind not in _MD_TORSIONS:
-            raise InputError(f"torsions: unknown torsion {kind!r}; choose from {_MD_TORSIONS}")
-    if not torsions and atom_pairs is None:
-        raise InputError("torsions=() and atom_pairs=None leave no features to compute; give "
-                         "backbone torsions, atom pairs, or both")
-    kwargs = {}
-    if topology is not None:
-        kwargs["top"] = str(topology)
-    elif suffix not in (".pdb", ".gro", ".lh5", ".arc"):
-        raise InputError(f"topology is required to read {path}: {suffix} files hold coordinates "
-                         f"only; pass topology='system.pdb' (or another structure file)")
-    pairs = None
-    blocks: list[list[np.ndarray]] = []
-    names: list[str] | None = None
-    try:
-        for chunk in md.iterload(path, chunk=md_chunk, **kwargs):
-            top = chunk.topology
-            if names is None:
-                names, plan = [], []
-                for kind in torsions:
-                    indices, _ = getattr(md, f"compute_{kind}")(chunk[:1])
-                    for quad in indices:
-                        label = f"{kind} {_residue_label(top, quad[1])}"
-                        names += [f"sin({label})", f"cos({label})"]
-                    plan.append(kind)
-                if atom_pairs is not None:
-                    pairs = np.asarray(atom_pairs)
-                    if pairs.ndim != 2 or pairs.shape[1] != 2 or pairs.dtype.kind not in "iu":
-                        raise InputError(f"atom_pairs must be an (n, 2) array of atom indices, "
-                                         f"but got {_short(atom_pairs)}")
-                    if pairs.size and (pairs.min() < 0 or pairs.max() >= top.n_atoms):
-                        raise InputError(f"atom_pairs holds atom indices outside 0..{top.n_atoms - 1} "
-                                         f"(the topology has {top.n_atoms} atoms)")
-                    names += [f"d({top.atom(int(a))}, {top.atom(int(b))})" for a, b in pairs]
-                if not names:
-                    raise InputError(f"{path}: the topology has no {'/'.join(torsions)} torsions "
-                                     f"(no protein backbone?); give atom_pairs= instead")
-            cols = []
-            for kind in torsions:
-                _, angles = getattr(md, f"compute_{kind}")(chunk)
-                sc = np.empty((angles.shape[0], 2 * angles.shape[1]))
-                sc[:, 0::2] = np.sin(angles)
-                sc[:, 1::2] = np.cos(angles)
-                cols.append(sc)
-            if pairs is not None:
-                cols.append(np.asarray(md.compute_distances(chunk, pairs, periodic=True),
-                                       dtype=np.float64))
-            blocks.append(np.hstack(cols) if cols else np.empty((chunk.n_frames, 0)))
-    except InputError:
-        raise
-    except Exception as err:  # mdtraj raises many types for unreadable files
-        raise InputError(f"cannot read {path} with mdtraj: {err}") from None
-    if not blocks:
-        raise InputError(f"{path} holds no frames")
-    arr = np.vstack(blocks)
+    spec = _md_spec(features, torsions, atom_pairs, periodic, selection)
+    arr, names, atoms, dt = read_md_features(path, spec, topology=topology, frames=frames)
     _check_shape(arr.shape, path, "the features")
     check_finite_frames(arr, path, 0, names)
+    if details is not None:
+        details.update(feature_atoms=tuple(tuple(a) for a in atoms), dt=dt, unit="ps")
     return [arr], names
 
 
@@ -747,7 +716,8 @@ def _is_path(item) -> bool:
 
 
 def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=None,
-                      topology=None, torsions=("phi", "psi"), atom_pairs=None,
+                      topology=None, torsions=("phi", "psi"), atom_pairs=None, features=None,
+                      periodic="whole", selection=None, frames=None,
                       progress: bool = False, client=None) -> TrajectorySet:
     """Read trajectories (frames x features) into a :class:`TrajectorySet`.
 
@@ -763,13 +733,25 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
         HDF5 dataset path(s) to read; by default every 2-D numeric dataset.
     dt : float, optional
         Time between frames, stored on the result; ``unit`` is the time unit (e.g. ``"ns"``).
+        MD files that record it (DCD, XTC, TRR, NetCDF) give it in ps when ``dt`` is not given.
     topology : path, optional
         Structure file (e.g. ``.pdb``) for MD formats that hold coordinates only (xtc, dcd, ...).
     torsions : sequence of str
         MD formats: backbone/side-chain torsions to use as sin/cos features ("phi", "psi",
         "omega", "chi1".."chi4"); ``()`` for none.
     atom_pairs : (n, 2) int array, optional
-        MD formats: atom index pairs whose distances (nm, minimum image) become features.
+        MD formats: atom index pairs whose distances (nm) become features.
+    features : str, sequence of str or MDFeatures, optional
+        MD formats: feature kinds (``"backbone-torsions"``, ``"sidechain-torsions"``,
+        ``"ca-distances"``, ``"distances"``, ``"inverse-distances"``, ``"contacts"``) in
+        place of ``torsions``; see :class:`msmkit.mdfeatures.MDFeatures`.
+    periodic : {"whole", "minimum-image", "none"}
+        MD formats: distances in a periodic box (see :class:`~msmkit.mdfeatures.MDFeatures`).
+    selection : str, optional
+        MD formats: mdtraj atom selection the features are limited to.
+    frames : slice, optional
+        MD formats: frame range and step read from each file, e.g. ``slice(0, 5000, 10)``.
+        Coordinates are read in bounded chunks, only the atoms the features need.
     progress : bool
         Show a progress bar while reading many files.
     client : dask.distributed.Client, optional
@@ -802,7 +784,8 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
     if isinstance(source, TrajectorySet):
         names = source.feature_names if feature_names is None else feature_names
         return TrajectorySet(source.runs, names, dt=source.dt if dt is None else dt,
-                             unit=source.unit if unit is None else unit, sources=source.sources)
+                             unit=source.unit if unit is None else unit, sources=source.sources,
+                             feature_atoms=source.feature_atoms)
     if source is None:
         raise InputError("source must be a path, a glob pattern, an array or a list of them, "
                          "but got None")
@@ -835,7 +818,8 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
     if client is not None and n_files:
         from . import distributed as _dist
 
-        options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs)
+        options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs,
+                       features=features, periodic=periodic, selection=selection, frames=frames)
         read_remotely = _dist.read_files(client, [p for p, _ in plan if p is not None], options,
                                          progress=progress)
         progress = False
@@ -849,14 +833,19 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
     names = None
     names_from = None
     in_memory_names = feature_names_of(source) if not _is_path(source) else None
-    options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs)
+    options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs,
+                   features=features, periodic=periodic, selection=selection, frames=frames)
+    md_details = []
     for path, what in iterator:
         if path is None:
             runs.append(what)
             sources.append(None)
             continue
-        file_runs, file_names = (what(path, **options) if read_remotely is None
-                                 else read_remotely[path])
+        details = {}
+        file_runs, file_names = (what(path, details=details, **options)
+                                 if read_remotely is None else read_remotely[path])
+        if details:
+            md_details.append((path, details))
         if file_names is not None:
             file_names = tuple(file_names)
             if names is None:
@@ -878,4 +867,29 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
         sources.extend([path] * len(file_runs))
     if feature_names is None:
         feature_names = names if names is not None else in_memory_names
-    return TrajectorySet(runs, feature_names, dt=dt, unit=unit, sources=sources)
+    feature_atoms = None
+    if md_details and len(md_details) == len(runs):
+        feature_atoms = md_details[0][1]["feature_atoms"]
+        if dt is None:
+            dt, unit = _md_time_step(md_details, unit)
+    return TrajectorySet(runs, feature_names, dt=dt, unit=unit, sources=sources,
+                         feature_atoms=feature_atoms)
+
+
+def _md_time_step(md_details, unit):
+    """The time between frames that every MD file agrees on (ps), or None with a warning."""
+    import warnings
+
+    from .errors import DiagnosticWarning
+
+    steps = {path: d["dt"] for path, d in md_details}
+    known = [v for v in steps.values() if v is not None]
+    if unit not in (None, "ps"):
+        return None, unit  # the files give ps; the caller asked for another unit without dt
+    if len(known) == len(steps) and np.allclose(known, known[0], rtol=1e-4):
+        return float(known[0]), "ps"
+    if known:
+        warnings.warn(f"the MD files do not agree on the time between frames "
+                      f"({_short(steps, 200)} ps); pass dt= (and unit=) to set it",
+                      DiagnosticWarning, stacklevel=3)
+    return None, unit
