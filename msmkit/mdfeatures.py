@@ -619,8 +619,7 @@ def read_md_features(path, spec: MDFeatures, *, topology=None, frames=None,
     try:
         top = md.load_topology(topology_path)
     except Exception as err:  # mdtraj raises many types for unreadable files
-        raise InputError(f"cannot read the topology {topology_path}: the file is truncated or "
-                         f"corrupt, or not a structure file ({type(err).__name__}: {err})") from None
+        raise _md_error(topology_path, err, "or is not a structure file") from None
     if index is not None and index.n_atoms != top.n_atoms:
         raise InputError(f"{path} has {index.n_atoms} atoms per frame but the topology "
                          f"{topology_path} has {top.n_atoms}; give the topology of this system")
@@ -691,6 +690,7 @@ def _time_step(first, path, md, kwargs):
     return dt if dt > 0 else None
 
 
-def _md_error(path, err) -> InputError:
-    return InputError(f"cannot read {path}: the file is truncated or corrupt, or does not "
-                      f"match the topology ({type(err).__name__}: {err})")
+def _md_error(path, err, alternative="or does not match the topology") -> InputError:
+    # a parser's own IndexError/TypeError text ("string index out of range") says nothing
+    why = f" ({err})" if isinstance(err, (OSError, RuntimeError)) or type(err) is ValueError else ""
+    return InputError(f"cannot read {path}: the file is truncated or corrupt, {alternative}{why}")
