@@ -1,6 +1,6 @@
 """Reading real MD files: the files MDAnalysisTests ships, MDAnalysis as the independent reference.
 
-Every comparison is frame by frame against MDAnalysis (its own readers and
+Every comparison is frame by frame against MDAnalysis (the readers of MDAnalysis and
 MDAnalysis.lib.distances), never against mdtraj, which msmkit uses to read the files.
 """
 from __future__ import annotations
@@ -29,7 +29,7 @@ def _universe(*files):
 
 
 def _copy(src, tmp_path, name=None, keep=None, garble=None):
-    """A copy of a shipped file: cut to ``keep`` of its bytes, or with ``garble`` = (offset,
+    """A copy of a shipped file: cut to ``keep`` of the bytes, or with ``garble`` = (offset,
     n) bytes replaced by seeded random bytes."""
     raw = bytearray(open(src, "rb").read())
     if keep is not None:
