@@ -643,6 +643,11 @@ def read_md_features(path, spec: MDFeatures, *, topology=None, frames=None,
     local[plan.read_atoms] = np.arange(len(plan.read_atoms))
     per_chunk = max(1, int(chunk_bytes) // (12 * top.n_atoms))
     wanted = None if frames.stop is None else len(range(frames.start, frames.stop, frames.step))
+    expected = None if index is None else len(range(
+        frames.start, index.n_frames if frames.stop is None else min(frames.stop, index.n_frames),
+        frames.step))
+    # filled in place when the file's structure gives the frame count (no second copy)
+    out = None if expected is None else np.empty((expected, len(plan.names)))
     blocks, warned, n_read = [], set(), 0
     try:
         if text:
@@ -658,7 +663,14 @@ def read_md_features(path, spec: MDFeatures, *, topology=None, frames=None,
             if not np.isfinite(chunk.xyz).all() or np.abs(chunk.xyz).max() > 1e5:
                 raise _corrupt(path, f"frames {frames.start + n_read * frames.step} onwards "
                                      f"hold non-numbers or coordinates beyond 100,000 nm")
-            blocks.append(_compute(md, chunk, plan, spec, local, path, warned))
+            block = _compute(md, chunk, plan, spec, local, path, warned)
+            if out is None:
+                blocks.append(block)
+            elif n_read + len(block) > expected:
+                raise _corrupt(path, f"mdtraj read more frames than the {expected} the file "
+                                     f"holds")
+            else:
+                out[n_read:n_read + len(block)] = block
             n_read += chunk.n_frames
             if wanted is not None and n_read >= wanted:
                 break
@@ -666,16 +678,14 @@ def read_md_features(path, spec: MDFeatures, *, topology=None, frames=None,
         raise
     except Exception as err:
         raise _md_error(path, err) from None
-    if index is not None:
-        expected = len(range(frames.start, index.n_frames if frames.stop is None
-                             else min(frames.stop, index.n_frames), frames.step))
-        if n_read != expected:
-            raise _corrupt(path, f"mdtraj read {n_read} of the {expected} frames the file holds")
-    if not blocks:
+    if expected is not None and n_read != expected:
+        raise _corrupt(path, f"mdtraj read {n_read} of the {expected} frames the file holds")
+    if not n_read:
         raise InputError(f"{path} holds no frames in the range {frames.start}:"
                          f"{'' if frames.stop is None else frames.stop}:{frames.step}")
     dt = index.dt if index is not None else _time_step(first, path, md, kwargs)
-    return np.vstack(blocks), plan.names, plan.atoms, None if dt is None else dt * frames.step
+    features = out if out is not None else np.vstack(blocks)
+    return features, plan.names, plan.atoms, None if dt is None else dt * frames.step
 
 
 def _time_step(first, path, md, kwargs):
