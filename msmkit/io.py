@@ -35,6 +35,7 @@ meets it (``TrajectorySet.check_values()`` reads everything once to check up fro
 from __future__ import annotations
 
 import glob as _glob
+import importlib.util
 import os
 from collections.abc import Sequence
 from pathlib import Path
@@ -605,13 +606,30 @@ def _read_text(path: str, **_):
     return [arr], names
 
 
-def _read_hdf5(path: str, *, key=None, **_):
+def _is_md_hdf5(fh) -> bool:
+    """mdtraj's HDF5 trajectory layout: 3-D coordinates plus a topology, not features."""
+    return ("coordinates" in fh and getattr(fh["coordinates"], "ndim", 0) == 3
+            and "topology" in fh)
+
+
+def _read_hdf5(path: str, *, key=None, **md_options):
     h5py = require_optional("h5py", "hdf5", "Reading HDF5 files")
     _check_not_empty(path)
     try:
         fh = h5py.File(path, "r")
     except OSError as err:
         raise InputError(f"{path} is not a readable HDF5 file ({err})") from None
+    if key is None and _is_md_hdf5(fh):
+        fh.close()
+        if md_options.get("topology") is not None:
+            raise InputError(f"topology: {path} is an MD trajectory that carries a topology "
+                             f"inside; leave the topology out (load it apart from files that "
+                             f"need one)")
+        if importlib.util.find_spec("tables") is None:
+            raise ImportError(f"{path} is an mdtraj HDF5 trajectory (coordinates and a "
+                              f"topology, not features); mdtraj reads it with PyTables: "
+                              f"pip install tables")
+        return _read_md(path, **md_options)
     with fh:
         if key is None:
             keys = []
@@ -688,6 +706,8 @@ def _reader_for(path: str):
         return _read_hdf5
     if suffix in MD_SUFFIXES:
         return _read_md
+    if suffix in (".gz", ".bz2", ".xz") and Path(path[:-len(suffix)]).suffix.lower() in MD_SUFFIXES:
+        return _read_md  # decompressed to a temporary file while reading
     raise InputError(f"{path}: unknown file type {suffix or '(no extension)'!r}; supported: "
                      f"{_supported()}")
 

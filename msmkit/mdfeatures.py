@@ -18,8 +18,11 @@ mdtraj reads the files; it is an optional extra (``msmkit[md]``).
 """
 from __future__ import annotations
 
+import contextlib
 import os
+import shutil
 import struct
+import tempfile
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -582,8 +585,64 @@ def _check_frames(frames) -> slice:
     return slice(frames.start or 0, frames.stop, frames.step or 1)
 
 
+COMPRESSED_SUFFIXES = {".gz": "gzip", ".bz2": "bz2", ".xz": "lzma"}
+
+
+@contextlib.contextmanager
+def _decompressed(path):
+    """A plain copy of a .gz/.bz2/.xz file in a temporary folder (streamed, so memory stays
+    small), keeping the inner extension that names the format; other paths pass through."""
+    if path is None or Path(path).suffix.lower() not in COMPRESSED_SUFFIXES:
+        yield None if path is None else os.fspath(path)
+        return
+    import importlib
+
+    module = importlib.import_module(COMPRESSED_SUFFIXES[Path(path).suffix.lower()])
+    with tempfile.TemporaryDirectory(prefix="msmkit-") as tmp:
+        plain = os.path.join(tmp, Path(path).stem)
+        try:
+            with module.open(path, "rb") as src, open(plain, "wb") as dst:
+                shutil.copyfileobj(src, dst, 1 << 20)
+        except (OSError, EOFError, ValueError) as err:
+            raise InputError(f"{path} is truncated or corrupt: it cannot be decompressed "
+                             f"({err})") from None
+        yield plain
+
+
+def _refuse_charmm_crd(path):
+    if path is None or Path(path).suffix.lower() != ".crd":
+        return
+    with open(path, errors="replace") as fh:
+        first = fh.readline()
+    if first.startswith("*"):
+        raise InputError(f"{path} is a CHARMM coordinate (.crd) file, which is not read here; "
+                         f"write the structure as .pdb (or give the .psf as the topology of a "
+                         f".dcd trajectory)")
+
+
 def read_md_features(path, spec: MDFeatures, *, topology=None, frames=None,
                      chunk_bytes: int = _CHUNK_BYTES):
+    """Read one MD trajectory in chunks of frames and compute the features of every frame.
+
+    Compressed files (``.gz``, ``.bz2``, ``.xz``; trajectory or topology) are decompressed to a
+    temporary file first. Parameters and returns as :func:`_read_plain`.
+    """
+    for p in (path, topology):
+        _refuse_charmm_crd(p)
+    with _decompressed(path) as plain, _decompressed(topology) as plain_top:
+        try:
+            return _read_plain(plain, spec, topology=plain_top, frames=frames,
+                               chunk_bytes=chunk_bytes)
+        except InputError as err:
+            text = str(err)
+            for tmp, original in ((plain, path), (plain_top, topology)):
+                if tmp is not None and tmp != os.fspath(original):
+                    text = text.replace(tmp, os.fspath(original))
+            raise InputError(text) from None
+
+
+def _read_plain(path, spec: MDFeatures, *, topology=None, frames=None,
+                chunk_bytes: int = _CHUNK_BYTES):
     """Read one MD trajectory in chunks of frames and compute the features of every frame.
 
     Parameters

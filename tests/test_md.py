@@ -303,3 +303,40 @@ def test_cli_scan_and_build_use_the_same_tica_lag(tmp_path):
     model = load_model(tmp_path / "m.npz")
     built = model.relaxation_times(model.n_states - 1)
     assert np.allclose(built, scanned[:len(built)], rtol=1e-6)
+
+
+# ---------------------------------------------------------------------------------------------
+# Defect 4: formats that were refused or misrouted
+# ---------------------------------------------------------------------------------------------
+
+def test_compressed_trajectory_and_topology_are_read():
+    # tz2.truncoct.parm7.bz2 + tz2.truncoct.nc; YiiP_lipids.gro.gz (shipped compressed)
+    u = _universe(data.PRM7, data.NCDFtruncoct)
+    trajs = _quiet_load(data.NCDFtruncoct, topology=data.PRM7)
+    cols, _, ref = _torsion_reference(u, trajs, "phi")
+    assert np.allclose(np.asarray(trajs[0])[:, cols], np.sin(ref), atol=2e-5)
+    dimer = _quiet_load(data.GRO_MEMPROT)
+    assert dimer.sources == (data.GRO_MEMPROT,) and "sin(phi B:ASP8)" in dimer.feature_names
+
+
+def test_charmm_crd_is_refused_with_advice():
+    with pytest.raises(InputError, match="CHARMM coordinate"):
+        load_trajectories(data.CRD)
+
+
+def test_mdtraj_layout_hdf5_is_not_read_as_features(tmp_path):
+    h5py = pytest.importorskip("h5py")
+    u = _universe(data.PSF, data.DCD)
+    path = tmp_path / "adk.h5"
+    with h5py.File(path, "w") as fh:  # the layout mdtraj writes: nm, frames x atoms x 3
+        fh["coordinates"] = np.array([u.atoms.positions / 10 for _ in u.trajectory[:3]])
+        fh["cell_lengths"] = np.ones((3, 3), dtype=np.float32)
+        fh["topology"] = np.bytes_("{}")
+    try:
+        trajs = _quiet_load(path)
+    except ImportError as err:  # PyTables missing: said, not silently read as features
+        assert "mdtraj HDF5 trajectory" in str(err)
+    else:
+        assert "cell_lengths" not in " ".join(trajs.feature_names)
+    with pytest.raises((InputError, ImportError)):
+        _quiet_load(path, topology=data.PSF)
