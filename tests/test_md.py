@@ -340,3 +340,24 @@ def test_mdtraj_layout_hdf5_is_not_read_as_features(tmp_path):
         assert "cell_lengths" not in " ".join(trajs.feature_names)
     with pytest.raises((InputError, ImportError)):
         _quiet_load(path, topology=data.PSF)
+
+
+# ---------------------------------------------------------------------------------------------
+# Defect 7: TICA on more features than frames
+# ---------------------------------------------------------------------------------------------
+
+def test_tica_says_more_features_than_frames():
+    from msmkit.reduce import TICA
+
+    # adk_dims.dcd + adk_dims2.dcd: 852 torsion features, about 200 frames (MDAnalysis counts)
+    n = sum(_universe(data.PSF, f).trajectory.n_frames for f in (data.DCD, data.DCD2))
+    trajs = _quiet_load([data.DCD, data.DCD2], topology=data.PSF)
+    assert trajs.total_frames == n < trajs.n_features
+    with pytest.warns(DiagnosticWarning, match="more features than frames"):
+        TICA(1, dim=2).fit(trajs)
+    few = _quiet_load([data.DCD, data.DCD2], topology=data.PSF,
+                      selection="resid 1 to 20")  # 76 features < frames
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        TICA(1, dim=2).fit(few)
+    assert not any("more features than frames" in str(w.message) for w in caught)
