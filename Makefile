@@ -25,7 +25,7 @@ bench: install
 	$(BIN)/python bench/run_all.py
 
 demo: install
-	$(BIN)/msmkit demo --out demo_output
+	$(BIN)/msmkit demo -o demo_output
 
 clean:
 	rm -rf $(VENV) demo_output .pytest_cache

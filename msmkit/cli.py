@@ -2,7 +2,7 @@
 
 Sub-commands::
 
-    msmkit demo  --out DIR                      the whole job on the demo scenario
+    msmkit demo  -o DIR                         the whole job on the demo scenario
     msmkit build FILES... --lag N --states K -o model.npz
     msmkit scan  FILES... --lags 1,2,5,10 --states K -o DIR
     msmkit info  model.npz
@@ -20,6 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .defaults import CK_MULTIPLES, PROCESSES
 from .errors import DiagnosticWarning, InputError, ModelFileError
 from .modelfile import atomic_write
 
@@ -119,7 +120,7 @@ class _Outputs:
 
     def write(self) -> list[Path]:
         if self.folder.exists() and not self.folder.is_dir():
-            raise InputError(f"--out {self.folder} exists and is not a folder")
+            raise InputError(f"--output {self.folder} exists and is not a folder; give a folder name")
         self.folder.mkdir(parents=True, exist_ok=True)
         written = []
         for name, data in self.files.items():
@@ -178,7 +179,7 @@ def cmd_demo(args) -> int:
     lags = _parse_lags(args.lags)
     scan = _scan_and_choose(labels, args, lags, demo.DT, demo.UNIT)
     chosen = scan.suggested_lag if scan.suggested_lag is not None else int(scan.lags[len(scan.lags) // 2])
-    out = _Outputs(args.out)
+    out = _Outputs(args.output)
     model = _write_scan_outputs(out, scan, chosen)
     macro, reason, ck = _validate(model, labels, args, out)
     out.add_text("summary.txt", summary_text(model, scan, macro=macro, macro_reason=reason, ck=ck))
@@ -323,29 +324,30 @@ def build_parser() -> argparse.ArgumentParser:
                                  "default), nearest image, or ignore the box")
             sp.add_argument("--frames", metavar="START:STOP:STEP",
                             help="MD files: frame range and step read from each file, e.g. 0:5000:10")
-        sp.add_argument("--states", type=_positive_int, default=100, help="number of k-means microstates (default 100)")
+        sp.add_argument("--states", type=_positive_int, default=100, help="number of k-means microstates (default %(default)s)")
         sp.add_argument("--tica-dim", type=int, default=None,
-                        help="reduce to this many TICA coordinates before clustering (default: cluster the features)")
-        sp.add_argument("--tica-lag", type=_positive_int, default=None,
-                        help="TICA lag in frames (default 1, the same for build and scan)")
-        sp.add_argument("--stride", type=_positive_int, default=1, help="fit k-means on every STRIDE-th frame")
-        sp.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+                        help="reduce to this many TICA coordinates before clustering (default: %(default)s; none = cluster the features)")
+        sp.add_argument("--tica-lag", type=_positive_int, default=None, help="TICA lag in frames (default 1 frame, the same for build and scan)")
+        sp.add_argument("--stride", type=_positive_int, default=1, help="fit k-means on every STRIDE-th frame (default %(default)s)")
+        sp.add_argument("--seed", type=int, default=0, help="random seed (default %(default)s)")
         sp.add_argument("-q", "--quiet", action="store_true", help="no progress bars or messages")
 
-    def scanning(sp, default_lags):
+    def scanning(sp, default_lags, *, validates):
         sp.add_argument("--lags", default=default_lags, help=f"comma-separated lags in frames (default {default_lags})")
-        sp.add_argument("--samples", type=int, default=20, help="bootstrap samples per lag (default 20; 0 = none)")
-        sp.add_argument("--timescales", type=_positive_int, default=4, help="processes to follow (default 4)")
-        sp.add_argument("--multiples", type=_positive_int, default=4,
-                        help="Chapman-Kolmogorov test up to this multiple of the lag (default 4)")
+        sp.add_argument("--samples", type=int, default=20, help="bootstrap samples per lag (default %(default)s; 0 = none)")
+        sp.add_argument("--timescales", type=_positive_int, default=PROCESSES, help="slow processes to follow (default %(default)s)")
+        if not validates:
+            return
+        sp.add_argument("--multiples", type=_positive_int, default=CK_MULTIPLES,
+                        help="Chapman–Kolmogorov test up to this multiple of the lag (default %(default)s)")
 
     d = sub.add_parser("demo", help="run the whole job headless on the demo scenario",
                        description="Demo scenario -> TICA -> microstates -> lag scan -> chosen model; writes "
                                    "model.npz, implied_timescales.png/.csv, populations.png/.csv, summary.txt.")
-    d.add_argument("--out", required=True, help="output folder (created if missing)")
+    d.add_argument("-o", "--output", required=True, help="output folder (created if missing)")
     common(d, files=False)
     d.set_defaults(states=60, tica_dim=2, tica_lag=5, stride=2)
-    scanning(d, "1,2,5,10,20,40")
+    scanning(d, "1,2,5,10,20,40", validates=True)
     d.set_defaults(func=cmd_demo)
 
     b = sub.add_parser("build", help="build one model at a given lag",
@@ -361,7 +363,7 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Trajectory files -> (TICA) -> microstates -> lag scan; writes the plot, tables "
                                    "and a summary to the output folder.")
     common(s)
-    scanning(s, "1,2,5,10,20")
+    scanning(s, "1,2,5,10,20", validates=False)
     s.add_argument("-o", "--output", required=True, help="output folder")
     s.set_defaults(func=cmd_scan)
 

@@ -3,7 +3,7 @@
 Every function here works on plain arrays: a row-stochastic transition matrix ``T`` (one row
 per state of the kept set, one step = one lag time), the stationary distribution ``pi`` and
 sets of states given as *positions* (row indices) in ``T``. Results meant for people report
-states by their original label (the ``labels`` argument, default ``0..n-1``) and times in
+states by their original label (the ``states`` argument, default ``0..n-1``) and times in
 physical units (``time_per_step`` = lag x dt, in ``unit``).
 
 References
@@ -27,6 +27,7 @@ import scipy.linalg as la
 import scipy.sparse as sp
 
 from ._checks import as_transition_matrix
+from .defaults import ROUTE_SHARE
 from .errors import DiagnosticWarning, InputError
 
 __all__ = [
@@ -91,10 +92,10 @@ def _as_labels(labels, n: int) -> np.ndarray:
         return np.arange(n, dtype=np.int64)
     arr = np.asarray(labels)
     if arr.shape != (n,) or (arr.size and arr.dtype.kind not in "iu"):
-        raise InputError(f"labels must be {n} integer state labels (one per row of T), "
+        raise InputError(f"states must be {n} integer state labels (one per row of T), "
                          f"but got {_short(labels)}")
     if np.unique(arr).size != n:
-        raise InputError("labels must be distinct: each row of T is one state")
+        raise InputError("states must be distinct: each row of T is one state")
     return arr.astype(np.int64)
 
 
@@ -258,7 +259,7 @@ def hitting_steps(T, target) -> np.ndarray:
     return _mfpt_steps(T, _mask(T.shape[0], target))
 
 
-def mean_passage_time(T, pi, source, target, *, labels=None, time_per_step: float = 1.0) -> float:
+def mean_passage_time(T, pi, source, target, *, states=None, time_per_step: float = 1.0) -> float:
     """Mean first-passage time from a source set to a target set.
 
     The first-passage times of the source states are averaged with their stationary weights
@@ -272,7 +273,7 @@ def mean_passage_time(T, pi, source, target, *, labels=None, time_per_step: floa
         Stationary distribution of T (positive, sums to 1).
     source, target : int, sequence of int or boolean mask
         Positions (row indices) of the two disjoint, non-empty sets.
-    labels : array_like of int, shape (n,), optional
+    states : array_like of int, shape (n,), optional
         Original label of every row, used in error messages (default 0..n-1).
     time_per_step : float
         Physical duration of one step (lag x dt); the result is in the same unit. Default 1 (steps).
@@ -290,7 +291,7 @@ def mean_passage_time(T, pi, source, target, *, labels=None, time_per_step: floa
     T = _as_transition_matrix(T)
     n = T.shape[0]
     pi = _as_stationary(pi, T)
-    labels = _as_labels(labels, n)
+    labels = _as_labels(states, n)
     time_per_step, _ = _as_time_per_step(time_per_step, "step")
     source, target = _source_and_target(source, target, n, labels)
     m = _mfpt_steps(T, _mask(n, target))
@@ -298,7 +299,7 @@ def mean_passage_time(T, pi, source, target, *, labels=None, time_per_step: floa
     return float(time_per_step * (w @ m[source]) / w.sum())
 
 
-def passage_time_matrix(T, pi, sets, *, labels=None, time_per_step: float = 1.0) -> np.ndarray:
+def passage_time_matrix(T, pi, sets, *, states=None, time_per_step: float = 1.0) -> np.ndarray:
     """Mean first-passage times between every pair of disjoint sets (macrostates, say).
 
     Entry (a, b) is the mean first-passage time from set a (averaged with stationary weights
@@ -312,7 +313,7 @@ def passage_time_matrix(T, pi, sets, *, labels=None, time_per_step: float = 1.0)
         Stationary distribution of T.
     sets : sequence of (sequence of int or boolean mask)
         k pairwise disjoint, non-empty sets of row positions.
-    labels : array_like of int, shape (n,), optional
+    states : array_like of int, shape (n,), optional
         Original label of every row, used in error messages.
     time_per_step : float
         Physical duration of one step; the result is in the same unit. Default 1 (steps).
@@ -329,7 +330,7 @@ def passage_time_matrix(T, pi, sets, *, labels=None, time_per_step: float = 1.0)
     T = _as_transition_matrix(T)
     n = T.shape[0]
     pi = _as_stationary(pi, T)
-    labels = _as_labels(labels, n)
+    labels = _as_labels(states, n)
     time_per_step, _ = _as_time_per_step(time_per_step, "step")
     if isinstance(sets, np.ndarray) and sets.ndim == 1 and sets.dtype.kind in "iu":
         raise InputError("sets must be a list of sets of states (e.g. [[0, 1], [5]]), "
@@ -356,7 +357,7 @@ def passage_time_matrix(T, pi, sets, *, labels=None, time_per_step: float = 1.0)
 
 # --------------------------------------------------------------------------- committors
 
-def splitting_probability(T, source, target, *, reverse_time: bool = False, pi=None, labels=None) -> np.ndarray:
+def splitting_probability(T, source, target, *, reverse_time: bool = False, pi=None, states=None) -> np.ndarray:
     """Committor, forward or backward in time, between two disjoint sets of states.
 
     The committor q+_i (forward in time) is the probability that the chain, started in state i, enters
@@ -376,7 +377,7 @@ def splitting_probability(T, source, target, *, reverse_time: bool = False, pi=N
         Return the committor backward in time q- instead of the forward one.
     pi : array_like, shape (n,), optional
         Stationary distribution of T; required for ``reverse_time=True``.
-    labels : array_like of int, shape (n,), optional
+    states : array_like of int, shape (n,), optional
         Original label of every row, used in error messages.
 
     Returns
@@ -402,7 +403,7 @@ def splitting_probability(T, source, target, *, reverse_time: bool = False, pi=N
     """
     T = _as_transition_matrix(T)
     n = T.shape[0]
-    labels = _as_labels(labels, n)
+    labels = _as_labels(states, n)
     source, target = _source_and_target(source, target, n, labels)
     a, b = _mask(n, source), _mask(n, target)
     if not reverse_time:
@@ -549,7 +550,7 @@ class TransitionPaths:
         return TransitionPaths(src_sets, tgt_sets, np.arange(k), pi, qf, qb, gross, np.maximum(gross - gross.T, 0.0),
                             self.throughput, self.rate_constant, self.time_per_step, self.unit)
 
-    def routes(self, fraction: float = 0.99, *, max_paths: int | None = None) -> list[Route]:
+    def routes(self, fraction: float = ROUTE_SHARE, *, max_paths: int | None = None) -> list[Route]:
         """Decompose the net flux into A -> B routes, strongest first.
 
         Repeatedly finds the path whose smallest net-flux edge (the bottleneck) is largest,
@@ -602,7 +603,7 @@ class TransitionPaths:
         return [Route(tuple(int(self.states[i]) for i in path), float(f),
                         float(f / total) if total > 0 else 0.0) for path, f in found]
 
-    def routes_table(self, fraction: float = 0.99, *, max_paths: int | None = None):
+    def routes_table(self, fraction: float = ROUTE_SHARE, *, max_paths: int | None = None):
         """The routes of :meth:`routes` as a pandas DataFrame.
 
         Columns: ``pathway`` (1 = strongest), ``states`` (tuple of original labels), ``length``
@@ -643,7 +644,7 @@ class TransitionPaths:
         })
 
 
-def transition_paths(T, pi, source, target, *, labels=None, time_per_step: float = 1.0,
+def transition_paths(T, pi, source, target, *, states=None, time_per_step: float = 1.0,
                   unit: str = "step") -> TransitionPaths:
     """Reactive flux from a source set A to a target set B (transition path theory).
 
@@ -655,7 +656,7 @@ def transition_paths(T, pi, source, target, *, labels=None, time_per_step: float
         Stationary distribution of T.
     source, target : int, sequence of int or boolean mask
         Positions (row indices) of the disjoint, non-empty sets A and B.
-    labels : array_like of int, shape (n,), optional
+    states : array_like of int, shape (n,), optional
         Original label of each row (default 0..n-1); results report states by these labels.
     time_per_step : float
         Physical duration tau of one step (lag x dt). Default 1.
@@ -689,7 +690,7 @@ def transition_paths(T, pi, source, target, *, labels=None, time_per_step: float
     T = _as_transition_matrix(T)
     n = T.shape[0]
     pi = _as_stationary(pi, T)
-    labels = _as_labels(labels, n)
+    labels = _as_labels(states, n)
     time_per_step, unit = _as_time_per_step(time_per_step, unit)
     source, target = _source_and_target(source, target, n, labels)
     a, b = _mask(n, source), _mask(n, target)

@@ -20,6 +20,7 @@ from ._bootstrap import progress_bar as _progress
 from ._bootstrap import unflatten as _unflatten
 from ._checks import as_label_trajectories, check_dt, check_int, check_probability, check_unit
 from .counts import run_count_rows
+from .defaults import PROCESSES
 from .errors import InputError
 from .model import MarkovModel, fingerprint, model_from_counts, _now, _version
 from .spectral import eigen_decomposition, implied_timescales
@@ -100,7 +101,7 @@ class LagScan:
         return df
 
 
-def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: int = 5,
+def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: int = PROCESSES,
              reversible: bool = True, n_samples: int = 0, seed=None, confidence: float = 0.95,
              every_frame: bool = True, n_states: int | None = None, n_slow: int = 2, rtol: float = 0.05,
              progress: bool = False, client=None) -> LagScan:
@@ -115,7 +116,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     dt : float
         Physical time between frames, in ``unit``.
     unit : str
-    n_processes : int, default 5
+    n_processes : int, default 4 (``msmkit.defaults.PROCESSES``)
         How many of the slowest processes to follow.
     reversible : bool, default True
     n_samples : int, default 0

@@ -2,7 +2,7 @@
 
 The functions work on plain arrays: a row-stochastic transition matrix ``T`` of the kept set
 (one step = one lag time) and the stationary distribution ``pi``. Results meant for people
-name states by their original label (``labels``, default ``0..n-1``).
+name states by their original label (``states``, default ``0..n-1``).
 
 References
 ----------
@@ -581,12 +581,12 @@ class Macrostates:
             raise InputError(f"macrostate(s) {empty} hold no state by largest membership, so their "
                              f"first-passage times are undefined; use fewer macrostates")
         M = passage_time_matrix(self.propagator, self.equilibrium, sets,
-                        labels=self.states, time_per_step=self.time_per_step)
+                        states=self.states, time_per_step=self.time_per_step)
         idx = pd.Index(np.arange(self.n_sets), name="from")
         return pd.DataFrame(M, index=idx, columns=pd.Index(np.arange(self.n_sets), name="to"))
 
 
-def find_macrostates(T, pi, n_sets: int, *, labels=None, time_per_step: float = 1.0,
+def find_macrostates(T, pi, n_sets: int, *, states=None, time_per_step: float = 1.0,
                      unit: str = "step", reversible: bool | None = None, optimize: bool = True,
                      population_samples=None) -> Macrostates:
     """PCCA+ macrostates of a transition matrix, with the coarse matrix and gap check.
@@ -599,7 +599,7 @@ def find_macrostates(T, pi, n_sets: int, *, labels=None, time_per_step: float = 
         Stationary distribution of T.
     n_sets : int
         Number of macrostates, 1 <= n_sets <= n.
-    labels : array_like of int, shape (n,), optional
+    states : array_like of int, shape (n,), optional
         Original label of each row (default 0..n-1).
     time_per_step : float
         Physical duration of one step (lag x dt). Default 1.
@@ -634,7 +634,7 @@ def find_macrostates(T, pi, n_sets: int, *, labels=None, time_per_step: float = 
     ...               [0.09, 0.90, 0.00, 0.01],
     ...               [0.01, 0.00, 0.90, 0.09],
     ...               [0.00, 0.01, 0.09, 0.90]])
-    >>> macro = find_macrostates(T, np.full(4, 0.25), 2, labels=[10, 11, 20, 21])
+    >>> macro = find_macrostates(T, np.full(4, 0.25), 2, states=[10, 11, 20, 21])
     >>> sorted(s.tolist() for s in macro.members)
     [[10, 11], [20, 21]]
     >>> macro.lumped_propagator.round(3)
@@ -642,7 +642,7 @@ def find_macrostates(T, pi, n_sets: int, *, labels=None, time_per_step: float = 
            [0.01, 0.99]])
     """
     T, pi, n_sets, reversible = _gates(T, pi, n_sets, reversible)
-    labels = _as_labels(labels, T.shape[0])
+    labels = _as_labels(states, T.shape[0])
     time_per_step, unit = _as_time_per_step(time_per_step, unit)
     if population_samples is not None:
         samples = np.asarray(population_samples, dtype=float)

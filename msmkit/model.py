@@ -209,7 +209,7 @@ class MarkovModel:
         if n_samples and labels is None:
             raise InputError("n_samples > 0 needs labels= (the label trajectories of the model) to resample")
         macro = find_macrostates(self.propagator, self.equilibrium, n_sets,
-                                 labels=self.states, time_per_step=self.lag_time, unit=self.unit,
+                                 states=self.states, time_per_step=self.lag_time, unit=self.unit,
                                  reversible=self.reversible, optimize=optimize)
         if n_samples:
             pi = self.bootstrap_stationary(labels, n_samples=n_samples, seed=seed)
@@ -260,7 +260,7 @@ class MarkovModel:
         from .kinetics import mean_passage_time
         return mean_passage_time(self.propagator, self.equilibrium,
                                        self.index_of(source, "source"), self.index_of(target, "target"),
-                                       labels=self.states, time_per_step=self.lag_time)
+                                       states=self.states, time_per_step=self.lag_time)
 
     def passage_time_matrix(self, sets):
         """Mean first-passage times between disjoint sets of labels (e.g. macrostates), as a
@@ -268,7 +268,7 @@ class MarkovModel:
         from .kinetics import passage_time_matrix
         return passage_time_matrix(self.propagator, self.equilibrium,
                            [self.index_of(s, f"sets[{i}]") for i, s in enumerate(sets)],
-                           labels=self.states, time_per_step=self.lag_time)
+                           states=self.states, time_per_step=self.lag_time)
 
     def splitting_probability(self, source, target, *, reverse_time: bool = False) -> np.ndarray:
         """Committor per kept state (in the order of :attr:`states`): forward, the probability to
@@ -276,7 +276,7 @@ class MarkovModel:
         from .kinetics import splitting_probability
         return splitting_probability(self.propagator, self.index_of(source, "source"),
                          self.index_of(target, "target"), reverse_time=backward,
-                         pi=self.equilibrium, labels=self.states)
+                         pi=self.equilibrium, states=self.states)
 
     def transition_paths(self, source, target):
         """Transition path theory from ``source`` to ``target`` (E & Vanden-Eijnden 2006; Metzner,
@@ -285,7 +285,7 @@ class MarkovModel:
         from .kinetics import transition_paths
         return transition_paths(self.propagator, self.equilibrium,
                              self.index_of(source, "source"), self.index_of(target, "target"),
-                             labels=self.states, time_per_step=self.lag_time, unit=self.unit)
+                             states=self.states, time_per_step=self.lag_time, unit=self.unit)
 
     # ----------------------------------------------------------------- persistence
     def save(self, path, *, overwrite: bool = True, **extra_arrays):

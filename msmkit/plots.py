@@ -10,9 +10,9 @@ import io
 
 import numpy as np
 
-__all__ = ["figure_png", "plot_chapman_kolmogorov", "plot_cross_validation", "plot_lag_flow", "plot_populations",
-           "plot_state_map",
-           "plot_timescales", "PALETTE"]
+__all__ = ["ck_deviations", "figure_png", "plot_chapman_kolmogorov", "plot_chapman_kolmogorov_pair",
+           "plot_cross_validation", "plot_lag_flow", "plot_populations", "plot_state_map", "plot_timescales",
+           "PALETTE"]
 
 #: the project's colours for successive processes / series
 PALETTE = ("#0f5c8c", "#c44536", "#4d8b31", "#b5851b", "#6b4c9a", "#2f8f8f", "#8c5a3c", "#5a5a5a")
@@ -46,12 +46,68 @@ def figure_png(fig, dpi: int = 96) -> bytes:
     return buf.getvalue()
 
 
+#: colours of successive processes in the implied-timescale figure, slowest first
+PROCESS_COLOURS = ("#1d3557", "#2a9d8f", "#c7851f", "#8e3b8a", "#b5452b", "#6b7f2a", "#4a6fa5", "#7a6a58")
+#: the resolvability line t = tau and the lag markers
+_GUIDE = "#3b3b3b"
+_CHOSEN = "#d1495b"
+
+
+def _log_ticks(lo: float, hi: float, max_ticks: int = 7) -> np.ndarray:
+    """Round tick positions for a log axis from ``lo`` to ``hi`` (both > 0): the densest of the
+    series 1-2-5, 1-3 and whole decades per decade that keeps at most ``max_ticks`` ticks (every
+    few decades beyond that); a finer series 1-1.5-2-3-4-5-7 when a short span would otherwise get
+    fewer than two."""
+    first, last = int(np.floor(np.log10(lo))), int(np.ceil(np.log10(hi)))
+    decades = 10.0 ** np.arange(first, last + 1)
+
+    def series(mantissas):
+        ticks = (decades[:, None] * np.array(mantissas)).ravel()
+        return ticks[(ticks >= lo * (1 - 1e-9)) & (ticks <= hi * (1 + 1e-9))]
+
+    fine = series((1, 2, 5))
+    if fine.size < 2:
+        return series((1, 1.5, 2, 3, 4, 5, 7))[:max_ticks]
+    for ticks in (fine, series((1, 3)), series((1,))):
+        if ticks.size <= max_ticks:
+            return ticks
+    return ticks[::int(np.ceil(ticks.size / max_ticks))]
+
+
+def _tick_label(v: float) -> str:
+    return f"{v:g}"
+
+
+def _set_log_ticks(axis, ticks) -> None:
+    from matplotlib.ticker import NullLocator
+    axis.set_ticks(ticks, [_tick_label(v) for v in ticks])
+    axis.set_minor_locator(NullLocator())
+
+
+def _unclear_timescales(timescales, lower, upper, lag_times) -> np.ndarray:
+    """True where a timescale cannot be read as a resolved process: at or below the lag time,
+    or with an interval wider than the value itself (NaN bounds: judged by the lag only)."""
+    with np.errstate(invalid="ignore"):
+        wide = (upper - lower) > timescales
+    return (timescales <= lag_times[:, None]) | wide
+
+
+def _dodge(n_processes: int, factor: float = 1.05) -> np.ndarray:
+    """Multiplicative x offsets (log axis) that set the processes' bars side by side at each lag."""
+    return factor ** (np.arange(n_processes) - (n_processes - 1) / 2)
+
+
 def plot_timescales(scan, *, processes=None, selected_lag=None, width=6.4, height=4.8):
     """Implied timescales against lag time, on log axes with physical units.
 
-    Shows each process with the bootstrap band, the line t = tau with the region below it shaded
-    (timescales there are faster than the lag and cannot be resolved), the suggested lag, and
-    optionally the lag the user has chosen.
+    One colour per process (slowest first), a point per scanned lag with a vertical bar for the
+    bootstrap interval; the processes are set slightly apart along the lag axis (a factor
+    :func:`_dodge`) so that their bars do not hide each other. A point is hollow where the value
+    cannot be taken at face value: at or below the lag time, or with an interval wider than the
+    value. The dashed line timescale = lag time marks the resolution limit (a process faster
+    than the lag cannot be resolved at that lag). The suggested lag is a triangle on the top
+    edge with a dotted line; the chosen lag a solid line, so both stay visible when they
+    coincide.
 
     Parameters
     ----------
@@ -60,42 +116,79 @@ def plot_timescales(scan, *, processes=None, selected_lag=None, width=6.4, heigh
         How many processes to draw (default all in the scan).
     selected_lag : int, optional
         A scanned lag (frames) to mark as chosen.
+    width, height : float
+        Figure size in inches.
 
     Returns
     -------
     matplotlib.figure.Figure
     """
     fig, ax = _new_figure(width, height)
-    x = scan.lag_times
+    x = np.asarray(scan.lag_times, dtype=float)
     k = scan.timescales.shape[1] if processes is None else min(processes, scan.timescales.shape[1])
-    finite = scan.timescales[:, :k][np.isfinite(scan.timescales[:, :k])]
-    ymax = max(finite.max() if finite.size else 1.0, x.max()) * 3
-    ymin = min(finite[finite > 0].min() if np.any(finite > 0) else x.min(), x.min()) / 3
-    xs = np.geomspace(x.min() / 1.5, x.max() * 1.5, 50) if x.size > 1 else np.array([x[0] / 2, x[0] * 2])
-    ax.fill_between(xs, ymin, xs, color=UNRESOLVED, alpha=0.25, lw=0,
-                    label="unresolvable (timescale < lag time)")
-    ax.plot(xs, xs, color=UNRESOLVED, lw=1.2, ls="-", label="t = τ")
+    ts, lo, hi = scan.timescales[:, :k], scan.lower[:, :k], scan.upper[:, :k]
+    shown = np.isfinite(ts) & (ts > 0)
+    unclear = _unclear_timescales(ts, lo, hi, x)
+    offsets = _dodge(k)
+
+    values = np.concatenate([ts[shown], lo[np.isfinite(lo) & (lo > 0)], hi[np.isfinite(hi) & (hi > 0)], x])
+    ymin, ymax = values.min() / 2, values.max() * 2
+    xmin, xmax = (x.min() / 1.4, x.max() * 1.4) if x.size > 1 else (x[0] / 2, x[0] * 2)
+    xs = np.array([xmin, xmax])
+    ax.plot(xs, xs, color=_GUIDE, lw=1.1, ls=(0, (5, 3)), zorder=1,
+            label="timescale = lag time (below: not resolved)")
+    # the words sit just under the line, turned with it: anchored on the line, where 45 degrees in
+    # data space is the line's own direction on screen, then moved down a few points
+    from matplotlib.transforms import offset_copy
+    start = xmin * (xmax / xmin) ** 0.04
+    ax.text(start, start, "timescale = lag time: below this, not resolved", rotation=45, rotation_mode="anchor",
+            transform=offset_copy(ax.transData, fig=fig, y=-3, units="points"), transform_rotates_text=True,
+            ha="left", va="top", fontsize=7.5, color=_GUIDE, zorder=1)
+
     for p in range(k):
-        colour = PALETTE[p % len(PALETTE)]
-        if np.any(np.isfinite(scan.lower[:, p])):
-            ax.fill_between(x, scan.lower[:, p], scan.upper[:, p], color=colour, alpha=0.18, lw=0)
-        ax.plot(x, scan.timescales[:, p], color=colour, marker="o", ms=4, lw=1.6, label=f"process {p + 1}")
+        colour = PROCESS_COLOURS[p % len(PROCESS_COLOURS)]
+        px = x * offsets[p]
+        bars = shown[:, p] & np.isfinite(lo[:, p]) & np.isfinite(hi[:, p])
+        if bars.any():
+            ax.vlines(px[bars], lo[bars, p], hi[bars, p], color=colour, lw=1.3, zorder=2)
+        firm, weak = shown[:, p] & ~unclear[:, p], shown[:, p] & unclear[:, p]
+        name = f"process {p + 1}" + (" (slowest)" if p == 0 else "")
+        ax.plot(px[firm], ts[firm, p], ls="none", marker="o", ms=5.5, color=colour, zorder=3, label=name,
+                gid="timescale points")
+        ax.plot(px[weak], ts[weak, p], ls="none", marker="o", ms=5.5, mfc="white", mec=colour, mew=1.3,
+                zorder=3, label=f"_{name}, not resolved", gid="timescale points")
+    if unclear[shown].any():
+        ax.plot([], [], ls="none", marker="o", ms=5.5, mfc="white", mec=_GUIDE, mew=1.3,
+                label="hollow: below the lag time, or interval wider than the value")
+
     if scan.suggested_lag is not None:
-        ax.axvline(scan.suggested_lag * scan.dt, color="#222222", ls=":", lw=1.4,
-                   label=f"suggested lag ({scan.suggested_lag * scan.dt:g} {scan.unit})")
+        xs_ = scan.suggested_lag * scan.dt
+        ax.axvline(xs_, color=_GUIDE, ls=":", lw=1.1, zorder=0)
+        ax.plot([xs_], [1.0], transform=ax.get_xaxis_transform(), ls="none", marker="v", ms=9, color=_GUIDE,
+                clip_on=False, zorder=5, label=f"suggested lag ({xs_:g} {scan.unit})")
     if selected_lag is not None:
-        ax.axvline(selected_lag * scan.dt, color="#e07b00", ls="-", lw=2.2, alpha=0.8,
-                   label=f"chosen lag ({selected_lag * scan.dt:g} {scan.unit})")
+        xc = selected_lag * scan.dt
+        ax.axvline(xc, color=_CHOSEN, ls="-", lw=1.8, alpha=0.85, zorder=4,
+                   label=f"chosen lag ({xc:g} {scan.unit})")
+
     ax.set_xscale("log")
     ax.set_yscale("log")
-    ax.set_xlim(xs[0], xs[-1])
+    ax.set_xlim(xmin, xmax)
     ax.set_ylim(ymin, ymax)
+    spread = x.size > 1 and np.min(x[1:] / x[:-1]) >= 1.5
+    _set_log_ticks(ax.xaxis, x if spread and x.size <= 8 else _log_ticks(xmin, xmax))
+    _set_log_ticks(ax.yaxis, _log_ticks(ymin, ymax))
     ax.set_xlabel(f"lag time τ [{scan.unit}]")
     ax.set_ylabel(f"implied timescale [{scan.unit}]")
-    band = f", bands: {100 * scan.confidence:g}% bootstrap" if scan.n_samples else ""
-    ax.set_title(f"Implied timescales vs lag{band}", fontsize=10)
-    ax.grid(True, which="major", color="#dddddd", lw=0.6)
-    ax.legend(fontsize=7.5, loc="upper center", bbox_to_anchor=(0.5, -0.16), ncols=3, frameon=False)
+    bars = (f"bars: {100 * scan.confidence:g}% bootstrap interval ({scan.n_samples} samples)" if scan.n_samples
+            else "no bootstrap: no intervals")
+    ax.set_title(f"Slowest relaxation times at each lag time\n{bars}", fontsize=9.5, pad=10)
+    ax.grid(True, which="major", color="#e6e6e6", lw=0.6)
+    ax.set_axisbelow(True)
+    handles, labels = ax.get_legend_handles_labels()
+    order = sorted(range(len(labels)), key=lambda i: (not labels[i].startswith("process"), i))
+    ax.legend([handles[i] for i in order], [labels[i] for i in order], fontsize=7.5, loc="upper center",
+              bbox_to_anchor=(0.5, -0.13), ncols=2, frameon=False)
     return fig
 
 
@@ -136,74 +229,242 @@ def _verdict_colour(ok: bool) -> str:
     return PALETTE[2] if ok else PALETTE[1]
 
 
-def plot_chapman_kolmogorov(ck, *, width=None, height=None):
-    """Chapman-Kolmogorov test: one panel per pair of sets (from row set to column set).
+#: colours of |z| in the Chapman-Kolmogorov summary: calm blues up to the pass threshold, then
+#: warm colours; the break sits at the threshold (the middle of the scale)
+DEVIATION_COLOURS = (("#f3f1ea", "#a9c8cf", "#3f7f94"), ("#f2c14e", "#d9772b", "#9e2a2b"))
 
-    Each panel shows the probability predicted by powers of the model, T(tau)^k, as a line
-    starting at lag 0 (1 on the diagonal, 0 elsewhere), the estimates from the data at lag
-    k tau as markers with their bootstrap band (without bootstrap: a band of the tolerance around
-    them), a ring on the line at every prediction that fails the criterion, and a square around
-    estimates judged by the tolerance. Time in physical units; the verdict in the title.
+
+def _deviation_map():
+    from matplotlib.colors import LinearSegmentedColormap
+    calm, warm = DEVIATION_COLOURS
+    nodes = [(0.0, calm[0]), (0.25, calm[1]), (0.4999, calm[2]), (0.5, warm[0]), (0.75, warm[1]), (1.0, warm[2])]
+    return LinearSegmentedColormap.from_list("msmkit_deviation", nodes).with_extremes(bad="#d9d9d9")
+
+
+def _critical_z(confidence: float) -> float:
+    """Standard normal quantile with a central ``confidence`` share inside ±z (1.96 for 0.95)."""
+    from statistics import NormalDist
+    return NormalDist().inv_cdf(0.5 + confidence / 2)
+
+
+def ck_deviations(ck):
+    """How far the data lie from the model in each cell of a Chapman-Kolmogorov test, in units
+    of the uncertainty of the estimate.
+
+    z = (estimate - model) / sigma, with sigma the half of the bootstrap interval on the side
+    where the model lies, divided by the normal quantile of the confidence (1.96 at 95 %). With
+    that choice |z| exceeds the quantile exactly when the model lies outside the interval, as
+    the test judges it; where the estimate lies outside the interval built around it the half-width of the
+    whole interval is used instead.
+
+    Parameters
+    ----------
+    ck : CKResult
+
+    Returns
+    -------
+    z : ndarray, shape (K, m, m)
+        In standard deviations; NaN where nothing was estimated or no interval was usable (those
+        cells are judged by ``ck.tolerance``).
+    critical : float
+        The pass threshold on |z|.
+    """
+    critical = _critical_z(ck.confidence)
+    est, pred, lo, hi = ck.estimated, ck.predicted, ck.lower, ck.upper
+    with np.errstate(invalid="ignore"):
+        half = np.where(pred >= est, hi - est, est - lo)
+        half = np.where(half > 0, half, (hi - lo) / 2)
+        usable = np.isfinite(est) & ~ck.used_tolerance & (half > 0)
+    z = np.full(est.shape, np.nan)
+    z[usable] = (est[usable] - pred[usable]) / (half[usable] / critical)
+    return z, critical
+
+
+def _pair_rows(m: int):
+    """Row order of the summary: (from, to) pairs, grouped by the set started in."""
+    a, b = np.divmod(np.arange(m * m), m)
+    return a, b
+
+
+def _ink_on(rgba) -> str:
+    """Black or white text, whichever reads better on ``rgba`` (relative luminance, sRGB weights)."""
+    r, g, b = rgba[:3]
+    return "white" if 0.2126 * r + 0.7152 * g + 0.0722 * b < 0.45 else _INK
+
+
+def _signed(v: float, digits: int) -> str:
+    """``v`` with a sign and a typographic minus; a value that rounds to zero has no sign."""
+    text = f"{v:+.{digits}f}"
+    return f"{0:.{digits}f}" if float(text) == 0 else text.replace("-", "\u2212")
+
+
+def plot_chapman_kolmogorov(ck, *, width=None, height=None):
+    """Chapman-Kolmogorov test in one table: how far data and model disagree, per set pair and lag.
+
+    Rows are pairs of sets "a → b" (start in set a, be in set b), grouped by a; columns are the
+    multiples k of the model's lag. Each cell prints z = (estimate − model) / σ from
+    :func:`ck_deviations` and is coloured by |z|: blues up to the pass threshold, warm colours
+    beyond it. Cells the test could only judge by the tolerance (too few data for an interval)
+    are hatched and print the difference Δ = estimate − model instead; without any interval
+    (no bootstrap) every cell prints Δ and is coloured by |Δ| against the tolerance. Cells with
+    no estimate print "n/a"; failing cells are framed. The threshold and the verdict are in the
+    title; :func:`plot_chapman_kolmogorov_pair` draws one pair in detail.
 
     Parameters
     ----------
     ck : CKResult
     width, height : float, optional
-        Figure size in inches (default grows with the number of sets).
+        Figure size in inches (default grows with the number of multiples and pairs).
 
     Returns
     -------
     matplotlib.figure.Figure
     """
-    m = ck.n_sets
-    width = width or min(2.3 * m + 1.4, 16.0)
-    height = height or min(1.9 * m + 1.5, 14.0)
-    fig = _figure_class()(figsize=(width, height), layout="constrained")
-    axes = fig.subplots(m, m, sharex=True, squeeze=False)
-    t = ck.lag_times
-    t0 = np.concatenate([[0.0], t])
-    conf = f"{100 * ck.confidence:g}%"
-    for a in range(m):
-        for b in range(m):
-            ax = axes[a, b]
-            est, lo, hi = ck.estimated[:, a, b], ck.lower[:, a, b], ck.upper[:, a, b]
-            ax.plot(t0, np.concatenate([[1.0 if a == b else 0.0], ck.predicted[:, a, b]]), color=PALETTE[0],
-                    lw=1.8, label="predicted from the model, T(τ)^k")
-            if np.any(np.isfinite(lo)):
-                ax.fill_between(t, lo, hi, color=PALETTE[1], alpha=0.2, lw=0,
-                                label=f"{conf} bootstrap interval of the estimate")
-            elif not ck.n_samples:
-                ax.fill_between(t, est - ck.tolerance, est + ck.tolerance, color=PALETTE[3], alpha=0.15, lw=0,
-                                label=f"estimate ± tolerance {ck.tolerance:g} (no bootstrap)")
-            ax.plot(t, est, ls="none", marker="o", ms=4.5, color=PALETTE[1], label="estimated from the data at lag kτ")
-            miss = ~ck.within[:, a, b] & np.isfinite(est)
-            if miss.any():
-                ax.plot(t[miss], ck.predicted[miss, a, b], ls="none", marker="o", ms=8, mfc="none", mec=_INK,
-                        mew=1.3, label="prediction outside the interval" if ck.n_samples else
-                        f"prediction off by more than {ck.tolerance:g}")
-            tol = ck.used_tolerance[:, a, b] & (ck.n_samples > 0)
-            if tol.any():
-                ax.plot(t[tol], est[tol], ls="none", marker="s", ms=9, mfc="none", mec=PALETTE[3], mew=1.2,
-                        label=f"too few data for an interval: judged within ±{ck.tolerance:g}")
-            ax.set_title(f"set {a} → set {b}", fontsize=8.5)
-            ax.grid(True, color="#e4e4e4", lw=0.6)
-            ax.tick_params(labelsize=7.5)
-            low, high = ax.get_ylim()
-            ax.set_ylim(max(low, -0.02), min(high, 1.02))
-            ax.set_xlim(0, t[-1] * 1.04)
-    for b in range(m):
-        axes[-1, b].set_xlabel(f"lag time [{ck.unit}]", fontsize=8.5)
-    for a in range(m):
-        axes[a, 0].set_ylabel("probability", fontsize=8.5)
+    from matplotlib.patches import Rectangle
+    m, K = ck.n_sets, len(ck.multiples)
+    z, critical = ck_deviations(ck)
+    a, b = _pair_rows(m)
+    z = z[:, a, b].T  # (pairs, K)
+    diff = (ck.estimated - ck.predicted)[:, a, b].T
+    tol = (ck.used_tolerance & np.isfinite(ck.estimated))[:, a, b].T
+    failed = (~ck.within & np.isfinite(ck.estimated))[:, a, b].T
+    judged = int(np.isfinite(ck.estimated).sum())
+    by_sigma = bool(np.isfinite(z).any())
+    if by_sigma:  # colour |z|; cells judged by the tolerance are the hatched exceptions
+        shade, limit, hatch = np.abs(z), critical, tol
+        scale = "|z| = |estimate − model| / σ  [σ of the estimate]"
+        what = "cell: z = (estimate − model) / σ of the estimate"
+        rule = (f"fails when |z| > {critical:.3g}, i.e. the model lies outside the {100 * ck.confidence:g}% "
+                f"bootstrap interval")
+    else:  # no interval anywhere: colour |Δ| against the tolerance
+        shade, limit, hatch = np.where(tol, np.abs(diff), np.nan), ck.tolerance, np.zeros_like(tol)
+        scale = "|Δ| = |estimate − model|  [probability]"
+        what = "cell: Δ = estimate − model (probability); no bootstrap interval, so no σ"
+        rule = f"fails when |Δ| > {ck.tolerance:g} (the tolerance)"
+    top = 2 * limit
+
+    rows = m * m
+    width = width or min(max(6.0, 2.6 + 0.78 * K), 16.0)
+    height = height or min(1.9 + 0.3 * rows, 16.0)
+    fig, ax = _new_figure(width, height)
+    cmap = _deviation_map()
+    image = ax.imshow(np.ma.masked_invalid(np.where(hatch, np.nan, shade)), cmap=cmap, vmin=0, vmax=top,
+                      aspect="auto", interpolation="nearest")
+    size = 8 if rows <= 16 else 7
+    for r in range(rows):
+        for c in range(K):
+            if by_sigma and np.isfinite(z[r, c]):
+                text, face = _signed(z[r, c], 1), cmap(min(shade[r, c] / top, 1.0))
+            elif tol[r, c]:
+                text = "Δ" + _signed(diff[r, c], 3)
+                face = (1, 1, 1, 1) if hatch[r, c] else cmap(min(shade[r, c] / top, 1.0))
+                if hatch[r, c]:
+                    ax.add_patch(Rectangle((c - 0.5, r - 0.5), 1, 1, facecolor="#f7f7f7", edgecolor="#b8b8b8",
+                                           hatch="///", lw=0, zorder=1))
+            else:
+                text, face = "n/a", (0.85, 0.85, 0.85, 1)
+            ax.text(c, r, text, ha="center", va="center", fontsize=size, color=_ink_on(face), zorder=3,
+                    fontweight="bold" if failed[r, c] else "normal", gid="ck cell")
+            if failed[r, c]:
+                ax.add_patch(Rectangle((c - 0.44, r - 0.42), 0.88, 0.84, fill=False, edgecolor=_INK, lw=1.3,
+                                       zorder=2, gid="ck failed cell"))
+    for g in range(1, m):
+        ax.axhline(g * m - 0.5, color="white", lw=3, zorder=2)
+    ax.set_yticks(np.arange(rows), [f"{i} → {j}" for i, j in zip(a, b)], fontsize=size)
+    ax.set_xticks(np.arange(K), [f"k = {k}\n{t:g} {ck.unit}" for k, t in zip(ck.multiples, ck.lag_times)],
+                  fontsize=7.5)
+    ax.tick_params(length=0)
+    for side in ax.spines.values():
+        side.set_visible(False)
+    ax.set_xlabel(f"lag multiple k and lag time kτ [{ck.unit}]")
+    ax.set_ylabel("set pair: from set → to set")
+
+    bar = fig.colorbar(image, ax=ax, extend="max", shrink=0.9, pad=0.02)
+    bar.set_label(scale, fontsize=8)
+    marks = [v for v in np.arange(0, top, 1.0 if by_sigma else limit / 2) if abs(v - limit) > 0.15 * limit]
+    bar.set_ticks([*marks, limit, top], labels=[*(f"{v:.3g}" for v in marks), f"{limit:.3g} pass limit",
+                                                f"≥ {top:.3g}"])
+    bar.ax.tick_params(labelsize=7.5)
+    bar.ax.axhline(limit, color=_INK, lw=1.2)
+
     verdict = "passed" if ck.passed else "failed"
-    fig.suptitle(f"Chapman–Kolmogorov test {verdict}: model at τ = {ck.lag * ck.dt:g} {ck.unit}, "
-                 f"k = 1…{len(t)}", fontsize=10.5, color=_verdict_colour(ck.passed))
-    handles = {}
-    for ax in axes.ravel():
-        for h, label in zip(*ax.get_legend_handles_labels()):
-            handles.setdefault(label, h)
-    fig.legend(list(handles.values()), list(handles.keys()), loc="outside lower center", ncols=2, fontsize=7.5,
-               frameon=False)
+    fig.suptitle(f"Chapman–Kolmogorov test {verdict}: {int(failed.sum())} of {judged} cells fail "
+                 f"(model at τ = {ck.lag * ck.dt:g} {ck.unit})", fontsize=10.5, color=_verdict_colour(ck.passed))
+    ax.set_title(f"{what}\n{rule}", fontsize=8)
+    notes = []
+    if hatch.any():
+        notes.append(f"hatched: too few data for an interval, judged by |Δ| ≤ {ck.tolerance:g} "
+                     f"(Δ = estimate − model, probability)")
+    if failed.any():
+        notes.append("framed: failing cell")
+    if notes:
+        fig.supxlabel("; ".join(notes), fontsize=7.5, color="#444444")
+    return fig
+
+
+def plot_chapman_kolmogorov_pair(ck, a, b, *, width=5.8, height=3.9):
+    """One pair of sets of a Chapman-Kolmogorov test in detail: model against data over time.
+
+    The probability to be in set b a time t after starting in set a (from the model's
+    stationary weights inside a): the model's prediction T(τ)^k as a line from t = 0 (1 when
+    a = b, else 0), the estimates at lag kτ as points with their bootstrap interval as bars
+    (without an interval: the tolerance, dashed), failing estimates ringed, z beside each point,
+    and the long-time limit (the population of set b) dotted.
+
+    Parameters
+    ----------
+    ck : CKResult
+    a, b : int
+        Index of the start set and of the target set (0 .. ck.n_sets - 1).
+    width, height : float
+        Figure size in inches.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from ._checks import check_int
+    a = check_int(a, "a", minimum=0, maximum=ck.n_sets - 1)
+    b = check_int(b, "b", minimum=0, maximum=ck.n_sets - 1)
+    z, critical = ck_deviations(ck)
+    t = ck.lag_times
+    est, lo, hi = ck.estimated[:, a, b], ck.lower[:, a, b], ck.upper[:, a, b]
+    pred = ck.predicted[:, a, b]
+    fig, ax = _new_figure(width, height)
+    model_colour, data_colour = PROCESS_COLOURS[0], PROCESS_COLOURS[4]
+    ax.plot(np.concatenate([[0.0], t]), np.concatenate([[1.0 if a == b else 0.0], pred]), color=model_colour,
+            lw=1.8, marker="s", ms=3.5, zorder=2, label="model: T(τ)^k")
+    bars = np.isfinite(lo) & np.isfinite(hi) & ~ck.used_tolerance[:, a, b]
+    if bars.any():
+        ax.vlines(t[bars], lo[bars], hi[bars], color=data_colour, lw=1.4, zorder=3,
+                  label=f"{100 * ck.confidence:g}% bootstrap interval")
+    by_tol = ck.used_tolerance[:, a, b] & np.isfinite(est)
+    if by_tol.any():
+        ax.vlines(t[by_tol], est[by_tol] - ck.tolerance, est[by_tol] + ck.tolerance, color=data_colour, lw=1.2,
+                  linestyles="dashed", zorder=3, label=f"no interval: ± tolerance {ck.tolerance:g}")
+    ax.plot(t, est, ls="none", marker="D", ms=5, color=data_colour, zorder=4, label="data: estimated at lag kτ")
+    miss = ~ck.within[:, a, b] & np.isfinite(est)
+    if miss.any():
+        ax.plot(t[miss], est[miss], ls="none", marker="o", ms=12, mfc="none", mec=_INK, mew=1.3, zorder=5,
+                label="fails: model outside the interval" if ck.n_samples else "fails: beyond the tolerance")
+    for i in np.flatnonzero(np.isfinite(z[:, a, b])):
+        ax.annotate(f"z {_signed(z[i, a, b], 1)}", (t[i], est[i]), xytext=(7, 7), textcoords="offset points",
+                    fontsize=7, va="bottom", color=_INK if abs(z[i, a, b]) > critical else "#555555")
+    # framed on model and data; the long-time limit is drawn only when it falls inside that frame
+    low, high = ax.get_ylim()
+    limit = ck.set_populations[b]
+    inside = low <= limit <= high
+    ax.axhline(limit, color=_GUIDE, ls=":", lw=1.1, zorder=1, visible=bool(inside),
+               label=f"long-time limit: population of set {b}, {limit:.3g}" + ("" if inside else " (off scale)"))
+    ax.set_ylim(low, high)
+    ax.set_xlim(0, t[-1] * 1.14)  # room for the z labels right of the last point
+    ax.set_xticks(np.concatenate([[0.0], t]))
+    ax.set_xlabel(f"time after starting in set {a} [{ck.unit}]")
+    ax.set_ylabel(f"probability to be in set {b} [0–1]")
+    ax.set_title(f"Set {a} → set {b}: model at τ = {ck.lag * ck.dt:g} {ck.unit} against the data", fontsize=10)
+    ax.grid(True, color="#e6e6e6", lw=0.6)
+    ax.set_axisbelow(True)
+    ax.legend(fontsize=7.5, loc="upper center", bbox_to_anchor=(0.5, -0.16), ncols=2, frameon=False)
     return fig
 
 

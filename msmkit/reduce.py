@@ -1,4 +1,4 @@
-"""Time-lagged independent component analysis (TICA) with kinetic-map scaling.
+"""Time-lagged independent component analysis (TICA), optionally scaled to kinetic distances.
 
 TICA finds the linear combinations of features that decorrelate most slowly: the solutions of
 the generalised eigenvalue problem ``C(tau) v = lambda C(0) v`` with ``C(0)`` the covariance of
@@ -41,8 +41,13 @@ from .io import LazyRun, TrajectorySet, iter_chunks, load_trajectories
 
 __all__ = ["TICA", "LaggedMoments", "lagged_moments", "run_moments", "tica_covariances"]
 
-#: Kinetic variance kept when neither ``dim`` nor ``kinetic_variance`` is given.
-DEFAULT_KINETIC_VARIANCE = 0.95
+#: With neither ``dim`` nor ``kinetic_variance``, keep the components whose relaxation time is at
+#: least the TICA lag (autocorrelation at the lag >= 1/e): slower ones are resolved at this lag.
+RESOLVED_AUTOCORRELATION = float(np.exp(-1.0))
+#: ...but never more than this many (a guard against noise in very many features).
+MAX_DEFAULT_DIM = 20
+#: Scalings of the output coordinates that ``TICA(scaling=...)`` accepts.
+SCALINGS = ("unit", "kinetic")
 #: Directions of the (correlation-scaled) covariance with eigenvalue below this fraction of the
 #: largest are treated as linear dependencies among features and dropped.
 RANK_RTOL = 1e-10
@@ -253,12 +258,14 @@ class TICA:
         Number of components to keep.
     kinetic_variance : float, optional
         Keep the fewest components whose squared eigenvalues sum to at least this fraction of
-        the total (the kinetic variance [4]_). With neither ``dim`` nor ``kinetic_variance``,
-        0.95 is used. Give at most one of the two.
-    scaling : {"kinetic_map", None}
-        ``"kinetic_map"`` (default) multiplies each component by the matching eigenvalue, so Euclidean
-        distances in the output approximate kinetic distances [4]_; ``None`` leaves every
-        component with unit variance.
+        the total (the kinetic variance [4]_). Give at most one of ``dim`` and
+        ``kinetic_variance``. With neither, the components resolved at this lag are kept: those
+        whose relaxation time ``-lag / ln(eigenvalue)`` is at least the lag itself (eigenvalue
+        >= 1/e), at least one and at most 20.
+    scaling : {"unit", "kinetic"}
+        ``"unit"`` (default) leaves every component with unit variance; ``"kinetic"``
+        multiplies each component by the matching eigenvalue, so Euclidean distances in the output
+        approximate kinetic distances [4]_ (slow components count more when clustering).
     chunk_size : int, optional
         Frames read at a time; by default about 16 MiB of float64 frames.
     progress : bool
@@ -298,7 +305,7 @@ class TICA:
     (2000, 2)
     """
 
-    def __init__(self, lag, *, dim=None, kinetic_variance=None, scaling="kinetic_map",
+    def __init__(self, lag, *, dim=None, kinetic_variance=None, scaling="unit",
                  chunk_size=None, progress=False):
         self.lag = lag
         self.dim = dim
@@ -321,8 +328,8 @@ class TICA:
               check_probability(self.kinetic_variance, "kinetic_variance", open_interval=False))
         if kv == 0:
             raise InputError("kinetic_variance must be above 0 (a fraction such as 0.95), but got 0")
-        if self.scaling not in ("kinetic_map", None):
-            raise InputError(f"scaling must be 'kinetic_map' or None, but got {self.scaling!r}")
+        if not isinstance(self.scaling, str) or self.scaling not in SCALINGS:
+            raise InputError(f"scaling must be one of {', '.join(map(repr, SCALINGS))}, but got {self.scaling!r}")
         chunk = check_chunk_size(self.chunk_size, n_features)
         return lag, dim, kv, chunk
 
@@ -430,10 +437,11 @@ class TICA:
         sq = lam_all ** 2
         total = sq.sum()
         cumulative = np.cumsum(sq) / total if total > 0 else np.ones_like(sq)
-        if dim is None:
-            kv = DEFAULT_KINETIC_VARIANCE if kv is None else kv
-            dim = int(np.searchsorted(cumulative, kv - 1e-12) + 1)
-            dim = min(dim, len(lam_all))
+        if dim is None and kv is not None:
+            dim = min(int(np.searchsorted(cumulative, kv - 1e-12) + 1), len(lam_all))
+        elif dim is None:
+            resolved = int(np.count_nonzero(lam_all >= RESOLVED_AUTOCORRELATION))
+            dim = max(1, min(resolved, MAX_DEFAULT_DIM, len(lam_all)))
         elif dim > len(lam_all):
             warnings.warn(f"TICA: dim={dim} asked for, but the features span only {len(lam_all)} "
                           f"independent directions; keeping {len(lam_all)}",
@@ -464,21 +472,21 @@ class TICA:
         if not hasattr(self, "components_"):
             raise InputError("this TICA is not fitted yet: call fit(trajs) first")
         proj = self.components_.T
-        if self.scaling == "kinetic_map":
+        if self.scaling == "kinetic":
             proj = proj * self.eigenvalues_[None, :]
         return proj
 
     @property
     def projection_(self) -> np.ndarray:
         """The rows ``transform`` applies, shape (dim_, n_features): the components with the
-        kinetic-map scaling included, so that ``(x - mean_) @ projection_.T`` are the output
+        kinetic scaling (if chosen) included, so that ``(x - mean_) @ projection_.T`` are the output
         coordinates. This is what a model file stores as ``tica_components``."""
         return self._projection().T
 
     def get_feature_names_out(self, input_features=None) -> tuple[str, ...]:
-        """Names of the output coordinates: ``tic1, tic2, ...``."""
+        """Names of the output coordinates: ``ic1, ic2, ...``."""
         self._projection()
-        return tuple(f"tic{i + 1}" for i in range(self.dim_))
+        return tuple(f"ic{i + 1}" for i in range(self.dim_))
 
     def transform(self, trajs, *, lazy=False, out=None, client=None):
         """Project trajectories onto the kept components.
@@ -504,7 +512,7 @@ class TICA:
         -------
         ndarray or TrajectorySet
             A 2-D array ``(n_frames, dim_)`` for a single array without ``lazy``/``out``;
-            otherwise a :class:`~msmkit.io.TrajectorySet` named ``tic1, tic2, ...`` of
+            otherwise a :class:`~msmkit.io.TrajectorySet` named ``ic1, ic2, ...`` of
             in-memory runs (default) or lazy runs (``lazy=True`` or ``out=``).
 
         Notes
@@ -580,7 +588,7 @@ class TICA:
         for name in ("dim", "kinetic_variance", "chunk_size"):
             if getattr(self, name) is not None:
                 opts.append(f"{name}={getattr(self, name)!r}")
-        if self.scaling != "kinetic_map":
+        if self.scaling != "unit":
             opts.append(f"scaling={self.scaling!r}")
         return f"TICA({', '.join(opts)})"
 

@@ -29,6 +29,7 @@ from ._bootstrap import (fit_sample, percentile_interval, progress_bar, resampli
 from ._checks import (_short, as_float_trajectories, as_label_trajectories, as_state_set, check_dt, check_int,
                       check_probability, check_unit)
 from .counts import _count_flat, run_count_rows
+from .defaults import CK_MULTIPLES
 from .errors import DiagnosticWarning, InputError
 from .model import MarkovModel, build_model, fingerprint
 
@@ -90,7 +91,7 @@ class CKResult:
     outside_by : ndarray, shape (K, m, m)
         How far a failing prediction lies outside the interval (or beyond the tolerance); 0
         where it passes, NaN where nothing could be estimated.
-    populations : ndarray, shape (m,)
+    set_populations : ndarray, shape (m,)
         Stationary probability of each set in the model (the limit of every row as k grows).
     samples : ndarray, shape (K, n_samples, m, m)
         Bootstrap estimates.
@@ -115,7 +116,7 @@ class CKResult:
     within: np.ndarray
     used_tolerance: np.ndarray
     outside_by: np.ndarray
-    populations: np.ndarray
+    set_populations: np.ndarray
     samples: np.ndarray = field(repr=False)
     confidence: float = 0.95
     tolerance: float = 0.05
@@ -156,7 +157,7 @@ class CKResult:
         return df
 
 
-def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_samples=20, seed=None,
+def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MULTIPLES, n_samples=20, seed=None,
                        confidence=0.95, tolerance=0.05, progress=False, client=None) -> CKResult:
     """Chapman-Kolmogorov test: does T(tau)^k predict the data at lag k tau?
 
@@ -183,7 +184,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
         (at least 2). Ignored when ``sets`` is given.
     sets : list of lists of int, optional
         Your own disjoint sets of states, by original label (need not cover every state).
-    multiples : int, default 5
+    multiples : int, default 4 (``msmkit.defaults.CK_MULTIPLES``)
         Largest k; k tau must stay shorter than the longest run.
     n_samples : int, default 20
         Bootstrap samples for the intervals of the estimates: whole runs are resampled with
@@ -342,7 +343,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
     return CKResult(members=[np.asarray(s, dtype=np.int64) for s in sets], multiples=np.arange(1, K + 1),
                     lag=model.lag, dt=model.dt, unit=model.unit, predicted=predicted, estimated=estimated,
                     lower=lower, upper=upper, within=within, used_tolerance=used_tol, outside_by=outside_by,
-                    populations=populations, samples=samples, confidence=confidence, tolerance=tolerance,
+                    set_populations=populations, samples=samples, confidence=confidence, tolerance=tolerance,
                     n_samples=n_samples, passed=passed, criterion=criterion, notes=notes)
 
 
@@ -665,7 +666,7 @@ def lag_flow(source, labels=None, *, pair=(0, 1), sets=None, n_sets=None, multip
     upper = path(ck.upper, 1.0 if ck.n_samples else np.nan)
     within = np.concatenate([[True], ck.within[:, a, a] & ck.within[:, b, b]])
     lags = np.concatenate([[0], ck.multiples * ck.lag]).astype(np.int64)
-    fixed = ck.populations[[a, b]].copy()
+    fixed = ck.set_populations[[a, b]].copy()
     coincide = bool(np.all(within))
     summary = _flow_summary(a, b, lags * ck.dt, ck.unit, predicted, estimated, within, fixed, coincide)
     return LagFlow(pair=(a, b), members=[ck.members[a], ck.members[b]], lags=lags, dt=ck.dt, unit=ck.unit,

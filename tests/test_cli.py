@@ -24,7 +24,7 @@ def demo_files(tmp_path_factory):
 @pytest.fixture(scope="module")
 def demo_output(tmp_path_factory):
     out = tmp_path_factory.mktemp("demo") / "out"
-    assert main(["demo", "--out", str(out), "-q", "--samples", "20"]) == 0
+    assert main(["demo", "-o", str(out), "-q", "--samples", "20"]) == 0
     return out
 
 
@@ -126,3 +126,23 @@ def test_installed_command_help_and_error_without_traceback(tmp_path):
     done = subprocess.run(exe + ["info", str(tmp_path / "none.npz")], capture_output=True, text=True)
     assert done.returncode == 1
     assert "Traceback" not in done.stderr and done.stderr.strip().startswith("msmkit info: error:")
+
+
+def test_help_states_the_defaults_each_command_uses(capsys):
+    # argparse prints %(default)s from the parser itself (Python docs, argparse), so the help text
+    # cannot drift from what the command does: the demo clusters into 60 states, build into 100.
+    with pytest.raises(SystemExit):
+        main(["demo", "--help"])
+    demo_help = " ".join(capsys.readouterr().out.split())
+    assert "microstates (default 60)" in demo_help and "(default 100)" not in demo_help
+    with pytest.raises(SystemExit):
+        main(["build", "--help"])
+    assert "microstates (default 100)" in " ".join(capsys.readouterr().out.split())
+
+
+def test_options_a_command_does_not_use_are_refused(capsys, tmp_path):
+    # scan runs no Chapman–Kolmogorov test, so --multiples is a usage error (exit 2), not ignored
+    with pytest.raises(SystemExit) as exc:
+        main(["scan", "x.npy", "--multiples", "3", "-o", str(tmp_path / "o")])
+    assert exc.value.code == 2
+    assert "--multiples" in capsys.readouterr().err

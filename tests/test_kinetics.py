@@ -319,7 +319,7 @@ def test_results_use_original_labels():
     T = random_chain(5, 2, reversible=True)
     pi = stationary(T)
     labels = np.array([10, 20, 30, 40, 50])
-    rf = transition_paths(T, pi, [0], [3, 4], labels=labels)
+    rf = transition_paths(T, pi, [0], [3, 4], states=labels)
     assert list(rf.source) == [10] and list(rf.target) == [40, 50]
     for path in rf.routes(1.0):
         assert path.states[0] == 10 and path.states[-1] in (40, 50)
@@ -419,13 +419,13 @@ def test_overlapping_sets_name_the_shared_labels():
     pi = stationary(T)
     labels = [5, 6, 7, 8]
     with pytest.raises(InputError, match=r"source and target must not share.*state\(s\) 7"):
-        transition_paths(T, pi, [0, 2], [2, 3], labels=labels)
+        transition_paths(T, pi, [0, 2], [2, 3], states=labels)
     with pytest.raises(InputError, match=r"share.*6"):
-        splitting_probability(T, [1], [1], labels=labels)
+        splitting_probability(T, [1], [1], states=labels)
     with pytest.raises(InputError, match=r"share"):
-        mean_passage_time(T, pi, [1, 2], [2], labels=labels)
+        mean_passage_time(T, pi, [1, 2], [2], states=labels)
     with pytest.raises(InputError, match=r"sets\[0\] and sets\[1\] must not share.*8"):
-        passage_time_matrix(T, pi, [[0, 3], [3]], labels=labels)
+        passage_time_matrix(T, pi, [[0, 3], [3]], states=labels)
 
 
 @pytest.mark.parametrize("bad, match", [
@@ -472,8 +472,8 @@ def test_bad_stationary_distribution_and_options():
         transition_paths(T, pi, [0], [2], time_per_step=0)
     with pytest.raises(InputError, match="unit"):
         transition_paths(T, pi, [0], [2], unit="")
-    with pytest.raises(InputError, match="labels must be 3"):
-        transition_paths(T, pi, [0], [2], labels=[1, 2])
+    with pytest.raises(InputError, match="states must be 3"):
+        transition_paths(T, pi, [0], [2], states=[1, 2])
     rf = transition_paths(T, pi, [0], [2])
     with pytest.raises(InputError, match=r"fraction must be a number in \(0, 1\]"):
         rf.routes(1.5)
@@ -517,7 +517,7 @@ def test_flux_coarse_grained_onto_blocks_keeps_the_total_flux():
                   [0.00, 0.00, 0.00, 0.05, 0.15, 0.80]])
     pi = stationary(T)
     labels = np.array([10, 11, 20, 21, 30, 31])
-    fine = transition_paths(T, pi, [0, 1], [4, 5], labels=labels)
+    fine = transition_paths(T, pi, [0, 1], [4, 5], states=labels)
     coarse = fine.lump([[10, 11], [20, 21], [30, 31]])
     net = coarse.net_current
     assert net[0].sum() == pytest.approx(fine.throughput, rel=1e-10)

@@ -72,7 +72,7 @@ def test_pcca_recovers_blocks_of_nearly_decomposable_chains(args):
     m = len(sizes)
     with warnings.catch_warnings():
         warnings.simplefilter("error", DiagnosticWarning)
-        macro = find_macrostates(T, pi, m, labels=np.arange(100, 100 + T.shape[0]))
+        macro = find_macrostates(T, pi, m, states=np.arange(100, 100 + T.shape[0]))
     assert_valid_memberships(macro.affinity, T.shape[0], m)
     assert same_partition(macro.macro_index, blocks)
     assert macro.crispness > 0.97
@@ -89,7 +89,7 @@ def test_pcca_recovers_blocks_of_nearly_decomposable_chains(args):
 def test_memberships_are_ordered_by_population_and_keyed_by_label():
     T, pi, blocks = block_chain([3, 6, 2], 1e-4, 1)
     labels = np.array([11, 3, 7, 40, 41, 42, 43, 44, 45, 90, 91])
-    macro = find_macrostates(T, pi, 3, labels=labels, time_per_step=0.5, unit="ns")
+    macro = find_macrostates(T, pi, 3, states=labels, time_per_step=0.5, unit="ns")
     pops = macro.stationary_populations
     assert np.all(np.diff(pops) <= 0)
     assert pops.sum() == pytest.approx(1.0)

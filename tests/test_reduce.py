@@ -59,7 +59,7 @@ def test_equals_generalised_eigenproblem_on_full_covariances():
     runs.append(runs[0][:6])  # shorter than the lag: contributes nothing
     lag = 7
     with pytest.warns(DiagnosticWarning, match="1 of 5 runs are not longer than lag=7"):
-        tica = TICA(lag, dim=4, scaling=None).fit(runs)
+        tica = TICA(lag, dim=4, scaling="unit").fit(runs)
     mu, c0, ct = reference_covariances(runs[:4], lag)
     w, v = scipy.linalg.eigh(ct, c0)
     w, v = w[::-1], v[:, ::-1]
@@ -123,7 +123,7 @@ def test_lazy_npy_runs_give_the_same_answer(tmp_path):
     b = TICA(3, dim=2).fit(runs)
     assert np.allclose(a.components_, b.components_, atol=1e-10)
     out = a.transform(lazy)
-    assert isinstance(out, TrajectorySet) and out.feature_names == ("tic1", "tic2")
+    assert isinstance(out, TrajectorySet) and out.feature_names == ("ic1", "ic2")
     assert np.allclose(out[2], b.transform(runs[2]), atol=1e-10)
 
 
@@ -131,17 +131,26 @@ def test_kinetic_map_scales_by_eigenvalues():
     # Kinetic map (Noe & Clementi 2015): component i is multiplied by lambda_i, so its
     # variance over the fitted data is lambda_i^2.
     runs = ou_runs([0.02, 0.2, 1.0], 5000, 2, seed=4, mixing=np.eye(3) + 0.2)
-    km = TICA(5, dim=3).fit(runs)
-    plain = TICA(5, dim=3, scaling=None).fit(runs)
+    km = TICA(5, dim=3, scaling="kinetic").fit(runs)
+    plain = TICA(5, dim=3).fit(runs)  # default: unit variance per component
     y_km, y_plain = km.transform(runs[0]), plain.transform(runs[0])
     assert np.allclose(y_km, y_plain * km.eigenvalues_, atol=1e-12)
     allx = np.concatenate(km.transform(runs))
     assert np.allclose(allx.var(axis=0), km.eigenvalues_ ** 2, rtol=1e-8)
 
 
+def test_default_dimension_keeps_the_components_resolved_at_the_lag():
+    # OU rates k at lag 4 frames have autocorrelation exp(-4k) (exact for the OU process, common
+    # practice): 0.96, 0.82, 0.45 >= 1/e (relaxation time 1/k >= lag) are kept, exp(-8) = 0.0003 is not.
+    runs = ou_runs([0.01, 0.05, 0.2, 2.0], 20000, 2, seed=6, mixing=np.eye(4) + 0.1)
+    tica = TICA(4).fit(runs)
+    assert tica.dim_ == 3
+    assert np.all(tica.relaxation_times_ >= 4)
+
+
 def test_dimension_choice_by_kinetic_variance():
     runs = ou_runs([0.01, 0.05, 0.5, 2.0], 3000, 2, seed=6, mixing=np.eye(4) + 0.1)
-    tica = TICA(4).fit(runs)  # default: 95 % kinetic variance
+    tica = TICA(4, kinetic_variance=0.95).fit(runs)
     lam = TICA(4, dim=4).fit(runs).eigenvalues_
     cum = np.cumsum(lam ** 2) / np.sum(lam ** 2)
     assert tica.dim_ == int(np.argmax(cum >= 0.95)) + 1
@@ -189,7 +198,7 @@ def test_bad_input_raises_input_error():
         TICA(2, dim=3).fit(x)
     with pytest.raises(InputError, match="kinetic_variance must be between 0 and 1"):
         TICA(2, kinetic_variance=1.5).fit(x)
-    with pytest.raises(InputError, match="scaling must be 'kinetic_map' or None"):
+    with pytest.raises(InputError, match="scaling must be one of 'unit', 'kinetic'"):
         TICA(2, scaling="commute").fit(x)
     with pytest.raises(InputError, match="not fitted yet"):
         TICA(2).transform(x)
@@ -209,7 +218,7 @@ def test_projection_rows_reproduce_transform():
     # be exactly the transform (linear algebra, common practice), with and without scaling.
     rng = np.random.default_rng(7)
     x = np.cumsum(rng.normal(size=(3000, 4)), axis=0) * 0.01 + rng.normal(size=(3000, 4))
-    for scaling in ("kinetic_map", None):
+    for scaling in ("kinetic", "unit"):
         tica = TICA(5, dim=2, scaling=scaling).fit(x)
         np.testing.assert_allclose((x - tica.mean_) @ tica.projection_.T, tica.transform(x), rtol=1e-10, atol=1e-12)
         assert tica.projection_.shape == (2, 4)

@@ -152,7 +152,7 @@ def test_ck_table_units_and_intervals(markov_ck):
     assert np.all(markov_ck.lower <= markov_ck.upper)
     # the sets cover the kept states, disjointly, and their populations are the model's
     np.testing.assert_array_equal(np.sort(np.concatenate(markov_ck.members)), np.arange(3))
-    assert markov_ck.populations.sum() == pytest.approx(1.0)
+    assert markov_ck.set_populations.sum() == pytest.approx(1.0)
 
 
 def test_ck_same_seed_same_intervals(markov_model, markov_runs):
@@ -430,31 +430,6 @@ def test_cross_validation_bad_inputs(blob_runs, markov_runs):
 
 
 # --------------------------------------------------------------------------- figures
-
-def test_ck_figure(markov_ck, lumped_ck, lumped_runs):
-    from matplotlib.figure import Figure
-    from msmkit.plots import figure_png, plot_chapman_kolmogorov
-    fig = plot_chapman_kolmogorov(markov_ck)
-    assert isinstance(fig, Figure) and len(fig.axes) == 9
-    assert fig.get_suptitle().startswith("Chapman–Kolmogorov test passed: model at τ = 0.5 ns")
-    ax = fig.axes[1]  # set 0 -> set 1
-    assert ax.get_title() == "set 0 → set 1"
-    line = ax.get_lines()[0]
-    np.testing.assert_allclose(line.get_xdata(), [0, 0.5, 1.0, 1.5, 2.0, 2.5])
-    np.testing.assert_allclose(line.get_ydata()[1:], markov_ck.predicted[:, 0, 1])
-    assert fig.axes[-1].get_xlabel() == "lag time [ns]" and fig.axes[0].get_ylabel() == "probability"
-    failed = plot_chapman_kolmogorov(lumped_ck)
-    assert "failed" in failed.get_suptitle() and len(failed.axes) == 4
-    labels = [t.get_text() for t in failed.legends[0].get_texts()]
-    assert "prediction outside the interval" in labels
-    assert figure_png(failed).startswith(b"\x89PNG")
-    # without bootstrap the band is the tolerance around the estimates
-    model = quiet(build_model, lumped_runs, 1, dt=0.1, unit="ns")
-    plain = plot_chapman_kolmogorov(quiet(chapman_kolmogorov, model, lumped_runs, multiples=3, n_samples=0,
-                                          tolerance=0.01))
-    labels = [t.get_text() for t in plain.legends[0].get_texts()]
-    assert "estimate ± tolerance 0.01 (no bootstrap)" in labels and "prediction off by more than 0.01" in labels
-
 
 def test_lag_flow_figure(markov_ck, lumped_ck, markov_model, markov_runs):
     from msmkit.plots import figure_png, plot_lag_flow

@@ -442,8 +442,8 @@ def test_kinetics_button_gives_the_public_numbers(wb):
     from msmkit.widgets.kinetics import POPULATION_SAMPLES
     macro = model.find_macrostates(n_sets, labels=wb.labels, n_samples=POPULATION_SAMPLES, seed=0)
     np.testing.assert_allclose(wb.macrostates.affinity, macro.affinity)
-    pd.testing.assert_frame_equal(res.populations, macro.populations())
-    assert {"population_lower", "population_upper"} <= set(res.populations.columns)
+    pd.testing.assert_frame_equal(res.population_table, macro.populations())
+    assert {"population_lower", "population_upper"} <= set(res.population_table.columns)
     # routes between macrostates: the flux lumped onto them (Noé et al. PNAS 2009)
     routes = res.flux.lump(macro.members).routes(fraction=1.0)
     assert f"{' → '.join(str(j) for j in routes[0].states)} carries {100 * routes[0].share:.3g}%" \

@@ -8,6 +8,7 @@ import pandas as pd
 import traitlets
 
 from .._checks import check_int
+from ..defaults import ROUTE_SHARE
 from ..errors import InputError
 from . import _render
 from ._base import MacrostateCount, SetPair, Step, button, field, set_value, widgets
@@ -37,7 +38,7 @@ class KineticsSummary:
         Indices of the macrostates of the reactive flux.
     flux : TransitionPaths
         ``model.transition_paths(macrostates.members[source], macrostates.members[target])``.
-    populations : pandas.DataFrame
+    population_table : pandas.DataFrame
         ``macrostates.populations()``.
     passage : pandas.DataFrame
         One row per ordered pair of macrostates: ``from_macrostate``, ``to_macrostate``,
@@ -54,7 +55,7 @@ class KineticsSummary:
     source: int
     target: int
     flux: object
-    populations: pd.DataFrame
+    population_table: pd.DataFrame
     passage: pd.DataFrame
     routes: pd.DataFrame
     fraction: float
@@ -93,7 +94,7 @@ class KineticsPanel(Step):
 
     result = traitlets.Any(None)
 
-    def __init__(self, model=None, *, n_sets=None, fraction: float = 0.9, max_paths: int = 20,
+    def __init__(self, model=None, *, n_sets=None, fraction: float = ROUTE_SHARE, max_paths: int = 20,
                  progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-kinetics")
         self.model = None
@@ -296,7 +297,7 @@ def _states_text(states) -> str:
 
 
 def _populations_html(result, model) -> str:
-    df = result.populations
+    df = result.population_table
     has_interval = "population_lower" in df.columns
     shown = pd.DataFrame({"macrostate": df["macrostate"], "population": df["population"]})
     if has_interval:

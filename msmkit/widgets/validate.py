@@ -4,6 +4,7 @@ from __future__ import annotations
 import traitlets
 
 from .._checks import check_int
+from ..defaults import CK_MULTIPLES
 from ..errors import InputError
 from ..plots import plot_chapman_kolmogorov, plot_lag_flow
 from ..validate import chapman_kolmogorov, lag_flow
@@ -31,7 +32,7 @@ class ValidationPanel(Step):
         The label trajectories the model was built from (later with :meth:`set_labels`).
     n_sets : int, optional
         Number of macrostates tested (default: the model's suggestion, at least 2).
-    multiples : int, default 5
+    multiples : int, default 4 (``msmkit.defaults.CK_MULTIPLES``)
         Largest k: the model's T(tau)^k is compared with the data at lag k tau, k = 1..multiples.
     n_samples : int, default 20
         Bootstrap samples for the intervals of the estimates (0: a fixed tolerance instead).
@@ -48,7 +49,7 @@ class ValidationPanel(Step):
 
     ck = traitlets.Any(None)
 
-    def __init__(self, model=None, labels=None, *, n_sets=None, multiples: int = 5, n_samples: int = 20,
+    def __init__(self, model=None, labels=None, *, n_sets=None, multiples: int = CK_MULTIPLES, n_samples: int = 20,
                  seed: int = 0, progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-validate")
         self.model = None
@@ -148,7 +149,7 @@ class ValidationPanel(Step):
             _render.show_figure(self.ck_plot, plot_chapman_kolmogorov(ck), alt="Chapman-Kolmogorov test")
             _render.show_figure(self.flow_plot, plot_lag_flow(flow), alt="lag flow")
         self.ck, self.flow = ck, flow
-        self.pair.set_sets(ck.populations, flow.pair)
+        self.pair.set_sets(ck.set_populations, flow.pair)
         self.verdict.value = _verdict_html(ck)
         self.flow_summary.value = _render.message_html(flow.summary)
         self._report(f"Tested the model at lag {frames(ck.lag)} on {ck.n_sets} sets, k = 1..{len(ck.multiples)}"

@@ -7,6 +7,7 @@ from pathlib import Path
 import numpy as np
 
 from .._checks import check_dt, check_unit
+from ..defaults import CK_MULTIPLES, PROCESSES
 from ..errors import InputError
 from . import _render
 from ._base import FileRow, action, on_click, report, widgets
@@ -61,8 +62,8 @@ class Workbench(widgets.VBox):
 
     def __init__(self, trajs, *, dt=None, unit=None, features=None, use_tica: bool = True, tica_lag: int = 10,
                  tica_dim: int = 2, n_states: int = 100, method: str = "kmeans", stride: int = 1, seed: int = 0,
-                 lags=None, n_processes: int = 4, n_samples: int = 20, temperature=300.0, n_sets=None,
-                 multiples: int = 5, ck_samples: int = 20, file_name: str = "msmkit_model.npz",
+                 lags=None, n_processes: int = PROCESSES, n_samples: int = 20, temperature=300.0, n_sets=None,
+                 multiples: int = CK_MULTIPLES, ck_samples: int = 20, file_name: str = "msmkit_model.npz",
                  progress: bool = True):
         super().__init__()
         self.add_class("msmkit-workbench")
