@@ -30,21 +30,48 @@ EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
 
 
 # ----------------------------------------------------------------------------- pipeline
-def _microstates(trajs, *, n_states, tica_lag, tica_dim, stride, seed, progress):
-    """Trajectories -> (label trajectories, fitted TICA or None, fitted Microstates)."""
+#: Features whose standard deviations differ by more than this factor are not comparable in
+#: the distances k-means uses; without TICA or scaling the widest ones decide the states.
+SPREAD_RATIO_CAUTION = 10.0
+
+
+def _microstates(trajs, *, n_states, tica_lag, tica_dim, stride, seed, progress, scale="none",
+                 say=None):
+    """Trajectories -> (label trajectories, fitted TICA or None, fitted Microstates).
+
+    Without TICA, ``scale="standard"`` clusters features standardised to unit variance (the
+    model file then stores ``feature_mean`` and ``feature_scale``); with ``"none"`` a caution
+    goes to ``say`` when the features' spreads differ by more than SPREAD_RATIO_CAUTION.
+    """
+    from .io import load_trajectories
     from .reduce import TICA
     from .states import Microstates
     tica = None
     data = trajs
+    if not tica_dim:
+        trajs = load_trajectories(trajs)
+        if scale == "standard":
+            data = trajs.standardized()
+        elif say is not None:
+            _, sd = trajs.feature_spread()
+            live = sd[sd > 0]
+            if live.size > 1 and live.max() > SPREAD_RATIO_CAUTION * live.min():
+                say(f"caution: the features are clustered unscaled and their standard "
+                    f"deviations range from {live.min():.3g} to {live.max():.3g}; the widest "
+                    f"decide the states. Use --scale standard or --tica-dim")
     if tica_dim:
         tica = TICA(tica_lag, dim=tica_dim, progress=progress).fit(trajs)
         data = tica.transform(trajs)
     micro = Microstates(n_states, stride=stride, seed=seed, progress=progress).fit(data)
+    micro.feature_scaling_ = ((data.feature_mean, data.feature_scale)
+                              if hasattr(data, "feature_scale") else None)
     return micro.labels_, tica, micro
 
 
 def _extras(tica, micro) -> dict:
     out = {"centers": micro.centers_}
+    if getattr(micro, "feature_scaling_", None) is not None:
+        out["feature_mean"], out["feature_scale"] = micro.feature_scaling_
     if tica is not None:
         out["tica_mean"] = tica.mean_
         out["tica_components"] = tica.projection_  # rows as transform applies them, scaling included
@@ -232,7 +259,8 @@ def cmd_build(args) -> int:
     trajs, dt, unit = _load(args)
     labels, tica, micro = _microstates(trajs, n_states=args.states, tica_lag=_tica_lag(args),
                                        tica_dim=args.tica_dim, stride=args.stride, seed=args.seed,
-                                       progress=not args.quiet)
+                                       progress=not args.quiet, scale=args.scale,
+                                       say=lambda text: _say(args, text))
     model = build_model(labels, args.lag, dt=dt, unit=unit, reversible=not args.non_reversible)
     path = model.save(out, **_extras(tica, micro))
     _say(args, summary_text(model).rstrip())
@@ -245,7 +273,8 @@ def cmd_scan(args) -> int:
     lags = _parse_lags(args.lags)
     labels, tica, micro = _microstates(trajs, n_states=args.states, tica_lag=_tica_lag(args),
                                        tica_dim=args.tica_dim, stride=args.stride, seed=args.seed,
-                                       progress=not args.quiet)
+                                       progress=not args.quiet, scale=args.scale,
+                                       say=lambda text: _say(args, text))
     scan = _scan_and_choose(labels, args, lags, dt, unit)
     chosen = scan.suggested_lag if scan.suggested_lag is not None else int(scan.lags[0])
     out = _Outputs(args.output)
@@ -324,6 +353,9 @@ def build_parser() -> argparse.ArgumentParser:
                                  "default), nearest image, or ignore the box")
             sp.add_argument("--frames", metavar="START:STOP:STEP",
                             help="MD files: frame range and step read from each file, e.g. 0:5000:10")
+            sp.add_argument("--scale", choices=("standard", "none"), default="standard",
+                            help="without --tica-dim: cluster features standardised to unit variance "
+                                 "(standard, default) or as they are (none)")
         sp.add_argument("--states", type=_positive_int, default=100, help="number of k-means microstates (default %(default)s)")
         sp.add_argument("--tica-dim", type=int, default=None,
                         help="reduce to this many TICA coordinates before clustering (default: %(default)s; none = cluster the features)")

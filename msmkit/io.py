@@ -18,10 +18,14 @@ Formats
     Needs the optional extra ``hdf5`` (h5py). Every 2-D numeric dataset is one run (sorted by
     path; ``key=`` picks datasets), read lazily in chunks. Feature names come from a
     ``feature_names`` attribute of the dataset or of the file.
-MD formats (``.xtc``, ``.dcd``, ``.trr``, ``.pdb``, ``.nc``, ``.gro``, ...)
-    Needs the optional extra ``md`` (mdtraj). Features computed while reading: sine and cosine
-    of backbone torsions (``torsions=``) and distances between atom pairs in nm (``atom_pairs=``,
-    minimum image under periodic boundaries). Files without a topology need ``topology=``.
+MD formats (``.xtc``, ``.dcd``, ``.trr``, ``.pdb``, ``.nc``, ``.gro``, ..., also compressed)
+    Needs the optional extra ``md`` (mdtraj). Features computed while reading coordinates in
+    bounded chunks (:mod:`msmkit.mdfeatures`): torsions as sine and cosine, CA-CA distances,
+    distances, inverse distances or contacts of selected atoms (``features=``, ``selection=``,
+    ``torsions=``, ``atom_pairs=``), with periodic boundaries handled by ``periodic=``. Files
+    without a topology need ``topology``. DCD, XTC and TRR files are checked frame by frame
+    first; truncated or corrupt files raise InputError. The result's ``feature_atoms`` give
+    each feature's atom indices, and ``dt`` (ps) comes from the file when it records one.
 
 Checks
 ------
@@ -259,6 +263,17 @@ class LazyRun:
         return out
 
 
+class _ScaledRun(LazyRun):
+    """A run read through ``(x - mean) / scale``, block by block."""
+
+    def __init__(self, run, mean, scale):
+        super().__init__(getattr(run, "source", None) or "<array>", run.shape, np.float64)
+        self._run, self._mean, self._scale = run, mean, scale
+
+    def _read(self, start, stop):
+        return (np.asarray(self._run[start:stop], dtype=np.float64) - self._mean) / self._scale
+
+
 def _vanished(source: str, err: Exception) -> InputError:
     """The error for a file that could be listed but no longer read (moved, deleted, or not
     visible from this machine, e.g. a dask worker without the shared filesystem)."""
@@ -439,6 +454,34 @@ class TrajectorySet(Sequence):
         return TrajectorySet([np.asarray(r) for r in self._runs], self.feature_names,
                              dt=self.dt, unit=self.unit, sources=self._sources,
                              feature_atoms=self.feature_atoms)
+
+    def feature_spread(self, chunk_size: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Mean and standard deviation of every feature over all frames, in one chunked pass
+        (sums shifted by the first frame, so large offsets lose no precision)."""
+        shift = np.array(np.asarray(self._runs[0][:1], dtype=np.float64)[0])
+        n, total, squares = 0, np.zeros(self.n_features), np.zeros(self.n_features)
+        for run in self._runs:
+            for block in iter_chunks(run, chunk_size):
+                x = np.asarray(block, dtype=np.float64) - shift
+                n += len(x)
+                total += x.sum(axis=0)
+                squares += np.einsum("ij,ij->j", x, x)
+        mean = total / n
+        var = np.maximum(squares / n - mean ** 2, 0.0)
+        return mean + shift, np.sqrt(var)
+
+    def standardized(self, chunk_size: int | None = None) -> "TrajectorySet":
+        """The same runs with every feature shifted to mean 0 and scaled to standard deviation
+        1 (constant features are only shifted), read on demand; for clustering features of
+        different units or spreads without TICA. The result carries ``feature_mean`` and
+        ``feature_scale`` so that new data can be scaled alike."""
+        mean, sd = self.feature_spread(chunk_size)
+        scale = np.where(sd > 0, sd, 1.0)
+        out = TrajectorySet([_ScaledRun(r, mean, scale) for r in self._runs], self.feature_names,
+                            dt=self.dt, unit=self.unit, sources=self._sources,
+                            feature_atoms=self.feature_atoms)
+        out.feature_mean, out.feature_scale = mean, scale
+        return out
 
     def check_values(self, chunk_size: int | None = None, *, client=None) -> "TrajectorySet":
         """Read every lazy run once, raising InputError at the first NaN/infinite frame.

@@ -361,3 +361,44 @@ def test_tica_says_more_features_than_frames():
         warnings.simplefilter("always")
         TICA(1, dim=2).fit(few)
     assert not any("more features than frames" in str(w.message) for w in caught)
+
+
+# ---------------------------------------------------------------------------------------------
+# Defect 6: features of different spreads clustered without TICA
+# ---------------------------------------------------------------------------------------------
+
+def _mixed(**kw):
+    # torsion sines/cosines (sd below 1) next to CA-CA distances in nm: spreads differ a lot
+    return _quiet_load(data.DCD, topology=data.PSF, features="backbone-torsions,ca-distances",
+                       selection="resid 1 to 30", **kw)
+
+
+def test_standardized_features_match_numpy():
+    trajs = _mixed()
+    x = np.asarray(trajs[0])
+    sd = x.std(axis=0)  # numpy reference (population standard deviation)
+    assert sd.max() > 10 * sd[sd > 0].min()
+    scaled = trajs.standardized(chunk_size=7)
+    assert np.allclose(scaled.feature_mean, x.mean(axis=0), atol=1e-12)
+    assert np.allclose(scaled.feature_scale, np.where(sd > 0, sd, 1), rtol=1e-9)
+    assert np.allclose(np.asarray(scaled[0]), (x - x.mean(axis=0)) / np.where(sd > 0, sd, 1),
+                       atol=1e-9)
+
+
+def test_cli_scales_features_without_tica_and_cautions_when_told_not_to(tmp_path, capsys):
+    from msmkit.modelfile import load_model
+
+    common = [data.DCD, "--topology", data.PSF, "--features", "backbone-torsions,ca-distances",
+              "--select", "resid 1 to 30", "--states", "3", "--lag", "1"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DiagnosticWarning)
+        assert main(["build", *common, "--scale", "none", "-o", str(tmp_path / "raw.npz")]) == 0
+        said = capsys.readouterr().out
+        assert "caution: the features are clustered unscaled" in said
+        assert main(["build", *common, "-o", str(tmp_path / "std.npz")]) == 0
+    assert "caution: the features are clustered unscaled" not in capsys.readouterr().out
+    x = np.asarray(_mixed()[0])
+    model = load_model(tmp_path / "std.npz")
+    assert np.allclose(model.extras["feature_mean"], x.mean(axis=0), atol=1e-12)
+    assert np.allclose(model.extras["feature_scale"], x.std(axis=0), rtol=1e-9)
+    assert "feature_scale" not in load_model(tmp_path / "raw.npz").extras
