@@ -402,3 +402,28 @@ def test_cli_scales_features_without_tica_and_cautions_when_told_not_to(tmp_path
     assert np.allclose(model.extras["feature_mean"], x.mean(axis=0), atol=1e-12)
     assert np.allclose(model.extras["feature_scale"], x.std(axis=0), rtol=1e-9)
     assert "feature_scale" not in load_model(tmp_path / "raw.npz").extras
+
+
+# ---------------------------------------------------------------------------------------------
+# A saved model assigns new trajectories
+# ---------------------------------------------------------------------------------------------
+
+def test_saved_model_assigns_files_as_it_was_built(tmp_path):
+    from msmkit.mdfeatures import assign_files
+    from msmkit.model import fingerprint
+    from msmkit.modelfile import load_model
+
+    out = tmp_path / "m.npz"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DiagnosticWarning)
+        assert main(["build", data.DCD, "--topology", data.PSF, "--states", "4", "--tica-dim", "2",
+                     "--lag", "3", "-q", "-o", str(out)]) == 0
+        model = load_model(out)
+        again = assign_files(model, data.DCD, topology=data.PSF)
+        new = assign_files(model, data.DCD2, topology=data.PSF)
+    # the training file comes back with the very labels the model was counted from
+    assert fingerprint(again) == model.metadata["labels_sha256"]
+    assert len(new[0]) == _universe(data.PSF, data.DCD2).trajectory.n_frames
+    assert set(np.unique(new[0])) <= set(range(4))
+    with pytest.raises(InputError, match="differ from those the model was built on"):
+        assign_files(model, data.XTC, topology=data.GRO)
