@@ -349,10 +349,10 @@ def build_parser() -> argparse.ArgumentParser:
                                  "trajectories (.xtc, .trr, .dcd, .nc)")
             sp.add_argument("--features", metavar="KINDS",
                             help="MD files: comma-separated feature kinds: backbone-torsions (default), "
-                                 "sidechain-torsions, ca-distances, distances, inverse-distances, contacts")
+                                 "sidechain-torsions, ca-distances, residue-mindist, distances, inverse-distances, contacts")
             sp.add_argument("--select", metavar="SELECTION",
                             help="MD files: atom selection (mdtraj syntax) the features are limited to, "
-                                 "e.g. 'name CA and resid 10 to 60'")
+                                 "e.g. 'name CA and resSeq 10 to 60' (resSeq: the file's residue numbers; resid counts from 0)")
             sp.add_argument("--periodic", choices=("whole", "minimum-image", "none"), default="whole",
                             help="MD files: distances in a periodic box: join molecules first (whole, "
                                  "default), nearest image, or ignore the box")

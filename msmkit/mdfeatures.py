@@ -35,8 +35,8 @@ from .errors import DiagnosticWarning, InputError
 __all__ = ["MDFeatures", "FEATURE_KINDS", "PERIODIC_MODES", "FileIndex", "index_frames",
            "read_md_features", "assign_files"]
 
-FEATURE_KINDS = ("backbone-torsions", "sidechain-torsions", "ca-distances", "distances",
-                 "inverse-distances", "contacts")
+FEATURE_KINDS = ("backbone-torsions", "sidechain-torsions", "ca-distances", "residue-mindist",
+                 "distances", "inverse-distances", "contacts")
 PERIODIC_MODES = ("whole", "minimum-image", "none")
 _TOPOLOGY_IN_FILE = (".pdb", ".gro", ".lh5", ".arc", ".h5")
 _AMBER_TOPOLOGY = (".prmtop", ".parm7")
@@ -63,12 +63,14 @@ class MDFeatures:
     ----------
     kinds : sequence of str
         Any of ``"backbone-torsions"`` (phi, psi), ``"sidechain-torsions"`` (chi1, chi2),
-        ``"ca-distances"`` (CA pairs at least 3 residues apart, nm), ``"distances"`` (every
+        ``"ca-distances"`` (CA pairs at least 3 residues apart, nm), ``"residue-mindist"``
+        (closest heavy atoms of residue pairs at least 3 apart, nm), ``"distances"`` (every
         pair of the selected atoms, nm), ``"inverse-distances"`` (1/distance, 1/nm) and
         ``"contacts"`` (1 where a pair of selected atoms is closer than ``cutoff``, else 0).
         Torsions are given as their sine and cosine.
     selection : str, optional
-        mdtraj selection (e.g. ``"name CA and resid 10 to 50"``) limiting every kind to those
+        mdtraj selection (e.g. ``"name CA and resSeq 10 to 50"``; in this language ``resSeq``
+        is the file's residue number and ``resid`` a 0-based count) limiting every kind to those
         atoms; required for ``distances``, ``inverse-distances`` and ``contacts``.
     periodic : {"whole", "minimum-image", "none"}
         Distances in a periodic box: ``"whole"`` (default) joins every molecule across the
@@ -105,7 +107,7 @@ class MDFeatures:
             raise InputError(f"cutoff must be a positive distance in nm, but got {self.cutoff!r}")
         if self.selection is None and {"distances", "inverse-distances", "contacts"} & set(kinds):
             raise InputError("features: distances, inverse-distances and contacts need an atom "
-                             "selection (selection, e.g. 'name CA and resid 10 to 40')")
+                             "selection (selection, e.g. 'name CA and resSeq 10 to 40')")
         if self.torsions is not None:
             tors = (self.torsions,) if isinstance(self.torsions, str) else tuple(self.torsions)
             for t in tors:
@@ -155,7 +157,7 @@ class _Plan:
     atoms: list                       # per feature, a tuple of global atom indices
     quads: np.ndarray                 # (n_torsions, 4) global atom indices
     pairs: np.ndarray                 # (n_pairs, 2)
-    pair_transform: list              # per pair block: (slice of pairs, "distance"|"inverse"|"contact")
+    pair_transform: list              # per block: (slice of pairs, "d"|"1/d"|"contact"|"mindist", group starts)
     same_molecule: np.ndarray         # (n_pairs,) bool: both atoms in one bonded molecule
     read_atoms: np.ndarray            # sorted atom indices to read from the file
     unwrap: bool                      # make molecules whole before distances
@@ -305,7 +307,30 @@ def _plan(md, traj0, spec: MDFeatures, topology_path) -> _Plan:
             names.append(f"{word}({ta}, {tb})")
             atoms.append((int(a), int(b)))
             pairs.append((int(a), int(b)))
-        transform.append((slice(start, len(pairs)), word))
+        transform.append((slice(start, len(pairs)), word, None))
+
+    if "residue-mindist" in spec.kinds:
+        # heavy atoms of each protein residue with selected atoms; pairs of residues at least
+        # 3 apart along the sequence (common practice), closest heavy-atom distance
+        heavy = {}
+        for res in top.residues:
+            ids = [a.index for a in res.atoms if allowed[a.index] and res.is_protein
+                   and (a.element is None or a.element.symbol != "H")]
+            if ids:
+                heavy[res.index] = ids
+        keys = sorted(heavy)
+        start, starts = len(pairs), []
+        for x, rx in enumerate(keys):
+            for ry in keys[x + 1:]:
+                if ry - rx < 3:
+                    continue
+                starts.append(len(pairs) - start)
+                pairs.extend((a, b) for a in heavy[rx] for b in heavy[ry])
+                names.append(f"mindist({_residue_text(labels, top.residue(rx))}, "
+                             f"{_residue_text(labels, top.residue(ry))})")
+                atoms.append(tuple(heavy[rx] + heavy[ry]))
+        if starts:
+            transform.append((slice(start, len(pairs)), "mindist", np.array(starts)))
 
     if "ca-distances" in spec.kinds:
         ca = [a.index for a in top.atoms if a.name == "CA" and a.residue.is_protein
@@ -401,15 +426,17 @@ def _compute(md, chunk, plan: _Plan, spec: MDFeatures, local, path, warned: set)
             near = (dist[:, folded] > limit[:, None]).any(axis=0)
             if near.any():
                 warned.add("half-box")
-                first = plan.names[len(plan.quads) * 2 + int(np.flatnonzero(folded)[near][0])]
-                warnings.warn(f"{path}: {int(near.sum())} distances measured by the minimum "
-                              f"image come within {100 * (1 - _HALF_BOX_WARN):.0f} % of half "
-                              f"the box (e.g. {first}); beyond half the box they fold back and "
+                a, b = plan.pairs[int(np.flatnonzero(folded)[near][0])]
+                warnings.warn(f"{path}: {int(near.sum())} atom distances measured by the "
+                              f"minimum image come within {100 * (1 - _HALF_BOX_WARN):.0f} % of "
+                              f"half the box (e.g. atoms {a} and {b}); beyond half the box they fold back and "
                               f"are wrong. Use periodic='whole' for pairs in one molecule, or "
                               f"a larger box", DiagnosticWarning, stacklevel=5)
-        for where, word in plan.pair_transform:
+        for where, word, starts in plan.pair_transform:
             block = dist[:, where]
-            if word == "1/d":
+            if word == "mindist":
+                block = np.minimum.reduceat(block, starts, axis=1)
+            elif word == "1/d":
                 block = 1.0 / block
             elif word == "contact":
                 block = (block < spec.cutoff).astype(np.float64)

@@ -427,3 +427,40 @@ def test_saved_model_assigns_files_as_it_was_built(tmp_path):
     assert set(np.unique(new[0])) <= set(range(4))
     with pytest.raises(InputError, match="differ from those the model was built on"):
         assign_files(model, data.XTC, topology=data.GRO)
+
+
+def test_sidechain_chi1_matches_mdanalysis():
+    u = _universe(data.PSF, data.DCD)
+    trajs = _quiet_load(data.DCD, topology=data.PSF, features="sidechain-torsions")
+    cols, quads, ref = _torsion_reference(u, trajs, "chi1")
+    assert np.allclose(np.asarray(trajs[0])[:, cols], np.sin(ref), atol=2e-5)
+    # the residues and atoms as MDAnalysis' Residue.chi1_selection() picks them
+    expected = {}
+    for res in u.residues:
+        ag = res.chi1_selection()
+        if ag is not None:
+            expected[f"sin(chi1 {res.segid}:{res.resname}{res.resid})"] = tuple(ag.indices)
+    got = {trajs.feature_names[c]: tuple(q) for c, q in zip(cols, quads)}
+    assert got == expected
+
+
+def test_residue_minimum_distances_match_mdanalysis():
+    """Closest heavy-atom distance of residue pairs at least 3 apart, default 'whole', against
+    MDAnalysis: AtomGroup.unwrap, then MDAnalysis.lib.distances.distance_array minimum."""
+    from MDAnalysis.lib.distances import distance_array
+
+    trajs = _quiet_load(data.XTC, topology=data.GRO, features="residue-mindist",
+                        selection="resSeq 1 to 12")
+    u = _universe(data.TPR, data.XTC)
+    protein = u.select_atoms("protein")
+    res = [r.atoms.select_atoms("not name H*") for r in u.residues[:12]]
+    pairs = [(i, j) for i in range(12) for j in range(i + 3, 12)]
+    assert trajs.n_features == len(pairs)
+    assert trajs.feature_names[0] == (f"mindist(A:{u.residues[0].resname}1, "
+                                      f"A:{u.residues[3].resname}4)")
+    ref = []
+    for _ in u.trajectory:
+        protein.unwrap(compound="fragments")
+        ref.append([distance_array(res[i].positions, res[j].positions).min() for i, j in pairs])
+    assert np.allclose(np.asarray(trajs[0]), np.array(ref) / 10, atol=1e-4)
+    assert set(trajs.feature_atoms[0]) == set(res[0].indices) | set(res[3].indices)
