@@ -3,7 +3,7 @@
 The public API is re-exported here; nothing is computed at import time, and optional
 dependencies (ipywidgets, dask, mdtraj, h5py) are imported only where they are used.
 """
-__version__ = "0.1.0"
+from ._version import __version__
 
 from . import demo
 from .counts import communicating_classes, count_transitions, kept_states
@@ -15,8 +15,8 @@ from .kinetics import (Route, TransitionPaths, splitting_probability, mean_passa
 from .lagscan import LagScan, lag_scan, suggest_lag
 from .macro import (Macrostates, check_macrostate_gap, lumped_propagator, find_macrostates,
                     pcca_affinity, suggest_n_macrostates)
-from .model import MarkovModel, build_model
-from .modelfile import load_model, save_model
+from .model import MarkovModel, build_model, load_model
+from .modelfile import save_model
 from .reduce import TICA
 from .spectral import eigen_decomposition, implied_timescales, equilibrium_distribution
 from .states import Microstates, nearest_center

@@ -15,7 +15,9 @@ import numpy as np
 from .errors import InputError
 
 __all__ = [
+    "as_float_run",
     "as_float_trajectories",
+    "brief",
     "as_label_trajectories",
     "check_chunk_size",
     "check_finite_frames",
@@ -32,7 +34,8 @@ __all__ = [
 ]
 
 
-def _short(value, limit: int = 60) -> str:
+def brief(value, limit: int = 60) -> str:
+    """``repr(value)`` cut to ``limit`` characters, for error messages."""
     text = repr(value)
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
@@ -43,10 +46,10 @@ def check_int(value, name: str, *, minimum: int | None = None, maximum: int | No
     Booleans and non-integral floats are refused (a float like 10.0 is accepted).
     """
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, (numbers.Integral, numbers.Real)):
-        raise InputError(f"{name} must be an integer, but got {_short(value)}")
+        raise InputError(f"{name} must be an integer, but got {brief(value)}")
     if not isinstance(value, numbers.Integral):
         if not math.isfinite(value) or int(value) != value:
-            raise InputError(f"{name} must be an integer, but got {_short(value)}")
+            raise InputError(f"{name} must be an integer, but got {brief(value)}")
     value = int(value)
     if minimum is not None and value < minimum:
         raise InputError(f"{name} must be an integer not less than {minimum}, but got {value}")
@@ -63,7 +66,7 @@ def check_lag(lag, name: str = "lag") -> int:
 def check_dt(dt, name: str = "dt") -> float:
     """The physical time between frames: a finite positive number."""
     if isinstance(dt, (bool, np.bool_)) or not isinstance(dt, numbers.Real):
-        raise InputError(f"{name} (time between frames) must be a positive number, but got {_short(dt)}")
+        raise InputError(f"{name} (time between frames) must be a positive number, but got {brief(dt)}")
     dt = float(dt)
     if not math.isfinite(dt) or dt <= 0:
         raise InputError(f"{name} (time between frames) must be a finite positive number, but got {dt}")
@@ -74,14 +77,14 @@ def check_unit(unit, name: str = "unit") -> str:
     """A time unit label such as "ns"; any non-empty string."""
     if not isinstance(unit, str) or not unit.strip():
         raise InputError(f"{name} must be a non-empty string naming the time unit (e.g. 'ns'), "
-                         f"but got {_short(unit)}")
+                         f"but got {brief(unit)}")
     return unit.strip()
 
 
 def check_probability(value, name: str, *, open_interval: bool = True) -> float:
     """A number strictly between 0 and 1 (or in [0, 1] when ``open_interval`` is False)."""
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real):
-        raise InputError(f"{name} must be a number between 0 and 1, but got {_short(value)}")
+        raise InputError(f"{name} must be a number between 0 and 1, but got {brief(value)}")
     value = float(value)
     ok = (0 < value < 1) if open_interval else (0 <= value <= 1)
     if not ok:
@@ -109,7 +112,7 @@ def as_label_trajectories(labels, name: str = "labels") -> list[np.ndarray]:
                 f"but got an array of shape {labels.shape}; pass a list of 1-D runs instead, "
                 f"e.g. list(arr) for one run per row")
     elif isinstance(labels, (str, bytes)):
-        raise InputError(f"{name} must hold integer state labels, but got a string {_short(labels)}")
+        raise InputError(f"{name} must hold integer state labels, but got a string {brief(labels)}")
     elif isinstance(labels, Sequence) or hasattr(labels, "__iter__"):
         runs = list(labels)
         # a flat list of labels is one run (strings and other scalars too, so that their dtype
@@ -131,7 +134,7 @@ def as_label_trajectories(labels, name: str = "labels") -> list[np.ndarray]:
             raise InputError(f"{where} must be a 1-D array of state labels, but has shape {arr.shape}")
         if arr.dtype.kind in "USO" and arr.size:
             raise InputError(f"{where} must hold integer state labels, but holds {arr.dtype} values "
-                             f"such as {_short(arr[0].item() if isinstance(arr[0], np.generic) else arr[0])}; map them to integers 0..n-1 first")
+                             f"such as {brief(arr[0].item() if isinstance(arr[0], np.generic) else arr[0])}; map them to integers 0..n-1 first")
         if arr.dtype.kind == "b":
             raise InputError(f"{where} must hold integer state labels, but holds booleans")
         if arr.dtype.kind == "f":
@@ -166,7 +169,7 @@ def as_transition_matrix(T, name: str = "T", *, tol: float = 1e-6, irreducible: 
     try:
         arr = np.array(T, dtype=float)
     except (TypeError, ValueError):
-        raise InputError(f"{name} must be a square row-stochastic matrix of numbers, but got {_short(T)}") from None
+        raise InputError(f"{name} must be a square row-stochastic matrix of numbers, but got {brief(T)}") from None
     if arr.ndim != 2 or arr.shape[0] != arr.shape[1] or arr.shape[0] == 0:
         raise InputError(f"{name} must be a square (n x n) transition matrix with n >= 1, but has shape {arr.shape}")
     if not np.all(np.isfinite(arr)):
@@ -200,14 +203,14 @@ def as_state_set(states, name: str, valid_labels: np.ndarray) -> np.ndarray:
     try:
         arr = np.unique(np.asarray(list(states)))
     except TypeError:
-        raise InputError(f"{name} must be a list of state labels, but got {_short(states)}") from None
+        raise InputError(f"{name} must be a list of state labels, but got {brief(states)}") from None
     if arr.size == 0:
         raise InputError(f"{name} is empty: give at least one state label")
     if arr.dtype.kind not in "iu":
         if arr.dtype.kind == "f" and np.all(arr == np.round(arr)):
             arr = arr.astype(np.int64)
         else:
-            raise InputError(f"{name} must hold integer state labels, but got {_short(states)}")
+            raise InputError(f"{name} must hold integer state labels, but got {brief(states)}")
     missing = np.setdiff1d(arr, valid_labels)
     if missing.size:
         shown = ", ".join(str(int(m)) for m in missing[:10]) + (" ..." if missing.size > 10 else "")
@@ -284,7 +287,7 @@ def feature_names_of(trajs) -> tuple[str, ...] | None:
     return None if names is None else tuple(str(n) for n in names)
 
 
-def _as_float_run(run, where: str, feature_names=None):
+def as_float_run(run, where: str, feature_names=None):
     """One run as a 2-D float ndarray (checked finite) or a lazy run (checked while read)."""
     if is_lazy_run(run):
         shape = tuple(run.shape)
@@ -326,8 +329,8 @@ def as_float_trajectories(trajs, name: str = "trajs", *, feature_names=None) -> 
         raise InputError(f"{name} must be a 2-D array (frames x features) or a list of them, "
                          f"but got None")
     if isinstance(trajs, (str, bytes)):
-        raise InputError(f"{name} must hold trajectory data, but got the string {_short(trajs)}; "
-                         f"to read files use msmkit.load_trajectories({_short(trajs)})")
+        raise InputError(f"{name} must hold trajectory data, but got the string {brief(trajs)}; "
+                         f"to read files use msmkit.load_trajectories({brief(trajs)})")
     if feature_names is None:
         feature_names = feature_names_of(trajs)
     if isinstance(trajs, np.ndarray) or is_lazy_run(trajs) or (
@@ -347,7 +350,7 @@ def as_float_trajectories(trajs, name: str = "trajs", *, feature_names=None) -> 
     n_features = None
     for i, run in enumerate(runs):
         where = getattr(run, "source", None) or (f"{name}[{i}]" if len(runs) > 1 else name)
-        run = _as_float_run(run, where, feature_names)
+        run = as_float_run(run, where, feature_names)
         n, d = run.shape
         if n == 0:
             raise InputError(f"{where} has no frames; remove empty runs")

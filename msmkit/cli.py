@@ -294,7 +294,7 @@ def cmd_scan(args) -> int:
 
 
 def cmd_info(args) -> int:
-    from .modelfile import load_model
+    from .model import load_model
     model = load_model(args.model)
     macro, reason = None, ""
     if model.n_states > 2:
@@ -411,7 +411,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _version():
-    from . import __version__
+    from ._version import __version__
     return __version__
 
 

@@ -13,7 +13,9 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse import csgraph
 
+from . import _execution as execution
 from ._checks import as_label_trajectories, check_int, check_lag
+from .distributed import ClusterError
 from .errors import InputError
 
 __all__ = ["count_transitions", "communicating_classes", "kept_states", "run_count_rows"]
@@ -41,7 +43,17 @@ def _pair_codes(run: np.ndarray, lag: int, n_states: int, every_frame: bool) -> 
     return codes
 
 
-def _prepare(labels, lag, n_states):
+def prepare_counting(labels, lag, n_states):
+    """Checked label runs, lag and number of states for counting (InputError naming the
+    argument when the lag is not shorter than every run, no frame is assigned, or
+    ``n_states`` does not exceed the largest label).
+
+    Returns
+    -------
+    runs : list of int32 ndarray
+    lag : int
+    n_states : int
+    """
     runs = as_label_trajectories(labels)
     lag = check_lag(lag)
     longest = max(r.size for r in runs)
@@ -94,14 +106,35 @@ def count_transitions(labels, lag, *, n_states=None, every_frame=True, client=No
     array([[1, 1],
            [1, 1]])
     """
-    runs, lag, n_states = _prepare(labels, lag, n_states)
-    if client is not None:
-        from . import distributed as _dist
+    runs, lag, n_states = prepare_counting(labels, lag, n_states)
+    parts = execution.map_groups(count_codes, runs, lag, n_states, every_frame, client=client,
+                                 what="count_transitions", length=np.size)
+    if len(parts) == 1:
+        return codes_to_csr(*parts[0], n_states)
+    flat = np.zeros(n_states * n_states, dtype=np.int64)
+    for codes, counts in parts:
+        flat[codes] += counts
+    return flat_counts_to_csr(flat, n_states)
 
-        flat = _dist.count_flat(client, runs, lag, n_states, every_frame)
-    else:
-        flat = _count_flat(runs, lag, n_states, every_frame)
-    return _flat_to_csr(flat, n_states)
+
+def count_flat(runs, lag, n_states, every_frame=True) -> np.ndarray:
+    """Counts of checked label runs (see :func:`prepare_counting`) as one flat row-major int64
+    vector of length ``n_states**2``: entry ``i * n_states + j`` counts transitions i -> j."""
+    return _count_flat(runs, lag, n_states, every_frame)
+
+
+def count_codes(runs, lag, n_states, every_frame=True):
+    """Kernel of :func:`count_transitions` for a group of whole runs.
+
+    Returns
+    -------
+    (codes, counts), sizes
+        The nonzero entries of :func:`count_flat` (flat codes ``i * n_states + j``, sorted, and
+        their int64 counts) and the number of frames of each run seen (checked by the caller).
+    """
+    flat = _count_flat(runs, lag, n_states, every_frame)
+    codes = np.flatnonzero(flat)
+    return (codes, flat[codes]), [int(np.asarray(r).size) for r in runs]
 
 
 #: Pair codes counted per histogram pass: bounds the temporary buffer to 32 MiB however many
@@ -198,15 +231,21 @@ def _histogram(codes: np.ndarray, size: int) -> np.ndarray:
     return np.bincount(codes, minlength=size).astype(np.int64, copy=False)
 
 
-def _flat_to_csr(flat: np.ndarray, n_states: int) -> sp.csr_matrix:
-    """The flat row-major count vector as CSR, built from the nonzeros (already in CSR order)."""
+def flat_counts_to_csr(flat: np.ndarray, n_states: int) -> sp.csr_matrix:
+    """The flat row-major count vector of :func:`count_flat` as an (n_states, n_states) CSR."""
     nz = np.flatnonzero(flat)
-    indptr = np.searchsorted(nz, np.arange(n_states + 1, dtype=np.int64) * n_states)
-    return sp.csr_matrix((flat[nz].astype(np.int64, copy=False), nz % n_states, indptr),
+    return codes_to_csr(nz, flat[nz], n_states)
+
+
+def codes_to_csr(codes: np.ndarray, counts: np.ndarray, n_states: int) -> sp.csr_matrix:
+    """Sorted flat codes ``i * n_states + j`` and their counts as an int64 CSR matrix (the
+    codes are already in CSR order, so no sorting is needed)."""
+    indptr = np.searchsorted(codes, np.arange(n_states + 1, dtype=np.int64) * n_states)
+    return sp.csr_matrix((counts.astype(np.int64, copy=False), codes % n_states, indptr),
                          shape=(n_states, n_states))
 
 
-def run_count_rows(labels, lag, *, n_states=None, every_frame=True, blocks_per_run=1):
+def run_count_rows(labels, lag, *, n_states=None, every_frame=True, blocks_per_run=1, client=None):
     """Per-run (or per-block) count matrices, stacked as rows of one sparse matrix.
 
     Row r holds the flattened (n_states * n_states) count matrix of run r, so that a
@@ -214,19 +253,28 @@ def run_count_rows(labels, lag, *, n_states=None, every_frame=True, blocks_per_r
     With ``blocks_per_run > 1`` each run is cut into contiguous blocks by the start frame
     of each pair; the blocks' counts add up exactly to the run's counts.
 
+    ``labels`` may also be runs placed for ``client`` once for several calls
+    (:func:`msmkit._execution.place`); with a ``client`` each run is counted on a worker.
+
     Returns
     -------
     rows : scipy.sparse.csr_matrix of int64, shape (n_runs * blocks_per_run, n_states**2)
     n_states : int
     """
-    runs, lag, n_states = _prepare(labels, lag, n_states)
+    placed = labels if isinstance(labels, execution.Placed) else None
+    runs, lag, n_states = prepare_counting(labels if placed is None else placed.runs, lag, n_states)
     blocks_per_run = check_int(blocks_per_run, "blocks_per_run", minimum=1)
-    return _stack_rows([_run_rows(run, lag, n_states, every_frame, blocks_per_run) for run in runs],
-                            n_states), n_states
+    per_run = execution.map_runs(count_rows_of_run, runs if placed is None or client is None else placed,
+                                 lag, n_states, every_frame, blocks_per_run, client=client,
+                                 what="run_count_rows", length=np.size)
+    if any(len(r) != blocks_per_run for r in per_run):
+        raise ClusterError("run_count_rows: the count rows of some runs did not come back; run the "
+                           "call again")
+    return stack_count_rows(per_run, n_states), n_states
 
 
-def _run_rows(run, lag, n_states, every_frame, blocks_per_run) -> list:
-    """The rows of one run for :func:`run_count_rows`: one (codes, counts) pair per block."""
+def count_rows_of_run(run, lag, n_states, every_frame, blocks_per_run) -> list:
+    """Kernel of :func:`run_count_rows` for one run: one (codes, counts) pair per block."""
     out = []
     n_pairs = max(run.size - lag, 0)
     edges = np.linspace(0, n_pairs, blocks_per_run + 1).astype(np.intp)
@@ -239,8 +287,8 @@ def _run_rows(run, lag, n_states, every_frame, blocks_per_run) -> list:
     return out
 
 
-def _stack_rows(per_run, n_states) -> sp.csr_matrix:
-    """Stack the (codes, counts) blocks of :func:`_run_rows`, run after run, as CSR rows."""
+def stack_count_rows(per_run, n_states) -> sp.csr_matrix:
+    """Stack the (codes, counts) blocks of :func:`count_rows_of_run`, run after run, as CSR rows."""
     pieces = [p for run in per_run for p in run]
     indptr = np.concatenate([[0], np.cumsum([u.size for u, _ in pieces])]).astype(np.int64)
     return sp.csr_matrix((np.concatenate([c for _, c in pieces]).astype(np.int64),

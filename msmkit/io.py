@@ -47,8 +47,8 @@ from pathlib import Path
 import numpy as np
 
 from ._checks import (
-    _as_float_run,
-    _short,
+    as_float_run,
+    brief,
     as_float_trajectories,
     check_chunk_size,
     check_dt,
@@ -224,7 +224,7 @@ class LazyRun:
                                  f"{self._shape[0]} frames")
             index = np.flatnonzero(index)
         if index.dtype.kind not in "iu":
-            raise IndexError(f"cannot index a run with {_short(key)}")
+            raise IndexError(f"cannot index a run with {brief(key)}")
         return self._take(index)
 
     def _strided(self, start: int, stop: int, step: int) -> np.ndarray:
@@ -342,7 +342,7 @@ def _check_names(names, n_features: int, where: str) -> tuple[str, ...]:
     try:
         names = tuple(str(n) for n in names)
     except TypeError:
-        raise InputError(f"feature_names must be a list of strings, but got {_short(names)}") from None
+        raise InputError(f"feature_names must be a list of strings, but got {brief(names)}") from None
     if len(names) != n_features:
         raise InputError(f"feature_names has {len(names)} names but {where} has {n_features} "
                          f"features; give one name per feature (column)")
@@ -489,16 +489,18 @@ class TrajectorySet(Sequence):
         With ``client`` (a ``dask.distributed.Client``) the runs are read on the cluster's
         workers, one task per run.
         """
-        if client is not None:
-            from . import distributed as _dist
+        from . import _execution as execution
 
-            _dist.check_values(client, [r for r in self._runs if is_lazy_run(r)], chunk_size)
-            return self
-        for run in self._runs:
-            if is_lazy_run(run):
-                for _ in run.iter_chunks(chunk_size):
-                    pass
+        lazy = [r for r in self._runs if is_lazy_run(r)]
+        execution.map_runs(read_through, lazy, chunk_size, client=client, what="check_values",
+                           frames=int)
         return self
+
+
+def read_through(run, chunk_size: int | None = None) -> int:
+    """Kernel of :meth:`TrajectorySet.check_values`: read a run chunk by chunk (InputError at the
+    first NaN/infinite frame or when the file vanished) and return the number of frames read."""
+    return sum(len(block) for block in iter_chunks(run, chunk_size))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -689,7 +691,7 @@ def _read_hdf5(path: str, *, key=None, **md_options):
         for k in keys:
             if k not in fh or not isinstance(fh[k], h5py.Dataset):
                 raise InputError(f"key={k!r}: {path} has no dataset of that name; datasets "
-                                 f"there: {_short(sorted(_h5_datasets(fh, h5py)), 200)}")
+                                 f"there: {brief(sorted(_h5_datasets(fh, h5py)), 200)}")
             ds = fh[k]
             _check_numeric(ds.dtype, f"{path}:{k}")
             _check_shape(ds.shape, f"{path}:{k}", "the dataset")
@@ -737,6 +739,14 @@ def _read_md(path: str, *, topology=None, torsions=("phi", "psi"), atom_pairs=No
     return [arr], names
 
 
+def read_file(path: str, options: dict):
+    """Kernel of :func:`load_trajectories` for one file: the runs in it (lazy where the
+    format allows) and the feature names (or None); ``options`` are the reader options (``key``,
+    ``topology``, ``torsions``, ``atom_pairs``, and the MD options ``features``, ``periodic``,
+    ``selection``, ``frames``)."""
+    return _reader_for(path)(path, **options)
+
+
 def _reader_for(path: str):
     suffix = Path(path).suffix.lower()
     if suffix in NPY_SUFFIXES:
@@ -772,6 +782,10 @@ def _expand_path(item, name: str) -> list[str]:
     if not os.path.exists(text):
         raise InputError(f"{name}: no such file {text!r}")
     return [text]
+
+
+def _one_file(path) -> int:
+    return 1
 
 
 def _is_path(item) -> bool:
@@ -874,17 +888,27 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
             for path in _expand_path(item, where):
                 plan.append((path, _reader_for(path)))
         else:
-            plan.append((None, _as_float_run(item, where, None)))
+            plan.append((None, as_float_run(item, where, None)))
 
     n_files = sum(p is not None for p, _ in plan)
     read_remotely = None
     if client is not None and n_files:
-        from . import distributed as _dist
+        from . import _execution as execution
 
         options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs,
                        features=features, periodic=periodic, selection=selection, frames=frames)
-        read_remotely = _dist.read_files(client, [p for p, _ in plan if p is not None], options,
-                                         progress=progress)
+        unique = list(dict.fromkeys(p for p, _ in plan if p is not None))
+        bar = None
+        if progress and len(unique) > 1:
+            from tqdm.auto import tqdm
+            bar = tqdm(total=len(unique), desc="reading trajectories", unit="file")
+        try:
+            got = execution.map_runs(read_file, unique, options, client=client,
+                                     what="load_trajectories", length=_one_file, bar=bar)
+        finally:
+            if bar is not None:
+                bar.close()
+        read_remotely = dict(zip(unique, got))
         progress = False
     iterator = plan
     if progress and n_files > 1:
@@ -915,7 +939,7 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
                 names, names_from = file_names, path
             elif file_names != names and feature_names is None:
                 raise InputError(f"feature names differ between files: {names_from} has "
-                                 f"{_short(names, 120)} but {path} has {_short(file_names, 120)}; "
+                                 f"{brief(names, 120)} but {path} has {brief(file_names, 120)}; "
                                  f"load files with the same features together (or pass "
                                  f"feature_names= to override)")
         if runs and file_runs:
@@ -953,6 +977,6 @@ def _md_time_step(md_details, unit):
         return float(known[0]), "ps"
     if known:
         warnings.warn(f"the MD files do not agree on the time between frames "
-                      f"({_short(steps, 200)} ps); pass dt= (and unit=) to set it",
+                      f"({brief(steps, 200)} ps); pass dt= (and unit=) to set it",
                       DiagnosticWarning, stacklevel=3)
     return None, unit

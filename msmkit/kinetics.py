@@ -26,7 +26,7 @@ import numpy as np
 import scipy.linalg as la
 import scipy.sparse as sp
 
-from ._checks import as_transition_matrix
+from ._checks import as_transition_matrix, brief
 from .defaults import ROUTE_SHARE
 from .errors import DiagnosticWarning, InputError
 
@@ -49,22 +49,18 @@ DEFAULT_MAX_PATHS = 1000
 # --------------------------------------------------------------------------- input gates
 # Each public function converts its inputs here once; the helpers below trust them.
 
-def _short(value, limit: int = 60) -> str:
-    text = repr(value)
-    return text if len(text) <= limit else text[: limit - 3] + "..."
-
-
-def _as_transition_matrix(T, name: str = "T") -> np.ndarray:
+def as_stochastic_matrix(T, name: str = "T") -> np.ndarray:
+    """``T`` checked as a square row-stochastic matrix (InputError naming ``name`` if not)."""
     return as_transition_matrix(T, name, tol=_STOCHASTIC_TOL)
 
 
-def _as_stationary(pi, T: np.ndarray, name: str = "pi") -> np.ndarray:
+def as_stationary(pi, T: np.ndarray, name: str = "pi") -> np.ndarray:
     """The stationary distribution of ``T``: positive, summing to 1, with pi T = pi."""
     try:
         arr = np.array(pi, dtype=float)
     except (TypeError, ValueError):
         raise InputError(f"{name} must be a 1-D array of stationary probabilities, "
-                         f"but got {_short(pi)}") from None
+                         f"but got {brief(pi)}") from None
     n = T.shape[0]
     if arr.shape != (n,):
         raise InputError(f"{name} must have one entry per state of T (shape ({n},)), "
@@ -86,14 +82,14 @@ def _as_stationary(pi, T: np.ndarray, name: str = "pi") -> np.ndarray:
     return arr
 
 
-def _as_labels(labels, n: int) -> np.ndarray:
+def as_state_labels(labels, n: int) -> np.ndarray:
     """Original labels of the n rows of T (default 0..n-1): distinct integers."""
     if labels is None:
         return np.arange(n, dtype=np.int64)
     arr = np.asarray(labels)
     if arr.shape != (n,) or (arr.size and arr.dtype.kind not in "iu"):
         raise InputError(f"states must be {n} integer state labels (one per row of T), "
-                         f"but got {_short(labels)}")
+                         f"but got {brief(labels)}")
     if np.unique(arr).size != n:
         raise InputError("states must be distinct: each row of T is one state")
     return arr.astype(np.int64)
@@ -109,7 +105,7 @@ def _as_index_set(states, name: str, n: int) -> np.ndarray:
     try:
         arr = np.asarray(states)
     except (TypeError, ValueError):
-        raise InputError(f"{name} must be a list of state positions, but got {_short(states)}") from None
+        raise InputError(f"{name} must be a list of state positions, but got {brief(states)}") from None
     if arr.dtype == bool:
         if arr.shape != (n,):
             raise InputError(f"{name} as a boolean mask must have length {n}, but has shape {arr.shape}")
@@ -121,7 +117,7 @@ def _as_index_set(states, name: str, n: int) -> np.ndarray:
         if arr.dtype.kind == "f" and np.all(np.isfinite(arr)) and np.all(arr == np.round(arr)):
             arr = arr.astype(np.int64)
         else:
-            raise InputError(f"{name} must hold integer state positions, but got {_short(states)}")
+            raise InputError(f"{name} must hold integer state positions, but got {brief(states)}")
     if arr.min() < 0 or arr.max() >= n:
         bad = arr[(arr < 0) | (arr >= n)]
         raise InputError(f"{name} holds position(s) {', '.join(map(str, bad[:10]))} outside the "
@@ -145,14 +141,15 @@ def _source_and_target(source, target, n: int, labels: np.ndarray) -> tuple[np.n
     return source, target
 
 
-def _as_time_per_step(time_per_step, unit) -> tuple[float, str]:
+def as_time_per_step(time_per_step, unit) -> tuple[float, str]:
+    """The lag time (finite, > 0) and the name of the time unit (non-empty), checked."""
     if isinstance(time_per_step, (bool, np.bool_)) or not isinstance(time_per_step, numbers.Real) \
             or not np.isfinite(time_per_step) or time_per_step <= 0:
         raise InputError(f"time_per_step (the lag time lag x dt) must be a finite positive number, "
-                         f"but got {_short(time_per_step)}")
+                         f"but got {brief(time_per_step)}")
     if not isinstance(unit, str) or not unit.strip():
         raise InputError(f"unit must be a non-empty string naming the time unit (e.g. 'ns'), "
-                         f"but got {_short(unit)}")
+                         f"but got {brief(unit)}")
     return float(time_per_step), unit.strip()
 
 
@@ -254,7 +251,7 @@ def hitting_steps(T, target) -> np.ndarray:
     >>> hitting_steps([[0.9, 0.1], [0.5, 0.5]], [1])
     array([10.,  0.])
     """
-    T = _as_transition_matrix(T)
+    T = as_stochastic_matrix(T)
     target = _as_index_set(target, "target", T.shape[0])
     return _mfpt_steps(T, _mask(T.shape[0], target))
 
@@ -288,11 +285,11 @@ def mean_passage_time(T, pi, source, target, *, states=None, time_per_step: floa
     ----------
     Kemeny & Snell, Finite Markov Chains (1960), Sec. 4.4.
     """
-    T = _as_transition_matrix(T)
+    T = as_stochastic_matrix(T)
     n = T.shape[0]
-    pi = _as_stationary(pi, T)
-    labels = _as_labels(states, n)
-    time_per_step, _ = _as_time_per_step(time_per_step, "step")
+    pi = as_stationary(pi, T)
+    labels = as_state_labels(states, n)
+    time_per_step, _ = as_time_per_step(time_per_step, "step")
     source, target = _source_and_target(source, target, n, labels)
     m = _mfpt_steps(T, _mask(n, target))
     w = pi[source]
@@ -327,18 +324,18 @@ def passage_time_matrix(T, pi, sets, *, states=None, time_per_step: float = 1.0)
     ----------
     Kemeny & Snell, Finite Markov Chains (1960), Sec. 4.4.
     """
-    T = _as_transition_matrix(T)
+    T = as_stochastic_matrix(T)
     n = T.shape[0]
-    pi = _as_stationary(pi, T)
-    labels = _as_labels(states, n)
-    time_per_step, _ = _as_time_per_step(time_per_step, "step")
+    pi = as_stationary(pi, T)
+    labels = as_state_labels(states, n)
+    time_per_step, _ = as_time_per_step(time_per_step, "step")
     if isinstance(sets, np.ndarray) and sets.ndim == 1 and sets.dtype.kind in "iu":
         raise InputError("sets must be a list of sets of states (e.g. [[0, 1], [5]]), "
                          "not a flat array of states")
     try:
         sets = [_as_index_set(s, f"sets[{i}]", n) for i, s in enumerate(sets)]
     except TypeError:
-        raise InputError(f"sets must be a list of sets of states, but got {_short(sets)}") from None
+        raise InputError(f"sets must be a list of sets of states, but got {brief(sets)}") from None
     if not sets:
         raise InputError("sets is empty: give at least one set of states")
     for a in range(len(sets)):
@@ -401,9 +398,9 @@ def splitting_probability(T, source, target, *, reverse_time: bool = False, pi=N
     >>> splitting_probability(T, [0], [3]).round(3)
     array([0. , 0.1, 0.9, 1. ])
     """
-    T = _as_transition_matrix(T)
+    T = as_stochastic_matrix(T)
     n = T.shape[0]
-    labels = _as_labels(states, n)
+    labels = as_state_labels(states, n)
     source, target = _source_and_target(source, target, n, labels)
     a, b = _mask(n, source), _mask(n, target)
     if not reverse_time:
@@ -411,7 +408,7 @@ def splitting_probability(T, source, target, *, reverse_time: bool = False, pi=N
     if pi is None:
         raise InputError("pi (the stationary distribution) is required for the committor backward in time "
                          "(reverse_time=True), which uses the time-reversed chain")
-    pi = _as_stationary(pi, T)
+    pi = as_stationary(pi, T)
     return _committor_forward(_time_reversed(T, pi), b, a)
 
 
@@ -583,11 +580,11 @@ class TransitionPaths:
         if isinstance(fraction, (bool, np.bool_)) or not isinstance(fraction, numbers.Real) \
                 or not 0 < fraction <= 1:
             raise InputError(f"fraction must be a number in (0, 1] (the share of the total flux to "
-                             f"explain), but got {_short(fraction)}")
+                             f"explain), but got {brief(fraction)}")
         if max_paths is not None:
             if isinstance(max_paths, (bool, np.bool_)) or not isinstance(max_paths, numbers.Integral) \
                     or max_paths < 1:
-                raise InputError(f"max_paths must be a positive integer or None, but got {_short(max_paths)}")
+                raise InputError(f"max_paths must be a positive integer or None, but got {brief(max_paths)}")
         index = {int(lab): i for i, lab in enumerate(self.states)}
         a = _mask(len(self.states), np.array([index[int(x)] for x in self.source]))
         b = _mask(len(self.states), np.array([index[int(x)] for x in self.target]))
@@ -687,11 +684,11 @@ def transition_paths(T, pi, source, target, *, states=None, time_per_step: float
     >>> [(p.states, round(p.share, 3)) for p in flux.routes()]
     [((0, 1, 3), 0.5), ((0, 2, 3), 0.5)]
     """
-    T = _as_transition_matrix(T)
+    T = as_stochastic_matrix(T)
     n = T.shape[0]
-    pi = _as_stationary(pi, T)
-    labels = _as_labels(states, n)
-    time_per_step, unit = _as_time_per_step(time_per_step, unit)
+    pi = as_stationary(pi, T)
+    labels = as_state_labels(states, n)
+    time_per_step, unit = as_time_per_step(time_per_step, unit)
     source, target = _source_and_target(source, target, n, labels)
     a, b = _mask(n, source), _mask(n, target)
     qf = _committor_forward(T, a, b)

@@ -19,10 +19,11 @@ from ._bootstrap import fit_sample, percentile_interval, resampling_plan, sample
 from ._bootstrap import progress_bar as _progress
 from ._bootstrap import unflatten as _unflatten
 from ._checks import as_label_trajectories, check_dt, check_int, check_probability, check_unit
-from .counts import run_count_rows
+from ._execution import map_sample_batches, place
+from .counts import prepare_counting, run_count_rows
 from .defaults import PROCESSES
 from .errors import InputError
-from .model import MarkovModel, fingerprint, model_from_counts, _now, _version
+from .model import MarkovModel, fingerprint, model_from_counts, now_utc, package_version
 from .spectral import eigen_decomposition, implied_timescales
 
 __all__ = ["LagScan", "lag_scan", "suggest_lag"]
@@ -169,25 +170,18 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     samples = np.full((L, n_samples, n_processes), np.nan)
     models = {}
     metadata = {"labels_sha256": fingerprint(runs), "frames_per_run": [int(r.size) for r in runs],
-                "package_version": _version()}
-    remote = None
+                "package_version": package_version()}
     if client is not None:
-        from . import distributed as _dist
-        from .counts import _prepare
-
-        n_states = _prepare(runs, lags[0], n_states)[2]
-        remote = _dist.scatter_labels(client, runs)
+        n_states = prepare_counting(runs, lags[0], n_states)[2]
+    placed = place(runs, client)  # label arrays sent to the workers once, for every lag
     bar = _progress(L * (1 + n_samples), progress, "lag scan")
     pool = ThreadPoolExecutor(min(2, os.cpu_count() or 1))
     try:
         for a, lag in enumerate(lags):
-            if remote is not None:
-                n = n_states
-                rows = _dist.count_rows(client, remote, [r.size for r in runs], lag, n, every_frame, blocks)
-            else:
-                rows, n = run_count_rows(runs, lag, n_states=n_states, every_frame=every_frame, blocks_per_run=blocks)
+            rows, n = run_count_rows(placed, lag, n_states=n_states, every_frame=every_frame, blocks_per_run=blocks,
+                                     client=client)
             full = _unflatten(np.asarray(rows.sum(axis=0)).ravel(), n)
-            meta = dict(metadata, created=_now(),
+            meta = dict(metadata, created=now_utc(),
                         parameters={"lag": int(lag), "dt": dt, "unit": unit, "reversible": bool(reversible),
                                     "every_frame": bool(every_frame), "n_states": n})
             model = model_from_counts(full, lag, dt=dt, unit=unit, reversible=reversible, metadata=meta,
@@ -200,9 +194,10 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
                 initial = np.zeros(n)
                 initial[model.states] = model.equilibrium
                 sampled = sample_rows(weights, rows)  # (n_samples, n*n): all samples in one product
-                if remote is not None:
-                    samples[a] = _dist.bootstrap_timescales(client, sampled, n, lag, dt, reversible,
-                                                            initial, n_processes, bar)
+                if client is not None:
+                    samples[a] = map_sample_batches(sample_timescales_batch, sampled, n, lag, dt, reversible,
+                                                    initial, n_processes, client=client,
+                                                    what=f"bootstrap samples at lag {lag}", bar=bar)
                     continue
                 def one(b, sampled=sampled, n=n, lag=lag, initial=initial):
                     return _sample_timescales(sampled.getrow(b), n, lag, dt, reversible, initial, n_processes)
@@ -257,6 +252,16 @@ def _sample_timescales(row, n, lag, dt, reversible, initial, k) -> np.ndarray:
     _, T, pi = fit
     w = eigen_decomposition(T, pi, k=min(k + 1, T.shape[0]), reversible=reversible)
     return implied_timescales(w[1:k + 1], lag, dt)
+
+
+def sample_timescales_batch(rows, n, lag, dt, reversible, initial, k) -> np.ndarray:
+    """Kernel of the bootstrap on a cluster: the timescales of a batch of bootstrap samples
+    (one flattened count row each), ``(n_rows, k)``, NaN where a sample has fewer processes."""
+    out = np.full((rows.shape[0], k), np.nan)
+    for b in range(rows.shape[0]):
+        got = _sample_timescales(rows.getrow(b), n, lag, dt, reversible, initial, k)
+        out[b, :got.size] = got
+    return out
 
 
 def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow: int = 2, rtol: float = 0.05,

@@ -23,8 +23,8 @@ import scipy.linalg as la
 import scipy.optimize as opt
 
 from .errors import DiagnosticWarning, InputError
-from .kinetics import (_as_labels, _as_stationary, _as_time_per_step,
-                       _as_transition_matrix, _short, passage_time_matrix)
+from .kinetics import (as_state_labels, as_stationary, as_time_per_step,
+                       as_stochastic_matrix, brief, passage_time_matrix)
 from .spectral import obeys_detailed_balance
 
 __all__ = [
@@ -194,13 +194,13 @@ def _pcca(T: np.ndarray, pi: np.ndarray, m: int, reversible: bool, optimize: boo
 
 
 def _gates(T, pi, n_sets, reversible):
-    T = _as_transition_matrix(T)
-    pi = _as_stationary(pi, T)
+    T = as_stochastic_matrix(T)
+    pi = as_stationary(pi, T)
     n = T.shape[0]
     if isinstance(n_sets, (bool, np.bool_)) or not isinstance(n_sets, numbers.Integral) \
             or not 1 <= n_sets <= n:
         raise InputError(f"n_sets (number of macrostates) must be an integer from 1 to the number of "
-                         f"states ({n}), but got {_short(n_sets)}")
+                         f"states ({n}), but got {brief(n_sets)}")
     if reversible is None:
         reversible = obeys_detailed_balance(T, pi)
     return T, pi, int(n_sets), bool(reversible)
@@ -276,8 +276,8 @@ def lumped_propagator(T, pi, affinity) -> np.ndarray:
     Deuflhard & Weber, Linear Algebra Appl. 398, 161 (2005), Sec. 3; Röblitz & Weber, Adv.
     Data Anal. Classif. 7, 147 (2013), Sec. 2.
     """
-    T = _as_transition_matrix(T)
-    pi = _as_stationary(pi, T)
+    T = as_stochastic_matrix(T)
+    pi = as_stationary(pi, T)
     chi = _as_affinity(affinity, T.shape[0])
     return _coarse(T, pi, chi)
 
@@ -286,7 +286,7 @@ def _as_affinity(affinity, n: int) -> np.ndarray:
     try:
         chi = np.array(affinity, dtype=float)
     except (TypeError, ValueError):
-        raise InputError(f"affinity must be an (n, m) array of numbers, but got {_short(affinity)}") from None
+        raise InputError(f"affinity must be an (n, m) array of numbers, but got {brief(affinity)}") from None
     if chi.ndim != 2 or chi.shape[0] != n or chi.shape[1] < 1:
         raise InputError(f"affinity must have shape ({n}, m): one row per state of T, but has "
                          f"shape {chi.shape}")
@@ -333,7 +333,7 @@ def _as_eigenvalues(eigenvalues) -> np.ndarray:
     try:
         lam = np.asarray(eigenvalues, dtype=complex).ravel()
     except (TypeError, ValueError):
-        raise InputError(f"eigenvalues must be an array of numbers, but got {_short(eigenvalues)}") from None
+        raise InputError(f"eigenvalues must be an array of numbers, but got {brief(eigenvalues)}") from None
     if lam.size == 0 or not np.all(np.isfinite(lam)):
         raise InputError("eigenvalues must be a non-empty array of finite numbers "
                          "(the leading eigenvalues of T, the first being 1)")
@@ -373,8 +373,8 @@ def suggest_n_macrostates(eigenvalues, *, max_sets: int = 10, min_timescale: flo
     """
     lam = _as_eigenvalues(eigenvalues)
     if isinstance(max_sets, (bool, np.bool_)) or not isinstance(max_sets, numbers.Integral) or max_sets < 1:
-        raise InputError(f"max_sets must be a positive integer, but got {_short(max_sets)}")
-    time_per_step, unit = _as_time_per_step(time_per_step, unit)
+        raise InputError(f"max_sets must be a positive integer, but got {brief(max_sets)}")
+    time_per_step, unit = as_time_per_step(time_per_step, unit)
     t = _timescales_steps(lam)
     top = min(int(max_sets), t.size - 1)
     candidates = [n for n in range(2, top + 1) if t[n - 1] > min_timescale]
@@ -430,9 +430,9 @@ def check_macrostate_gap(eigenvalues, n_sets: int, *, min_ratio: float = 1.5,
         macrostates is faster than one lag step.
     """
     lam = _as_eigenvalues(eigenvalues)
-    time_per_step, unit = _as_time_per_step(time_per_step, unit)
+    time_per_step, unit = as_time_per_step(time_per_step, unit)
     if isinstance(n_sets, (bool, np.bool_)) or not isinstance(n_sets, numbers.Integral) or n_sets < 1:
-        raise InputError(f"n_sets must be a positive integer, but got {_short(n_sets)}")
+        raise InputError(f"n_sets must be a positive integer, but got {brief(n_sets)}")
     t = _timescales_steps(lam)
     if n_sets == 1 or n_sets >= t.size:
         return float("nan")
@@ -542,14 +542,14 @@ class Macrostates:
             if isinstance(temperature, (bool, np.bool_)) or not isinstance(temperature, numbers.Real) \
                     or not np.isfinite(temperature) or temperature <= 0:
                 raise InputError(f"temperature must be a positive number in kelvin, but got "
-                                 f"{_short(temperature)}")
+                                 f"{brief(temperature)}")
             data["free_energy_kJ_per_mol"] = g * _R_KJ * float(temperature)
         data["states"] = [tuple(int(x) for x in s) for s in self.members]
         if self.population_samples is not None:
             if isinstance(confidence, (bool, np.bool_)) or not isinstance(confidence, numbers.Real) \
                     or not 0 < confidence < 1:
                 raise InputError(f"confidence must be a number strictly between 0 and 1, but got "
-                                 f"{_short(confidence)}")
+                                 f"{brief(confidence)}")
             half = 50.0 * (1.0 - confidence)
             data["population_lower"] = np.percentile(self.population_samples, half, axis=0)
             data["population_upper"] = np.percentile(self.population_samples, 100.0 - half, axis=0)
@@ -642,8 +642,8 @@ def find_macrostates(T, pi, n_sets: int, *, states=None, time_per_step: float = 
            [0.01, 0.99]])
     """
     T, pi, n_sets, reversible = _gates(T, pi, n_sets, reversible)
-    labels = _as_labels(states, T.shape[0])
-    time_per_step, unit = _as_time_per_step(time_per_step, unit)
+    labels = as_state_labels(states, T.shape[0])
+    time_per_step, unit = as_time_per_step(time_per_step, unit)
     if population_samples is not None:
         samples = np.asarray(population_samples, dtype=float)
         if samples.ndim != 2 or samples.shape[1] != n_sets or samples.shape[0] < 1:

@@ -16,12 +16,14 @@ import numpy as np
 import scipy.sparse as sp
 
 from ._checks import as_label_trajectories, as_state_set, as_transition_matrix, check_dt, check_int, check_unit
-from .counts import _count_flat, _flat_to_csr, _prepare, kept_states
+from ._version import __version__
+from .counts import count_flat, flat_counts_to_csr, kept_states, prepare_counting
 from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix
+from .modelfile import read_model_file, save_model
 from .spectral import chain_diagnostics, eigen_decomposition, implied_timescales, obeys_detailed_balance, equilibrium_distribution
 
-__all__ = ["MarkovModel", "build_model", "GAS_CONSTANT_KJ"]
+__all__ = ["MarkovModel", "build_model", "load_model", "GAS_CONSTANT_KJ"]
 
 #: molar gas constant in kJ mol^-1 K^-1 (CODATA 2018, exact)
 GAS_CONSTANT_KJ = 8.314462618e-3
@@ -29,8 +31,8 @@ GAS_CONSTANT_KJ = 8.314462618e-3
 REPORTED = 5
 
 
-def _version() -> str:
-    from . import __version__
+def package_version() -> str:
+    """The version of msmkit, recorded in the metadata of every model."""
     return __version__
 
 
@@ -294,7 +296,6 @@ class MarkovModel:
         ``extra_arrays`` may hold the optional keys of the file format: ``centers``,
         ``tica_mean``, ``tica_components``, ``affinity``. See :mod:`msmkit.modelfile`.
         """
-        from .modelfile import save_model
         return save_model(self, path, overwrite=overwrite, **extra_arrays)
 
     # ----------------------------------------------------------------- constructors
@@ -325,8 +326,8 @@ class MarkovModel:
         if reversible is None:
             reversible = obeys_detailed_balance(T, pi)
         model = cls(T, pi, labels.astype(np.int64), 1, dt, unit, bool(reversible),
-                    metadata={"source": "transition matrix", "package_version": _version(),
-                              "created": _now()})
+                    metadata={"source": "transition matrix", "package_version": package_version(),
+                              "created": now_utc()})
         model.diagnostics = chain_diagnostics(model.spectrum(REPORTED + 1), lag=1, dt=dt, unit=unit,
                                               n_reported=min(REPORTED, n - 1))
         for line in model.diagnostics:
@@ -334,7 +335,26 @@ class MarkovModel:
         return model
 
 
-def _now() -> str:
+def load_model(path) -> MarkovModel:
+    """Read a model file written by :func:`~msmkit.save_model` (or :meth:`MarkovModel.save`),
+    checking everything in it (see :func:`msmkit.modelfile.read_model_file`).
+
+    Raises
+    ------
+    ModelFileError
+        Naming what is wrong: not an npz file, truncated, pickled objects, a missing key, a
+        wrong shape, rows not summing to 1, a stationary vector that is not stationary, ...
+
+    Returns
+    -------
+    MarkovModel
+        With ``.extras`` (dict) holding any optional arrays (centers, TICA, affinity).
+    """
+    return MarkovModel(**read_model_file(path))
+
+
+def now_utc() -> str:
+    """The time now (UTC, ISO 8601, seconds), recorded in the metadata of every model."""
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
 
@@ -385,18 +405,18 @@ def build_model(labels, lag, *, dt: float = 1.0, unit: str = "step", reversible:
     >>> model.equilibrium.round(3)
     array([0.5, 0.5])
     """
-    runs, lag, n = _prepare(labels, lag, n_states)
+    runs, lag, n = prepare_counting(labels, lag, n_states)
     dt, unit = check_dt(dt), check_unit(unit)
-    flat = _count_flat(runs, lag, n, every_frame)
+    flat = count_flat(runs, lag, n, every_frame)
     metadata = {
         "parameters": {"lag": lag, "dt": dt, "unit": unit, "reversible": bool(reversible),
                        "every_frame": bool(every_frame), "n_states": n},
-        "package_version": _version(),
-        "created": _now(),
+        "package_version": package_version(),
+        "created": now_utc(),
         "labels_sha256": fingerprint(runs),
         "frames_per_run": [int(r.size) for r in runs],
     }
-    return model_from_counts(_flat_to_csr(flat, n), lag, dt=dt, unit=unit, reversible=reversible,
+    return model_from_counts(flat_counts_to_csr(flat, n), lag, dt=dt, unit=unit, reversible=reversible,
                              metadata=metadata)
 
 

@@ -34,7 +34,7 @@ import scipy.sparse as sp
 
 from .errors import InputError, ModelFileError
 
-__all__ = ["FORMAT", "FORMAT_VERSION", "load_model", "save_model"]
+__all__ = ["FORMAT", "FORMAT_VERSION", "read_model_file", "save_model"]
 
 FORMAT = "msmkit-model"
 FORMAT_VERSION = 1
@@ -140,8 +140,12 @@ def _jsonable(obj):
     return obj
 
 
-def load_model(path):
+def read_model_file(path) -> dict:
     """Read a model file written by :func:`save_model`, checking everything in it.
+
+    This module knows the file, not the model class: the result is the keyword arguments of
+    :class:`~msmkit.MarkovModel` (``msmkit.model.load_model`` builds the model from them), so
+    the model module may import this one and never the other way round.
 
     Raises
     ------
@@ -151,10 +155,12 @@ def load_model(path):
 
     Returns
     -------
-    MarkovModel
-        With ``.extras`` (dict) holding any optional arrays (centers, TICA, affinity).
+    dict
+        ``propagator``, ``equilibrium``, ``states``, ``lag``, ``dt``, ``unit``, ``reversible``
+        and the keyword arguments ``transition_counts``, ``kept_fraction``,
+        ``dropped_states``, ``diagnostics``, ``metadata``, ``extras`` (optional arrays:
+        centers, TICA, affinity).
     """
-    from .model import MarkovModel
     path = Path(path)
     if not path.is_file():
         raise ModelFileError(f"{path}: no such file")
@@ -244,11 +250,11 @@ def load_model(path):
             raise ModelFileError(f"{path}: tica_components must be (dim, n_features) with n_features = "
                                  f"len(tica_mean)")
 
-    model = MarkovModel(T, pi, states.astype(np.int64), lag, dt, unit, reversible, transition_counts=counts,
-                        kept_fraction=float(metadata.get("kept_fraction", 1.0)),
-                        dropped_states=np.asarray(metadata.get("dropped_states", []), dtype=np.int64),
-                        diagnostics=list(metadata.get("diagnostics", [])), metadata=metadata, extras=extras)
-    return model
+    return dict(propagator=T, equilibrium=pi, states=states.astype(np.int64), lag=lag, dt=dt, unit=unit,
+                reversible=reversible, transition_counts=counts,
+                kept_fraction=float(metadata.get("kept_fraction", 1.0)),
+                dropped_states=np.asarray(metadata.get("dropped_states", []), dtype=np.int64),
+                diagnostics=list(metadata.get("diagnostics", [])), metadata=metadata, extras=extras)
 
 
 def _scalar(data, key, kind, path):

@@ -28,6 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.linalg
 
+from . import _execution as execution
 from ._checks import (
     as_float_trajectories,
     check_chunk_size,
@@ -35,6 +36,7 @@ from ._checks import (
     check_lag,
     check_probability,
     feature_names_of,
+    is_lazy_run,
 )
 from .errors import DiagnosticWarning, InputError
 from .io import LazyRun, TrajectorySet, iter_chunks, load_trajectories
@@ -370,12 +372,9 @@ class TICA:
             warnings.warn(f"TICA: {n_short} of {len(runs)} runs are not longer than lag={lag} "
                           f"frames and are left out ({lost} frames discarded)",
                           DiagnosticWarning, stacklevel=2)
-        if client is not None:
-            from . import distributed as _dist
-
-            shift = _dist.first_frame(client, used[0])  # the client need not see the files
-        else:
-            shift = np.array(used[0][0], dtype=np.float64)
+        # frame 0 of a file is read where the files are (the client need not see them)
+        shift = execution.map_runs(first_frame, used[:1], client=client if is_lazy_run(used[0]) else None,
+                                   what="TICA.fit")[0]
 
         bar = None
         if self.progress:
@@ -383,12 +382,9 @@ class TICA:
             bar = tqdm(total=sum(r.shape[0] for r in used), desc="TICA", unit="frame")
         try:
             moments = _empty_moments(lag, shift)
-            if client is not None:
-                for part in _dist.run_moments_each(client, used, lag, shift, chunk, bar):
-                    moments = moments + part  # in run order, as below
-            else:
-                for run in used:
-                    moments = moments + run_moments(run, lag, shift, chunk, bar)
+            for part in execution.map_runs(run_moments, used, lag, shift, chunk, client=client,
+                                           what="TICA.fit", bar=bar, frames=_frames_of):
+                moments = moments + part  # in run order on either path
         finally:
             if bar is not None:
                 bar.close()
@@ -541,10 +537,6 @@ class TICA:
         if lazy:
             return TrajectorySet([_ProjectedRun(r, self.mean_, proj, chunk) for r in runs],
                                  self.get_feature_names_out(), dt=dt, unit=unit)
-        if client is not None:
-            from . import distributed as _dist
-
-            _dist.check_client(client)
         if out is not None:
             paths = _output_paths(out, len(runs))
         bar = None
@@ -555,11 +547,9 @@ class TICA:
             if out is not None:
                 temps = [_temp_name(p) for p in paths]
                 try:
-                    if client is not None:
-                        _dist.project_runs(client, runs, self.mean_, proj, chunk, temps, bar)
-                    else:
-                        for run, tmp in zip(runs, temps):
-                            _project_run(run, self.mean_, proj, chunk, tmp, bar)
+                    execution.map_runs(project_run, runs, self.mean_, proj, chunk, client=client,
+                                       what="TICA.transform", bar=bar, frames=int, per_run=temps,
+                                       local_bar=True)
                     for tmp, path in zip(temps, paths):
                         os.replace(tmp, path)
                 finally:
@@ -568,10 +558,8 @@ class TICA:
                             os.remove(tmp)
                 result = load_trajectories(paths, dt=dt, unit=unit, client=client)
                 return TrajectorySet(result.runs, self.get_feature_names_out(), dt=dt, unit=unit)
-            if client is not None:
-                out_runs = _dist.project_runs(client, runs, self.mean_, proj, chunk, None, bar)
-            else:
-                out_runs = [_project_run(run, self.mean_, proj, chunk, None, bar) for run in runs]
+            out_runs = execution.map_runs(project_run, runs, self.mean_, proj, chunk, client=client,
+                                          what="TICA.transform", bar=bar, frames=len, local_bar=True)
         finally:
             if bar is not None:
                 bar.close()
@@ -597,9 +585,18 @@ class TICA:
 # Projection of one run: into memory, into an .npy file, or lazily
 # ---------------------------------------------------------------------------------------------
 
-def _project_run(run, mean, proj, chunk, path=None, bar=None):
-    """Project one run chunk by chunk; return the array, or stream it into ``path`` (.npy,
-    float64, C order) and return the number of frames written."""
+def first_frame(run) -> np.ndarray:
+    """Kernel: frame 0 of a run as float64 (the shift of the TICA moments)."""
+    return np.array(run[0], dtype=np.float64)
+
+
+def _frames_of(moments) -> int:
+    return moments.n_frames
+
+
+def project_run(run, mean, proj, chunk, path=None, bar=None):
+    """Kernel of :meth:`TICA.transform`: project one run chunk by chunk; return the array, or
+    stream it into ``path`` (.npy, float64, C order) and return the number of frames written."""
     n, dim = run.shape[0], proj.shape[1]
     if path is None:
         y = np.empty((n, dim))

@@ -14,25 +14,39 @@ index). Two engines, chosen by dimension:
   threads over blocks, and an error bound on the float32 rounding: a frame whose best and
   second-best values lie closer than the bound is re-decided by a float64 brute force.
 
+With ``client=`` (a ``dask.distributed.Client``) assignment maps :func:`assign_pieces` over
+pieces of the runs (labels identical to the in-memory result given the same centers), and
+k-means runs on the cluster (:func:`fit_centers_on_cluster`): Lloyd's iterations [3]_ with
+per-center sums and counts of each partition of the strided frames (the partition sums add up
+to exactly the full-sample update), or mini-batch k-means [2]_ whose every batch is drawn over
+all strided frames; both seed with k-means++ [1]_ on a random subsample. The strided frames
+stay on the workers.
+
 References
 ----------
 .. [1] D. Arthur and S. Vassilvitskii, "k-means++: the advantages of careful seeding",
        SODA 2007.
-.. [2] D. Sculley, "Web-scale k-means clustering", WWW 2010 (mini-batch k-means).
+.. [2] D. Sculley, "Web-scale k-means clustering", WWW 2010 (mini-batch k-means: per-center
+       learning rate 1/count, i.e. each center is the running mean of the frames it received).
+.. [3] S. P. Lloyd, "Least squares quantization in PCM", IEEE Trans. Inf. Theory 28, 129 (1982).
 """
 from __future__ import annotations
 
+import math
 import os
 import warnings
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 
 import numpy as np
 
+from . import _execution as execution
 from ._checks import (
     as_float_trajectories,
     check_chunk_size,
     check_int,
 )
+from .distributed import ClusterError, n_threads, worker_threads
 from .errors import DiagnosticWarning, InputError
 from .io import iter_chunks
 
@@ -360,9 +374,7 @@ class Microstates:
                              f"cluster ({total} frames, stride={stride}); lower n_states"
                              f"{' or stride' if stride > 1 else ''}")
         if client is not None:
-            from . import distributed as _dist
-
-            fitted = _dist.fit_centers(client, runs, k, method=self.method, stride=stride,
+            fitted = fit_centers_on_cluster(client, runs, k, method=self.method, stride=stride,
                                        seed=seed, max_iter=max_iter, chunk=chunk,
                                        progress=self.progress)
             if not fitted.converged:
@@ -436,12 +448,12 @@ class Microstates:
     def _assign_runs(self, runs, chunk, client=None) -> list[np.ndarray]:
         bar = self._bar(sum(r.shape[0] for r in runs), "assigning frames")
         try:
-            if client is not None:
-                from . import distributed as _dist
-
-                return _dist.assign_runs(client, runs, self.centers_, chunk, bar)
-            assigner = _Assigner(self.centers_)
-            return [_assign_run(run, assigner, chunk, bar) for run in runs]
+            centers = np.ascontiguousarray(self.centers_, dtype=np.float64)
+            per_run = execution.map_pieces(assign_pieces, runs, centers, chunk, client=client,
+                                           minimum=min(chunk, 1 << 16), what="assignment",
+                                           bar=bar, local_bar=True)
+            return [np.concatenate(p).astype(np.int32, copy=False) if p else np.empty(0, np.int32)
+                    for p in per_run]
         finally:
             if bar is not None:
                 bar.close()
@@ -481,3 +493,226 @@ class Microstates:
             if getattr(self, name) != default:
                 opts.append(f"{name}={getattr(self, name)!r}")
         return f"Microstates({', '.join(opts)})"
+
+
+# ---------------------------------------------------------------------------------------------
+# Kernels for the execution layer, and k-means on a dask cluster
+# ---------------------------------------------------------------------------------------------
+
+#: partitions of the strided frames per worker thread for k-means on the cluster
+PARTITIONS_PER_THREAD = 2
+#: mini-batch k-means on the cluster stops when the smoothed batch inertia has not improved
+#: for this many batches (the same rule as scikit-learn's ``max_no_improvement``)
+MAX_NO_IMPROVEMENT = 10
+
+
+class _Range:
+    """Frames ``start:stop`` of a run, read chunk by chunk (a view for in-memory runs)."""
+
+    def __init__(self, run, start, stop):
+        self.run, self.start, self.stop = run, start, stop
+        self.shape = (stop - start, run.shape[1])
+
+    def iter_chunks(self, chunk_size=None):
+        size = check_chunk_size(chunk_size, self.shape[1])
+        for lo in range(self.start, self.stop, size):
+            yield self.run[lo:min(lo + size, self.stop)]
+
+    def __array__(self, dtype=None, copy=None):  # pragma: no cover - not used by the tasks
+        arr = np.asarray(self.run[self.start:self.stop])
+        return arr if dtype is None else arr.astype(dtype)
+
+
+def assign_pieces(pieces, centers, chunk, bar=None) -> list[np.ndarray]:
+    """Kernel: nearest-center labels (int32) of frame ranges ``(run, start, stop)``.
+
+    The centers are prepared once for all pieces, with the threads of the dask worker running
+    the task, or every core of this machine outside a worker.
+    """
+    assigner = _Assigner(centers, worker_threads())
+    out = []
+    for run, start, stop in pieces:
+        part = run if (start == 0 and stop == run.shape[0]) else _Range(run, start, stop)
+        out.append(_assign_run(part, assigner, chunk, bar))
+    return out
+
+
+@dataclass
+class FittedCenters:
+    """Result of :func:`fit_centers_on_cluster`."""
+
+    centers: np.ndarray
+    inertia: float
+    n_iter: int
+    n_frames: int
+    converged: bool
+
+
+def _strided_count(start: int, stop: int, stride: int) -> int:
+    first = -(-start // stride) * stride
+    return len(range(first, stop, stride))
+
+
+def _task_sample(pieces, stride, chunk):
+    """The strided frames of a group of pieces (a partition; it stays on the worker)."""
+    parts = [_strided_frames(run, stride, chunk, start, stop)
+             for run, start, stop in pieces]
+    return np.ascontiguousarray(np.concatenate(parts), dtype=np.float64)
+
+
+def _task_stats(part):
+    return len(part), part.sum(axis=0), np.einsum("ij,ij->j", part, part)
+
+
+def _task_take(part, rows):
+    return part[rows]
+
+
+def _task_center_sums(part, centers, rows=None):
+    """Per-center sums and counts of the frames of ``part`` (or of ``part[rows]``) assigned to
+    their nearest center, and their squared distances (inertia)."""
+    x = part if rows is None else part[rows]
+    k, d = centers.shape
+    assigner = _Assigner(centers, worker_threads())
+    sums = np.zeros((k, d))
+    counts = np.zeros(k, dtype=np.int64)
+    inertia = 0.0
+    step = 1 << 16
+    for s in range(0, len(x), step):
+        xb = x[s:s + step]
+        lab = assigner(xb)
+        counts += np.bincount(lab, minlength=k)
+        for j in range(d):
+            sums[:, j] += np.bincount(lab, weights=xb[:, j], minlength=k)
+        diff = xb - centers[lab]
+        inertia += float(np.einsum("ij,ij->", diff, diff))
+    return sums, counts, inertia
+
+
+def fit_centers_on_cluster(client, runs, k, *, method="kmeans", stride=1, seed=None, max_iter=300,
+                           chunk=None, tol=1e-4, progress=False) -> FittedCenters:
+    """k-means centers of the strided frames of ``runs``, computed on the cluster.
+
+    ``method="kmeans"``: Lloyd's iterations [3]_; each partition returns per-center sums and
+    counts and the client forms the means, until the centers move by less than ``tol`` times
+    the mean feature variance (squared distance summed over centers, scikit-learn's rule) or
+    after ``max_iter`` iterations. Empty clusters keep their center.
+
+    ``method="minibatch"``: mini-batch k-means [2]_ with batches of ``max(1024, 3 k)`` frames
+    drawn with replacement from all strided frames; each center moves to the running mean of
+    the frames it has received (learning rate 1/count). Stops when the smoothed batch inertia
+    has not improved for 10 batches, or after ``max_iter`` passes over the strided frames.
+
+    Seeding: k-means++ [1]_ (scikit-learn's ``kmeans_plusplus``) on at most
+    ``max(10 k, 3 * batch)`` strided frames drawn without replacement. The draws are over the
+    strided frames in run order, not over partitions, so the result does not depend on the
+    number of workers (beyond rounding).
+    """
+    from sklearn.cluster import kmeans_plusplus
+
+    placed = execution.place(runs, client)
+    rng = np.random.default_rng(seed)
+    threads = n_threads(client)
+    sizes = [int(r.shape[0]) for r in runs]
+    groups = execution.pieces_of(sizes, PARTITIONS_PER_THREAD * threads, minimum=stride)
+    part_sizes = np.array([sum(_strided_count(a, b, stride) for _, a, b in g) for g in groups],
+                          dtype=np.int64)
+    offsets = np.concatenate([[0], np.cumsum(part_sizes)])
+    n_sample = int(offsets[-1])
+    what = [execution.describe_runs(runs, sorted({i for i, _, _ in g})) for g in groups]
+    parts = [execution.submit(client, _task_sample, [(placed.items[i], a, b) for i, a, b in g], stride, chunk)
+             for g in groups]
+    futures = []
+    try:
+        stats = execution.gather(client, [execution.submit(client, _task_stats, p) for p in parts], what)
+        got_sizes = [s[0] for s in stats]
+        if list(got_sizes) != part_sizes.tolist():
+            raise ClusterError(f"k-means: partitions came back with {got_sizes} strided frames, "
+                               f"expected {part_sizes.tolist()}; run the call again")
+        total = sum(s[1] for s in stats)
+        total_sq = sum(s[2] for s in stats)
+        variance = total_sq / n_sample - (total / n_sample) ** 2
+        tol_abs = tol * float(np.mean(np.maximum(variance, 0)))
+
+        def rows_by_partition(global_rows):
+            """Split sorted global row numbers into (partition, local rows) pairs."""
+            global_rows = np.sort(global_rows)
+            cut = np.searchsorted(global_rows, offsets)
+            return [(p, global_rows[cut[p]:cut[p + 1]] - offsets[p])
+                    for p in range(len(parts)) if cut[p + 1] > cut[p]]
+
+        batch = max(1024, 3 * k)
+        n_init = min(n_sample, max(10 * k, 3 * batch))
+        init_rows = rng.choice(n_sample, size=n_init, replace=False)
+        pieces = rows_by_partition(init_rows)
+        sample = np.concatenate(execution.gather(client, [execution.submit(client, _task_take, parts[p], r)
+                                                  for p, r in pieces], [what[p] for p, _ in pieces]))
+        init_seed = None if seed is None else int(rng.integers(2 ** 31 - 1))
+        centers, _ = kmeans_plusplus(sample, k, random_state=init_seed)
+        centers = np.asarray(centers, dtype=np.float64)
+
+        bar = None
+        if progress:
+            from tqdm.auto import tqdm
+            bar = tqdm(desc=f"k-means on the cluster ({method})", unit="step")
+        converged = False
+        n_iter = 0
+        try:
+            if method == "kmeans":
+                for n_iter in range(1, max_iter + 1):
+                    futures = [execution.submit(client, _task_center_sums, p, centers) for p in parts]
+                    sums, counts, _ = _sum_partials(execution.gather(client, futures, what))
+                    new = centers.copy()
+                    filled = counts > 0
+                    new[filled] = sums[filled] / counts[filled, None]
+                    shift = float(((new - centers) ** 2).sum())
+                    centers = new
+                    if bar is not None:
+                        bar.update(1)
+                    if shift <= tol_abs:
+                        converged = True
+                        break
+            else:
+                seen = np.zeros(k)
+                best, ewa, stale = np.inf, None, 0
+                alpha = min(1.0, 2.0 * batch / (n_sample + 1))
+                max_steps = max_iter * math.ceil(n_sample / batch)
+                for n_iter in range(1, max_steps + 1):
+                    pieces = rows_by_partition(rng.integers(0, n_sample, batch))
+                    futures = [execution.submit(client, _task_center_sums, parts[p], centers, r)
+                               for p, r in pieces]
+                    sums, counts, inertia = _sum_partials(execution.gather(client, futures,
+                                                                   [what[p] for p, _ in pieces]))
+                    seen += counts
+                    moved = counts > 0
+                    centers[moved] += ((sums[moved] - counts[moved, None] * centers[moved])
+                                       / seen[moved, None])
+                    if bar is not None:
+                        bar.update(1)
+                    ewa = inertia / batch if ewa is None else (1 - alpha) * ewa + alpha * inertia / batch
+                    if ewa < best:
+                        best, stale = ewa, 0
+                    else:
+                        stale += 1
+                        if stale >= MAX_NO_IMPROVEMENT:
+                            converged = True
+                            break
+        finally:
+            if bar is not None:
+                bar.close()
+        futures = [execution.submit(client, _task_center_sums, p, centers) for p in parts]
+        _, counts, inertia = _sum_partials(execution.gather(client, futures, what))
+        if int(counts.sum()) != n_sample:
+            raise ClusterError(f"k-means: {int(counts.sum())} of {n_sample} strided frames came "
+                               f"back from the final pass; run the call again")
+    finally:
+        execution.cancel(client, parts + futures)
+    return FittedCenters(centers, float(inertia), int(n_iter), n_sample, converged)
+
+
+def _sum_partials(results):
+    """Add per-partition (sums, counts, inertia) in partition order (deterministic)."""
+    sums = sum(r[0] for r in results)
+    counts = sum(r[1] for r in results)
+    inertia = sum(r[2] for r in results)
+    return sums, counts, inertia

@@ -26,9 +26,10 @@ import scipy.linalg as la
 
 from ._bootstrap import (fit_sample, percentile_interval, progress_bar, resampling_plan, sample_rows,
                          unflatten)
-from ._checks import (_short, as_float_trajectories, as_label_trajectories, as_state_set, check_dt, check_int,
+from ._checks import (brief, as_float_trajectories, as_label_trajectories, as_state_set, check_dt, check_int,
                       check_probability, check_unit)
-from .counts import _count_flat, run_count_rows
+from ._execution import map_sample_batches, place
+from .counts import count_flat, run_count_rows
 from .defaults import CK_MULTIPLES
 from .errors import DiagnosticWarning, InputError
 from .model import MarkovModel, build_model, fingerprint
@@ -276,20 +277,12 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
     estimated = np.full((K, m, m), np.nan)
     samples = np.full((K, n_samples, m, m), np.nan)
     lost = []
-    remote = None
-    if client is not None:
-        from . import distributed as _dist
-
-        remote = _dist.scatter_labels(client, runs)
+    placed = place(runs, client)  # label arrays sent to the workers once, for every multiple of the lag
     bar = progress_bar(K * (1 + n_samples), progress, "Chapman-Kolmogorov test")
     try:
         for k in range(1, K + 1):
-            if remote is not None:
-                rows = _dist.count_rows(client, remote, [r.size for r in runs], k * model.lag, n_lab,
-                                        every_frame, blocks)
-            else:
-                rows, _ = run_count_rows(runs, k * model.lag, n_states=n_lab, every_frame=every_frame,
-                                         blocks_per_run=blocks)
+            rows, _ = run_count_rows(placed, k * model.lag, n_states=n_lab, every_frame=every_frame,
+                                     blocks_per_run=blocks, client=client)
             full = _on_model_states(unflatten(np.asarray(rows.sum(axis=0)).ravel(), n_lab), model)
             fit = fit_sample(full, reversible=model.reversible)
             bar.update(1)
@@ -306,10 +299,10 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
                 initial = np.zeros(n_kept)
                 initial[keep] = pi_k
                 sampled = sample_rows(weights, rows)
-                if remote is not None:
-                    samples[k - 1] = np.concatenate(_dist.map_sample_batches(
-                        client, sampled, _ck_samples, n_lab, model.states, model.reversible, initial,
-                        pi, M, what=f"Chapman-Kolmogorov samples at {k} lags", bar=bar))
+                if client is not None:
+                    samples[k - 1] = map_sample_batches(
+                        _ck_samples, sampled, n_lab, model.states, model.reversible, initial,
+                        pi, M, client=client, what=f"Chapman-Kolmogorov samples at {k} lags", bar=bar)
                 else:
                     samples[k - 1] = _ck_samples(sampled, n_lab, model.states, model.reversible,
                                                  initial, pi, M, bar)
@@ -380,7 +373,7 @@ def _resolve_sets(model, sets, n_sets):
             raise InputError("give either sets (your own sets of states) or n_sets (PCCA+ macrostates), "
                              "not both")
         if isinstance(sets, (str, bytes)) or not hasattr(sets, "__iter__"):
-            raise InputError(f"sets must be a list of lists of state labels, but got {_short(sets)}")
+            raise InputError(f"sets must be a list of lists of state labels, but got {brief(sets)}")
         sets = list(sets)
         if not sets:
             raise InputError("sets is empty: give at least one list of state labels")
@@ -565,7 +558,7 @@ class LagFlow:
         1 - lambda^k for both sets.
         """
         if which not in ("estimated", "predicted"):
-            raise InputError(f"which must be 'estimated' or 'predicted', but got {_short(which)}")
+            raise InputError(f"which must be 'estimated' or 'predicted', but got {brief(which)}")
         p = getattr(self, which)
         with np.errstate(divide="ignore", invalid="ignore"):
             return (1.0 - p) / (1.0 - self.fixed_point)
@@ -676,7 +669,7 @@ def lag_flow(source, labels=None, *, pair=(0, 1), sets=None, n_sets=None, multip
 
 def _check_pair(pair, m):
     if isinstance(pair, (str, bytes)) or not hasattr(pair, "__len__") or len(pair) != 2:
-        raise InputError(f"pair must be two set indices (a, b), but got {_short(pair)}")
+        raise InputError(f"pair must be two set indices (a, b), but got {brief(pair)}")
     a = check_int(pair[0], "pair[0]", minimum=0, maximum=m - 1)
     b = check_int(pair[1], "pair[1]", minimum=0, maximum=m - 1)
     if a == b:
@@ -816,7 +809,7 @@ def vamp2_score_on(model, labels, k=None, *, warn: bool = True) -> float:
                          f"transition can be counted; give longer test runs")
     n_lab = max(max((int(r.max()) for r in runs if r.size), default=-1), int(model.states.max())) + 1
     every_frame = bool(model.metadata.get("parameters", {}).get("every_frame", True))
-    flat = _count_flat(runs, model.lag, n_lab, every_frame)
+    flat = count_flat(runs, model.lag, n_lab, every_frame)
     total = flat.sum()
     C = flat.reshape(n_lab, n_lab)[np.ix_(model.states, model.states)].astype(float)
     inside = C.sum()
@@ -980,7 +973,7 @@ def cross_validate(trajs, n_states=None, lags=1, *, n_folds=5, k=None, reversibl
                          f"{len(runs)}; lower n_folds or supply more runs")
     if cluster is not None and not callable(cluster):
         raise InputError(f"cluster must be a callable cluster(n_states) returning an object with fit and assign, "
-                         f"but got {_short(cluster)}")
+                         f"but got {brief(cluster)}")
     stride = check_int(stride, "stride", minimum=1)
     smallest = min(candidates) if candidates is not None else \
         max(int(r.max()) for r in runs if r.size) + 1
@@ -1046,7 +1039,7 @@ def _int_list(values, name, minimum):
     if isinstance(values, (numbers.Integral, np.integer)) and not isinstance(values, bool):
         values = [values]
     if isinstance(values, (str, bytes)) or not hasattr(values, "__iter__"):
-        raise InputError(f"{name} must be an integer or a list of integers, but got {_short(values)}")
+        raise InputError(f"{name} must be an integer or a list of integers, but got {brief(values)}")
     out = [check_int(v, name, minimum=minimum) for v in values]
     if not out:
         raise InputError(f"{name} is empty: give at least one candidate")

@@ -209,12 +209,12 @@ def test_clustering_finds_separated_blobs(backend, tmp_path, method):
 
 
 def test_cluster_kmeans_does_not_depend_on_the_number_of_partitions(dask_client, monkeypatch):
-    from msmkit import distributed as dist
+    from msmkit import states
 
     rng = np.random.default_rng(8)
     runs = [rng.normal(size=(3000, 2)) + rng.integers(0, 3, (3000, 1)) * 6.0 for _ in range(3)]
     a = mk.Microstates(6, stride=2, seed=4).fit(runs, client=dask_client)
-    monkeypatch.setattr(dist, "PARTITIONS_PER_THREAD", 3)
+    monkeypatch.setattr(states, "PARTITIONS_PER_THREAD", 3)
     b = mk.Microstates(6, stride=2, seed=4).fit(runs, client=dask_client)
     np.testing.assert_allclose(a.centers_, b.centers_, rtol=1e-10)
     assert a.n_iter_ == b.n_iter_

@@ -14,8 +14,8 @@ import pytest
 
 import msmkit as mk
 from msmkit.errors import DiagnosticWarning, InputError, ModelFileError
-from msmkit.model import MarkovModel, build_model
-from msmkit.modelfile import FORMAT, FORMAT_VERSION, load_model, save_model
+from msmkit.model import MarkovModel, build_model, load_model
+from msmkit.modelfile import FORMAT, FORMAT_VERSION, save_model
 
 
 class WritesMarker:
