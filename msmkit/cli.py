@@ -263,8 +263,8 @@ def cmd_build(args) -> int:
                                        say=lambda text: _say(args, text))
     model = build_model(labels, args.lag, dt=dt, unit=unit, reversible=not args.non_reversible)
     if trajs.feature_atoms is not None:  # MD files: what new trajectories need to be assigned
-        from .io import _md_spec
-        spec = _md_spec(args.features, ("phi", "psi"), None, args.periodic, args.select)
+        from .mdfeatures import MDFeatures
+        spec = MDFeatures.from_options(args.features, ("phi", "psi"), None, args.periodic, args.select)
         model.metadata["md_features"] = {"spec": spec.to_dict(),
                                          "feature_names": list(trajs.feature_names)}
     path = model.save(out, **_extras(tica, micro))

@@ -60,7 +60,7 @@ from ._checks import (
 )
 from .errors import InputError
 
-__all__ = ["LazyRun", "TrajectorySet", "iter_chunks", "load_trajectories"]
+__all__ = ["LazyRun", "TrajectorySet", "assign_files", "iter_chunks", "load_trajectories"]
 
 NPY_SUFFIXES = (".npy",)
 NPZ_SUFFIXES = (".npz",)
@@ -709,19 +709,6 @@ def _h5_datasets(fh, h5py) -> list[str]:
     return found
 
 
-def _md_spec(features, torsions, atom_pairs, periodic, selection):
-    from .mdfeatures import MDFeatures
-
-    if isinstance(features, MDFeatures):
-        return features
-    if features is None:
-        torsions = () if torsions is None else torsions
-        return MDFeatures(kinds=(), torsions=torsions, atom_pairs=atom_pairs, periodic=periodic,
-                          selection=selection)
-    return MDFeatures(kinds=features, atom_pairs=atom_pairs, periodic=periodic,
-                      selection=selection)
-
-
 def _read_md(path: str, *, topology=None, torsions=("phi", "psi"), atom_pairs=None,
              features=None, periodic="whole", selection=None, frames=None, details=None, **_):
     """MD file -> features; fills ``details`` (if a dict) with each feature's atom indices
@@ -730,7 +717,9 @@ def _read_md(path: str, *, topology=None, torsions=("phi", "psi"), atom_pairs=No
 
     require_optional("mdtraj", "md", "Reading molecular-dynamics trajectory files")
     _check_not_empty(path)
-    spec = _md_spec(features, torsions, atom_pairs, periodic, selection)
+    from .mdfeatures import MDFeatures
+
+    spec = MDFeatures.from_options(features, torsions, atom_pairs, periodic, selection)
     arr, names, atoms, dt = read_md_features(path, spec, topology=topology, frames=frames)
     _check_shape(arr.shape, path, "the features")
     check_finite_frames(arr, path, 0, names)
@@ -980,3 +969,63 @@ def _md_time_step(md_details, unit):
                       f"({brief(steps, 200)} ps); pass dt= (and unit=) to set it",
                       DiagnosticWarning, stacklevel=3)
     return None, unit
+
+
+# ---------------------------------------------------------------------------------------------
+# New trajectories through a saved model
+# ---------------------------------------------------------------------------------------------
+
+def assign_files(model, files, *, topology=None, frames=None) -> list:
+    """Microstate labels of new MD files, computed as for the saved model.
+
+    The model file must carry the feature description (``metadata["md_features"]``, written
+    by ``msmkit build`` on MD files) and the cluster centres; the stored feature scaling and
+    TICA projection are applied before each frame goes to the nearest centre.
+
+    Parameters
+    ----------
+    model : MarkovModel
+        From :func:`msmkit.load_model`.
+    files : path or list of paths
+        Trajectories of the same system (same topology, same features).
+    topology : path, optional
+        Structure file for coordinates-only formats.
+    frames : slice, optional
+        Frame range and step read from each file.
+
+    Returns
+    -------
+    list of int32 arrays
+        One label trajectory per file (microstate indices, as the centres are numbered).
+    """
+    from .mdfeatures import MDFeatures
+
+    spec = model.metadata.get("md_features")
+    if not spec or "centers" not in model.extras:
+        raise InputError("model: the model file holds no feature description or cluster "
+                         "centres; build it from MD files (msmkit build ... --topology) to "
+                         "assign new trajectories with it")
+    trajs = load_trajectories(files, topology=topology, frames=frames,
+                              features=MDFeatures.from_dict(spec["spec"]))
+    if list(trajs.feature_names) != list(spec["feature_names"]):
+        raise InputError(f"files: the features of these files ({trajs.n_features}, e.g. "
+                         f"{trajs.feature_names[0]!r}) differ from those the model was built "
+                         f"on ({len(spec['feature_names'])}, e.g. {spec['feature_names'][0]!r}); "
+                         f"give trajectories of the same system and topology")
+    from scipy.spatial import cKDTree
+
+    extras = model.extras
+    tree = cKDTree(extras["centers"])
+    labels = []
+    for run in trajs:
+        out = []
+        for block in iter_chunks(run):
+            x = np.asarray(block, dtype=np.float64)
+            if "feature_scale" in extras:
+                x = (x - extras["feature_mean"]) / extras["feature_scale"]
+            if "tica_components" in extras:
+                x = (x - extras["tica_mean"]) @ extras["tica_components"].T
+            out.append(tree.query(x)[1].astype(np.int32))
+        labels.append(np.concatenate(out))
+    return labels
+

@@ -33,7 +33,7 @@ from ._checks import require_optional
 from .errors import DiagnosticWarning, InputError
 
 __all__ = ["MDFeatures", "FEATURE_KINDS", "PERIODIC_MODES", "FileIndex", "index_frames",
-           "read_md_features", "assign_files"]
+           "read_md_features"]
 
 FEATURE_KINDS = ("backbone-torsions", "sidechain-torsions", "ca-distances", "residue-mindist",
                  "distances", "inverse-distances", "contacts")
@@ -120,12 +120,24 @@ class MDFeatures:
                              "atom pairs")
 
     def to_dict(self) -> dict:
-        """A JSON-friendly description, stored in model files (see :func:`assign_files`)."""
+        """A JSON-friendly description, stored in model files (see :func:`msmkit.io.assign_files`)."""
         pairs = None if self.atom_pairs is None else np.asarray(self.atom_pairs).tolist()
         return {"kinds": list(self.kinds), "selection": self.selection,
                 "periodic": self.periodic, "cutoff": float(self.cutoff),
                 "torsions": None if self.torsions is None else list(self.torsions),
                 "atom_pairs": pairs}
+
+    @classmethod
+    def from_options(cls, features=None, torsions=("phi", "psi"), atom_pairs=None,
+                     periodic="whole", selection=None) -> "MDFeatures":
+        """The spec for the reader options of :func:`msmkit.load_trajectories`: feature kinds
+        (``features``), or explicit ``torsions``/``atom_pairs`` when no kinds are given."""
+        if isinstance(features, cls):
+            return features
+        if features is None:
+            return cls(kinds=(), torsions=() if torsions is None else torsions,
+                       atom_pairs=atom_pairs, periodic=periodic, selection=selection)
+        return cls(kinds=features, atom_pairs=atom_pairs, periodic=periodic, selection=selection)
 
     @classmethod
     def from_dict(cls, spec: dict) -> "MDFeatures":
@@ -809,67 +821,3 @@ def _md_error(path, err, alternative="or does not match the topology") -> InputE
     # a parser's own IndexError/TypeError text ("string index out of range") says nothing
     why = f" ({err})" if isinstance(err, (OSError, RuntimeError)) or type(err) is ValueError else ""
     return InputError(f"cannot read {path}: the file is truncated or corrupt, {alternative}{why}")
-
-
-# ---------------------------------------------------------------------------------------------
-# New trajectories through a saved model
-# ---------------------------------------------------------------------------------------------
-
-def assign_files(model, files, *, topology=None, frames=None) -> list:
-    """Microstate labels of new MD files, computed as for the saved model.
-
-    The model file must carry the feature description (``metadata["md_features"]``, written
-    by ``msmkit build`` on MD files) and the cluster centres; the stored feature scaling and
-    TICA projection are applied before each frame goes to the nearest centre.
-
-    Parameters
-    ----------
-    model : MarkovModel
-        From :func:`msmkit.load_model`.
-    files : path or list of paths
-        Trajectories of the same system (same topology, same features).
-    topology : path, optional
-        Structure file for coordinates-only formats.
-    frames : slice, optional
-        Frame range and step read from each file.
-
-    Returns
-    -------
-    list of int32 arrays
-        One label trajectory per file (microstate indices, as the centres are numbered).
-    """
-    from .io import load_trajectories
-
-    spec = model.metadata.get("md_features")
-    if not spec or "centers" not in model.extras:
-        raise InputError("model: the model file holds no feature description or cluster "
-                         "centres; build it from MD files (msmkit build ... --topology) to "
-                         "assign new trajectories with it")
-    trajs = load_trajectories(files, topology=topology, frames=frames,
-                              features=MDFeatures.from_dict(spec["spec"]))
-    if list(trajs.feature_names) != list(spec["feature_names"]):
-        raise InputError(f"files: the features of these files ({trajs.n_features}, e.g. "
-                         f"{trajs.feature_names[0]!r}) differ from those the model was built "
-                         f"on ({len(spec['feature_names'])}, e.g. {spec['feature_names'][0]!r}); "
-                         f"give trajectories of the same system and topology")
-    from scipy.spatial import cKDTree
-
-    extras = model.extras
-    tree = cKDTree(extras["centers"])
-    labels = []
-    for run in trajs:
-        out = []
-        for block in _chunks_of(run):
-            x = np.asarray(block, dtype=np.float64)
-            if "feature_scale" in extras:
-                x = (x - extras["feature_mean"]) / extras["feature_scale"]
-            if "tica_components" in extras:
-                x = (x - extras["tica_mean"]) @ extras["tica_components"].T
-            out.append(tree.query(x)[1].astype(np.int32))
-        labels.append(np.concatenate(out))
-    return labels
-
-
-def _chunks_of(run, size: int = 65536):
-    for start in range(0, len(run), size):
-        yield run[start:start + size]

@@ -290,7 +290,7 @@ def test_cli_without_topology_names_the_option_not_python(tmp_path, capsys):
 def test_cli_scan_and_build_use_the_same_tica_lag(tmp_path):
     import pandas as pd
 
-    from msmkit.modelfile import load_model
+    from msmkit.model import load_model
 
     common = [data.DCD, "--topology", data.PSF, "--states", "4", "--tica-dim", "2", "-q"]
     with warnings.catch_warnings():
@@ -386,7 +386,7 @@ def test_standardized_features_match_numpy():
 
 
 def test_cli_scales_features_without_tica_and_cautions_when_told_not_to(tmp_path, capsys):
-    from msmkit.modelfile import load_model
+    from msmkit.model import load_model
 
     common = [data.DCD, "--topology", data.PSF, "--features", "backbone-torsions,ca-distances",
               "--select", "resid 1 to 30", "--states", "3", "--lag", "1"]
@@ -409,9 +409,9 @@ def test_cli_scales_features_without_tica_and_cautions_when_told_not_to(tmp_path
 # ---------------------------------------------------------------------------------------------
 
 def test_saved_model_assigns_files_as_it_was_built(tmp_path):
-    from msmkit.mdfeatures import assign_files
+    from msmkit.io import assign_files
     from msmkit.model import fingerprint
-    from msmkit.modelfile import load_model
+    from msmkit.model import load_model
 
     out = tmp_path / "m.npz"
     with warnings.catch_warnings():
