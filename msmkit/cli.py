@@ -30,21 +30,48 @@ EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
 
 
 # ----------------------------------------------------------------------------- pipeline
-def _microstates(trajs, *, n_states, tica_lag, tica_dim, stride, seed, progress):
-    """Trajectories -> (label trajectories, fitted TICA or None, fitted Microstates)."""
+#: Features whose standard deviations differ by more than this factor are not comparable in
+#: the distances k-means uses; without TICA or scaling the widest ones decide the states.
+SPREAD_RATIO_CAUTION = 10.0
+
+
+def _microstates(trajs, *, n_states, tica_lag, tica_dim, stride, seed, progress, scale="none",
+                 say=None):
+    """Trajectories -> (label trajectories, fitted TICA or None, fitted Microstates).
+
+    Without TICA, ``scale="standard"`` clusters features standardised to unit variance (the
+    model file then stores ``feature_mean`` and ``feature_scale``); with ``"none"`` a caution
+    goes to ``say`` when the features' spreads differ by more than SPREAD_RATIO_CAUTION.
+    """
+    from .io import load_trajectories
     from .reduce import TICA
     from .states import Microstates
     tica = None
     data = trajs
+    if not tica_dim:
+        trajs = load_trajectories(trajs)
+        if scale == "standard":
+            data = trajs.standardized()
+        elif say is not None:
+            _, sd = trajs.feature_spread()
+            live = sd[sd > 0]
+            if live.size > 1 and live.max() > SPREAD_RATIO_CAUTION * live.min():
+                say(f"caution: the features are clustered unscaled and their standard "
+                    f"deviations range from {live.min():.3g} to {live.max():.3g}; the widest "
+                    f"decide the states. Use --scale standard or --tica-dim")
     if tica_dim:
         tica = TICA(tica_lag, dim=tica_dim, progress=progress).fit(trajs)
         data = tica.transform(trajs)
     micro = Microstates(n_states, stride=stride, seed=seed, progress=progress).fit(data)
+    micro.feature_scaling_ = ((data.feature_mean, data.feature_scale)
+                              if hasattr(data, "feature_scale") else None)
     return micro.labels_, tica, micro
 
 
 def _extras(tica, micro) -> dict:
     out = {"centers": micro.centers_}
+    if getattr(micro, "feature_scaling_", None) is not None:
+        out["feature_mean"], out["feature_scale"] = micro.feature_scaling_
     if tica is not None:
         out["tica_mean"] = tica.mean_
         out["tica_components"] = tica.projection_  # rows as transform applies them, scaling included
@@ -193,9 +220,33 @@ def cmd_demo(args) -> int:
     return EXIT_OK
 
 
+def _parse_frames(text):
+    """``START:STOP:STEP`` (parts optional) -> slice of frames read from each MD file."""
+    if text is None:
+        return None
+    parts = text.split(":")
+    try:
+        if len(parts) > 3:
+            raise ValueError
+        values = [int(p) if p.strip() else None for p in parts] + [None] * (3 - len(parts))
+    except ValueError:
+        raise InputError(f"--frames must be START:STOP:STEP in frames (parts may be left out, "
+                         f"e.g. 100::10), got {text!r}") from None
+    return slice(*values)
+
+
+def _tica_lag(args) -> int:
+    """One rule for every command, so that ``build --lag L`` gives the model ``scan`` shows at
+    lag L: the TICA lag is --tica-lag, else 1 frame, never the model lag."""
+    return args.tica_lag or 1
+
+
 def _load(args):
     from .io import load_trajectories
-    trajs = load_trajectories(args.files, progress=not args.quiet)
+    # MD options are ignored by the feature formats (npy, csv, h5, ...)
+    md = dict(topology=args.topology, features=args.features, periodic=args.periodic,
+              selection=args.select, frames=_parse_frames(args.frames))
+    trajs = load_trajectories(args.files, progress=not args.quiet, **md)
     dt = args.dt if args.dt is not None else (getattr(trajs, "dt", None) or 1.0)
     unit = args.unit if args.unit is not None else (getattr(trajs, "unit", None) or "step")
     return trajs, dt, unit
@@ -207,10 +258,16 @@ def cmd_build(args) -> int:
     if out.exists() and not args.force:
         raise InputError(f"-o {out} exists; choose another name or pass --force to overwrite")
     trajs, dt, unit = _load(args)
-    labels, tica, micro = _microstates(trajs, n_states=args.states, tica_lag=args.tica_lag or args.lag,
+    labels, tica, micro = _microstates(trajs, n_states=args.states, tica_lag=_tica_lag(args),
                                        tica_dim=args.tica_dim, stride=args.stride, seed=args.seed,
-                                       progress=not args.quiet)
+                                       progress=not args.quiet, scale=args.scale,
+                                       say=lambda text: _say(args, text))
     model = build_model(labels, args.lag, dt=dt, unit=unit, reversible=not args.non_reversible)
+    if trajs.feature_atoms is not None:  # MD files: what new trajectories need to be assigned
+        from .mdfeatures import MDFeatures
+        spec = MDFeatures.from_options(args.features, ("phi", "psi"), None, args.periodic, args.select)
+        model.metadata["md_features"] = {"spec": spec.to_dict(),
+                                         "feature_names": list(trajs.feature_names)}
     path = model.save(out, **_extras(tica, micro))
     _say(args, summary_text(model).rstrip())
     _say(args, f"wrote {path}")
@@ -220,9 +277,10 @@ def cmd_build(args) -> int:
 def cmd_scan(args) -> int:
     trajs, dt, unit = _load(args)
     lags = _parse_lags(args.lags)
-    labels, tica, micro = _microstates(trajs, n_states=args.states, tica_lag=args.tica_lag or min(lags),
+    labels, tica, micro = _microstates(trajs, n_states=args.states, tica_lag=_tica_lag(args),
                                        tica_dim=args.tica_dim, stride=args.stride, seed=args.seed,
-                                       progress=not args.quiet)
+                                       progress=not args.quiet, scale=args.scale,
+                                       say=lambda text: _say(args, text))
     scan = _scan_and_choose(labels, args, lags, dt, unit)
     chosen = scan.suggested_lag if scan.suggested_lag is not None else int(scan.lags[0])
     out = _Outputs(args.output)
@@ -230,6 +288,9 @@ def cmd_scan(args) -> int:
     for p in out.write():
         _say(args, f"wrote {p}")
     _say(args, f"suggested lag: {scan.suggested_lag} frames. {scan.reason}")
+    if tica is not None:
+        _say(args, f"TICA lag {_tica_lag(args)} frames; build with the same --tica-lag, --tica-dim, "
+                   f"--states, --stride and --seed to get the model at a scanned lag")
     return EXIT_OK
 
 
@@ -282,11 +343,29 @@ def build_parser() -> argparse.ArgumentParser:
                             help="trajectory files or glob patterns (.npy, .npz, .csv, .tsv, .h5; MD formats "
                                  "with msmkit[md]); one run per file (per array in .npz/.h5)")
             sp.add_argument("--dt", type=_positive_float, help="time between frames (default 1)")
-            sp.add_argument("--unit", help="time unit of --dt, e.g. ns (default: step)")
+            sp.add_argument("--unit", help="time unit of --dt, e.g. ns (default: ps when the MD files "
+                                           "give the time step, else step)")
+            sp.add_argument("--topology", metavar="FILE",
+                            help="MD files: structure file (.pdb, .gro, .psf, .prmtop) for coordinates-only "
+                                 "trajectories (.xtc, .trr, .dcd, .nc)")
+            sp.add_argument("--features", metavar="KINDS",
+                            help="MD files: comma-separated feature kinds: backbone-torsions (default), "
+                                 "sidechain-torsions, ca-distances, residue-mindist, distances, inverse-distances, contacts")
+            sp.add_argument("--select", metavar="SELECTION",
+                            help="MD files: atom selection (mdtraj syntax) the features are limited to, "
+                                 "e.g. 'name CA and resSeq 10 to 60' (resSeq: the file's residue numbers; resid counts from 0)")
+            sp.add_argument("--periodic", choices=("whole", "minimum-image", "none"), default="whole",
+                            help="MD files: distances in a periodic box: join molecules first (whole, "
+                                 "default), nearest image, or ignore the box")
+            sp.add_argument("--frames", metavar="START:STOP:STEP",
+                            help="MD files: frame range and step read from each file, e.g. 0:5000:10")
+            sp.add_argument("--scale", choices=("standard", "none"), default="standard",
+                            help="without --tica-dim: cluster features standardised to unit variance "
+                                 "(standard, default) or as they are (none)")
         sp.add_argument("--states", type=_positive_int, default=100, help="number of k-means microstates (default %(default)s)")
         sp.add_argument("--tica-dim", type=int, default=None,
                         help="reduce to this many TICA coordinates before clustering (default: %(default)s; none = cluster the features)")
-        sp.add_argument("--tica-lag", type=_positive_int, default=None, help="TICA lag in frames (default: %(default)s; none = the model lag)")
+        sp.add_argument("--tica-lag", type=_positive_int, default=None, help="TICA lag in frames (default 1 frame, the same for build and scan)")
         sp.add_argument("--stride", type=_positive_int, default=1, help="fit k-means on every STRIDE-th frame (default %(default)s)")
         sp.add_argument("--seed", type=int, default=0, help="random seed (default %(default)s)")
         sp.add_argument("-q", "--quiet", action="store_true", help="no progress bars or messages")

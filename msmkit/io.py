@@ -18,10 +18,14 @@ Formats
     Needs the optional extra ``hdf5`` (h5py). Every 2-D numeric dataset is one run (sorted by
     path; ``key=`` picks datasets), read lazily in chunks. Feature names come from a
     ``feature_names`` attribute of the dataset or of the file.
-MD formats (``.xtc``, ``.dcd``, ``.trr``, ``.pdb``, ``.nc``, ``.gro``, ...)
-    Needs the optional extra ``md`` (mdtraj). Features computed while reading: sine and cosine
-    of backbone torsions (``torsions=``) and distances between atom pairs in nm (``atom_pairs=``,
-    minimum image under periodic boundaries). Files without a topology need ``topology=``.
+MD formats (``.xtc``, ``.dcd``, ``.trr``, ``.pdb``, ``.nc``, ``.gro``, ..., also compressed)
+    Needs the optional extra ``md`` (mdtraj). Features computed while reading coordinates in
+    bounded chunks (:mod:`msmkit.mdfeatures`): torsions as sine and cosine, CA-CA distances,
+    distances, inverse distances or contacts of selected atoms (``features=``, ``selection=``,
+    ``torsions=``, ``atom_pairs=``), with periodic boundaries handled by ``periodic=``. Files
+    without a topology need ``topology``. DCD, XTC and TRR files are checked frame by frame
+    first; truncated or corrupt files raise InputError. The result's ``feature_atoms`` give
+    each feature's atom indices, and ``dt`` (ps) comes from the file when it records one.
 
 Checks
 ------
@@ -35,6 +39,7 @@ meets it (``TrajectorySet.check_values()`` reads everything once to check up fro
 from __future__ import annotations
 
 import glob as _glob
+import importlib.util
 import os
 from collections.abc import Sequence
 from pathlib import Path
@@ -55,16 +60,15 @@ from ._checks import (
 )
 from .errors import InputError
 
-__all__ = ["LazyRun", "TrajectorySet", "iter_chunks", "load_trajectories"]
+__all__ = ["LazyRun", "TrajectorySet", "assign_files", "iter_chunks", "load_trajectories"]
 
 NPY_SUFFIXES = (".npy",)
 NPZ_SUFFIXES = (".npz",)
 TEXT_SUFFIXES = {".csv": ",", ".tsv": "\t"}
 HDF5_SUFFIXES = (".h5", ".hdf5", ".hdf")
-MD_SUFFIXES = (".xtc", ".trr", ".dcd", ".pdb", ".nc", ".netcdf", ".gro", ".xyz", ".lammpstrj",
+MD_SUFFIXES = (".xtc", ".trr", ".dcd", ".pdb", ".nc", ".ncdf", ".netcdf", ".gro", ".xyz", ".lammpstrj",
                ".binpos", ".mdcrd", ".crd", ".arc", ".dtr", ".lh5")
 _GLOB_CHARS = set("*?[")
-_MD_TORSIONS = ("phi", "psi", "omega", "chi1", "chi2", "chi3", "chi4")
 
 
 def _supported() -> str:
@@ -259,6 +263,17 @@ class LazyRun:
         return out
 
 
+class _ScaledRun(LazyRun):
+    """A run read through ``(x - mean) / scale``, block by block."""
+
+    def __init__(self, run, mean, scale):
+        super().__init__(getattr(run, "source", None) or "<array>", run.shape, np.float64)
+        self._run, self._mean, self._scale = run, mean, scale
+
+    def _read(self, start, stop):
+        return (np.asarray(self._run[start:stop], dtype=np.float64) - self._mean) / self._scale
+
+
 def _vanished(source: str, err: Exception) -> InputError:
     """The error for a file that could be listed but no longer read (moved, deleted, or not
     visible from this machine, e.g. a dask worker without the shared filesystem)."""
@@ -360,6 +375,9 @@ class TrajectorySet(Sequence):
         Time between frames, if known (physical units, see ``unit``).
     unit : str, optional
         Time unit of ``dt`` (e.g. ``"ns"``).
+    feature_atoms : sequence of tuple of int, optional
+        For features computed from coordinates: the atom indices (0-based, topology order)
+        each feature is computed from.
 
     Attributes
     ----------
@@ -368,9 +386,11 @@ class TrajectorySet(Sequence):
     n_frames : ndarray of int64, frames per run
     total_frames : int
     sources : tuple of str or None, the file each run came from (None for in-memory arrays)
+    feature_atoms : tuple of tuple of int, or None
     """
 
-    def __init__(self, runs, feature_names=None, *, dt=None, unit=None, sources=None):
+    def __init__(self, runs, feature_names=None, *, dt=None, unit=None, sources=None,
+                 feature_atoms=None):
         if feature_names is None:
             feature_names = feature_names_of(runs)
         checked = as_float_trajectories(runs, "runs")
@@ -385,6 +405,12 @@ class TrajectorySet(Sequence):
                               else _check_names(feature_names, n_features, "the runs"))
         self.dt = None if dt is None else check_dt(dt)
         self.unit = None if unit is None else check_unit(unit)
+        if feature_atoms is not None:
+            feature_atoms = tuple(tuple(int(i) for i in a) for a in feature_atoms)
+            if len(feature_atoms) != n_features:
+                raise InputError(f"feature_atoms has {len(feature_atoms)} entries for "
+                                 f"{n_features} features; give one tuple of atoms per feature")
+        self.feature_atoms = feature_atoms
 
     @property
     def n_features(self) -> int:
@@ -412,7 +438,7 @@ class TrajectorySet(Sequence):
     def __getitem__(self, index):
         if isinstance(index, slice):
             return TrajectorySet(self._runs[index], self.feature_names, dt=self.dt, unit=self.unit,
-                                 sources=self._sources[index])
+                                 sources=self._sources[index], feature_atoms=self.feature_atoms)
         return self._runs[index]
 
     def __repr__(self) -> str:
@@ -426,7 +452,36 @@ class TrajectorySet(Sequence):
     def in_memory(self) -> "TrajectorySet":
         """The same runs with every lazy run read into memory."""
         return TrajectorySet([np.asarray(r) for r in self._runs], self.feature_names,
-                             dt=self.dt, unit=self.unit, sources=self._sources)
+                             dt=self.dt, unit=self.unit, sources=self._sources,
+                             feature_atoms=self.feature_atoms)
+
+    def feature_spread(self, chunk_size: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Mean and standard deviation of every feature over all frames, in one chunked pass
+        (sums shifted by the first frame, so large offsets lose no precision)."""
+        shift = np.array(np.asarray(self._runs[0][:1], dtype=np.float64)[0])
+        n, total, squares = 0, np.zeros(self.n_features), np.zeros(self.n_features)
+        for run in self._runs:
+            for block in iter_chunks(run, chunk_size):
+                x = np.asarray(block, dtype=np.float64) - shift
+                n += len(x)
+                total += x.sum(axis=0)
+                squares += np.einsum("ij,ij->j", x, x)
+        mean = total / n
+        var = np.maximum(squares / n - mean ** 2, 0.0)
+        return mean + shift, np.sqrt(var)
+
+    def standardized(self, chunk_size: int | None = None) -> "TrajectorySet":
+        """The same runs with every feature shifted to mean 0 and scaled to standard deviation
+        1 (constant features are only shifted), read on demand; for clustering features of
+        different units or spreads without TICA. The result carries ``feature_mean`` and
+        ``feature_scale`` so that new data can be scaled alike."""
+        mean, sd = self.feature_spread(chunk_size)
+        scale = np.where(sd > 0, sd, 1.0)
+        out = TrajectorySet([_ScaledRun(r, mean, scale) for r in self._runs], self.feature_names,
+                            dt=self.dt, unit=self.unit, sources=self._sources,
+                            feature_atoms=self.feature_atoms)
+        out.feature_mean, out.feature_scale = mean, scale
+        return out
 
     def check_values(self, chunk_size: int | None = None, *, client=None) -> "TrajectorySet":
         """Read every lazy run once, raising InputError at the first NaN/infinite frame.
@@ -596,13 +651,30 @@ def _read_text(path: str, **_):
     return [arr], names
 
 
-def _read_hdf5(path: str, *, key=None, **_):
+def _is_md_hdf5(fh) -> bool:
+    """mdtraj's HDF5 trajectory layout: 3-D coordinates plus a topology, not features."""
+    return ("coordinates" in fh and getattr(fh["coordinates"], "ndim", 0) == 3
+            and "topology" in fh)
+
+
+def _read_hdf5(path: str, *, key=None, **md_options):
     h5py = require_optional("h5py", "hdf5", "Reading HDF5 files")
     _check_not_empty(path)
     try:
         fh = h5py.File(path, "r")
     except OSError as err:
         raise InputError(f"{path} is not a readable HDF5 file ({err})") from None
+    if key is None and _is_md_hdf5(fh):
+        fh.close()
+        if md_options.get("topology") is not None:
+            raise InputError(f"topology: {path} is an MD trajectory that carries a topology "
+                             f"inside; leave the topology out (load it apart from files that "
+                             f"need one)")
+        if importlib.util.find_spec("tables") is None:
+            raise ImportError(f"{path} is an mdtraj HDF5 trajectory (coordinates and a "
+                              f"topology, not features); mdtraj reads it with PyTables: "
+                              f"pip install tables")
+        return _read_md(path, **md_options)
     with fh:
         if key is None:
             keys = []
@@ -637,82 +709,30 @@ def _h5_datasets(fh, h5py) -> list[str]:
     return found
 
 
-def _residue_label(topology, atom_index: int) -> str:
-    return str(topology.atom(int(atom_index)).residue)
-
-
 def _read_md(path: str, *, topology=None, torsions=("phi", "psi"), atom_pairs=None,
-             md_chunk: int = 10_000, **_):
-    md = require_optional("mdtraj", "md", "Reading molecular-dynamics trajectory files")
+             features=None, periodic="whole", selection=None, frames=None, details=None, **_):
+    """MD file -> features; fills ``details`` (if a dict) with each feature's atom indices
+    and the time between frames (ps) found in the file."""
+    from .mdfeatures import read_md_features
+
+    require_optional("mdtraj", "md", "Reading molecular-dynamics trajectory files")
     _check_not_empty(path)
-    suffix = Path(path).suffix.lower()
-    torsions = () if torsions is None else ((torsions,) if isinstance(torsions, str)
-                                           else tuple(torsions))
-    for kind in torsions:
-        if kind not in _MD_TORSIONS:
-            raise InputError(f"torsions: unknown torsion {kind!r}; choose from {_MD_TORSIONS}")
-    if not torsions and atom_pairs is None:
-        raise InputError("torsions=() and atom_pairs=None leave no features to compute; give "
-                         "backbone torsions, atom pairs, or both")
-    kwargs = {}
-    if topology is not None:
-        kwargs["top"] = str(topology)
-    elif suffix not in (".pdb", ".gro", ".lh5", ".arc"):
-        raise InputError(f"topology is required to read {path}: {suffix} files hold coordinates "
-                         f"only; pass topology='system.pdb' (or another structure file)")
-    pairs = None
-    blocks: list[list[np.ndarray]] = []
-    names: list[str] | None = None
-    try:
-        for chunk in md.iterload(path, chunk=md_chunk, **kwargs):
-            top = chunk.topology
-            if names is None:
-                names, plan = [], []
-                for kind in torsions:
-                    indices, _ = getattr(md, f"compute_{kind}")(chunk[:1])
-                    for quad in indices:
-                        label = f"{kind} {_residue_label(top, quad[1])}"
-                        names += [f"sin({label})", f"cos({label})"]
-                    plan.append(kind)
-                if atom_pairs is not None:
-                    pairs = np.asarray(atom_pairs)
-                    if pairs.ndim != 2 or pairs.shape[1] != 2 or pairs.dtype.kind not in "iu":
-                        raise InputError(f"atom_pairs must be an (n, 2) array of atom indices, "
-                                         f"but got {brief(atom_pairs)}")
-                    if pairs.size and (pairs.min() < 0 or pairs.max() >= top.n_atoms):
-                        raise InputError(f"atom_pairs holds atom indices outside 0..{top.n_atoms - 1} "
-                                         f"(the topology has {top.n_atoms} atoms)")
-                    names += [f"d({top.atom(int(a))}, {top.atom(int(b))})" for a, b in pairs]
-                if not names:
-                    raise InputError(f"{path}: the topology has no {'/'.join(torsions)} torsions "
-                                     f"(no protein backbone?); give atom_pairs= instead")
-            cols = []
-            for kind in torsions:
-                _, angles = getattr(md, f"compute_{kind}")(chunk)
-                sc = np.empty((angles.shape[0], 2 * angles.shape[1]))
-                sc[:, 0::2] = np.sin(angles)
-                sc[:, 1::2] = np.cos(angles)
-                cols.append(sc)
-            if pairs is not None:
-                cols.append(np.asarray(md.compute_distances(chunk, pairs, periodic=True),
-                                       dtype=np.float64))
-            blocks.append(np.hstack(cols) if cols else np.empty((chunk.n_frames, 0)))
-    except InputError:
-        raise
-    except Exception as err:  # mdtraj raises many types for unreadable files
-        raise InputError(f"cannot read {path} with mdtraj: {err}") from None
-    if not blocks:
-        raise InputError(f"{path} holds no frames")
-    arr = np.vstack(blocks)
+    from .mdfeatures import MDFeatures
+
+    spec = MDFeatures.from_options(features, torsions, atom_pairs, periodic, selection)
+    arr, names, atoms, dt = read_md_features(path, spec, topology=topology, frames=frames)
     _check_shape(arr.shape, path, "the features")
     check_finite_frames(arr, path, 0, names)
+    if details is not None:
+        details.update(feature_atoms=tuple(tuple(a) for a in atoms), dt=dt, unit="ps")
     return [arr], names
 
 
 def read_file(path: str, options: dict):
     """Kernel of :func:`load_trajectories` for one file: the runs in it (lazy where the
     format allows) and the feature names (or None); ``options`` are the reader options (``key``,
-    ``topology``, ``torsions``, ``atom_pairs``)."""
+    ``topology``, ``torsions``, ``atom_pairs``, and the MD options ``features``, ``periodic``,
+    ``selection``, ``frames``)."""
     return _reader_for(path)(path, **options)
 
 
@@ -728,6 +748,8 @@ def _reader_for(path: str):
         return _read_hdf5
     if suffix in MD_SUFFIXES:
         return _read_md
+    if suffix in (".gz", ".bz2", ".xz") and Path(path[:-len(suffix)]).suffix.lower() in MD_SUFFIXES:
+        return _read_md  # decompressed to a temporary file while reading
     raise InputError(f"{path}: unknown file type {suffix or '(no extension)'!r}; supported: "
                      f"{_supported()}")
 
@@ -760,7 +782,8 @@ def _is_path(item) -> bool:
 
 
 def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=None,
-                      topology=None, torsions=("phi", "psi"), atom_pairs=None,
+                      topology=None, torsions=("phi", "psi"), atom_pairs=None, features=None,
+                      periodic="whole", selection=None, frames=None,
                       progress: bool = False, client=None) -> TrajectorySet:
     """Read trajectories (frames x features) into a :class:`TrajectorySet`.
 
@@ -776,13 +799,25 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
         HDF5 dataset path(s) to read; by default every 2-D numeric dataset.
     dt : float, optional
         Time between frames, stored on the result; ``unit`` is the time unit (e.g. ``"ns"``).
+        MD files that record it (DCD, XTC, TRR, NetCDF) give it in ps when ``dt`` is not given.
     topology : path, optional
         Structure file (e.g. ``.pdb``) for MD formats that hold coordinates only (xtc, dcd, ...).
     torsions : sequence of str
         MD formats: backbone/side-chain torsions to use as sin/cos features ("phi", "psi",
         "omega", "chi1".."chi4"); ``()`` for none.
     atom_pairs : (n, 2) int array, optional
-        MD formats: atom index pairs whose distances (nm, minimum image) become features.
+        MD formats: atom index pairs whose distances (nm) become features.
+    features : str, sequence of str or MDFeatures, optional
+        MD formats: feature kinds (``"backbone-torsions"``, ``"sidechain-torsions"``,
+        ``"ca-distances"``, ``"distances"``, ``"inverse-distances"``, ``"contacts"``) in
+        place of ``torsions``; see :class:`msmkit.mdfeatures.MDFeatures`.
+    periodic : {"whole", "minimum-image", "none"}
+        MD formats: distances in a periodic box (see :class:`~msmkit.mdfeatures.MDFeatures`).
+    selection : str, optional
+        MD formats: mdtraj atom selection the features are limited to.
+    frames : slice, optional
+        MD formats: frame range and step read from each file, e.g. ``slice(0, 5000, 10)``.
+        Coordinates are read in bounded chunks, only the atoms the features need.
     progress : bool
         Show a progress bar while reading many files.
     client : dask.distributed.Client, optional
@@ -815,7 +850,8 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
     if isinstance(source, TrajectorySet):
         names = source.feature_names if feature_names is None else feature_names
         return TrajectorySet(source.runs, names, dt=source.dt if dt is None else dt,
-                             unit=source.unit if unit is None else unit, sources=source.sources)
+                             unit=source.unit if unit is None else unit, sources=source.sources,
+                             feature_atoms=source.feature_atoms)
     if source is None:
         raise InputError("source must be a path, a glob pattern, an array or a list of them, "
                          "but got None")
@@ -848,7 +884,8 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
     if client is not None and n_files:
         from . import _execution as execution
 
-        options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs)
+        options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs,
+                       features=features, periodic=periodic, selection=selection, frames=frames)
         unique = list(dict.fromkeys(p for p, _ in plan if p is not None))
         bar = None
         if progress and len(unique) > 1:
@@ -872,14 +909,19 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
     names = None
     names_from = None
     in_memory_names = feature_names_of(source) if not _is_path(source) else None
-    options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs)
+    options = dict(key=key, topology=topology, torsions=torsions, atom_pairs=atom_pairs,
+                   features=features, periodic=periodic, selection=selection, frames=frames)
+    md_details = []
     for path, what in iterator:
         if path is None:
             runs.append(what)
             sources.append(None)
             continue
-        file_runs, file_names = (what(path, **options) if read_remotely is None
-                                 else read_remotely[path])
+        details = {}
+        file_runs, file_names = (what(path, details=details, **options)
+                                 if read_remotely is None else read_remotely[path])
+        if details:
+            md_details.append((path, details))
         if file_names is not None:
             file_names = tuple(file_names)
             if names is None:
@@ -901,4 +943,89 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
         sources.extend([path] * len(file_runs))
     if feature_names is None:
         feature_names = names if names is not None else in_memory_names
-    return TrajectorySet(runs, feature_names, dt=dt, unit=unit, sources=sources)
+    feature_atoms = None
+    if md_details and len(md_details) == len(runs):
+        feature_atoms = md_details[0][1]["feature_atoms"]
+        if dt is None:
+            dt, unit = _md_time_step(md_details, unit)
+    return TrajectorySet(runs, feature_names, dt=dt, unit=unit, sources=sources,
+                         feature_atoms=feature_atoms)
+
+
+def _md_time_step(md_details, unit):
+    """The time between frames that every MD file agrees on (ps), or None with a warning."""
+    import warnings
+
+    from .errors import DiagnosticWarning
+
+    steps = {path: d["dt"] for path, d in md_details}
+    known = [v for v in steps.values() if v is not None]
+    if unit not in (None, "ps"):
+        return None, unit  # the files give ps; the caller asked for another unit without dt
+    if len(known) == len(steps) and np.allclose(known, known[0], rtol=1e-4):
+        return float(known[0]), "ps"
+    if known:
+        warnings.warn(f"the MD files do not agree on the time between frames "
+                      f"({brief(steps, 200)} ps); pass dt= (and unit=) to set it",
+                      DiagnosticWarning, stacklevel=3)
+    return None, unit
+
+
+# ---------------------------------------------------------------------------------------------
+# New trajectories through a saved model
+# ---------------------------------------------------------------------------------------------
+
+def assign_files(model, files, *, topology=None, frames=None) -> list:
+    """Microstate labels of new MD files, computed as for the saved model.
+
+    The model file must carry the feature description (``metadata["md_features"]``, written
+    by ``msmkit build`` on MD files) and the cluster centres; the stored feature scaling and
+    TICA projection are applied before each frame goes to the nearest centre.
+
+    Parameters
+    ----------
+    model : MarkovModel
+        From :func:`msmkit.load_model`.
+    files : path or list of paths
+        Trajectories of the same system (same topology, same features).
+    topology : path, optional
+        Structure file for coordinates-only formats.
+    frames : slice, optional
+        Frame range and step read from each file.
+
+    Returns
+    -------
+    list of int32 arrays
+        One label trajectory per file (microstate indices, as the centres are numbered).
+    """
+    from .mdfeatures import MDFeatures
+
+    spec = model.metadata.get("md_features")
+    if not spec or "centers" not in model.extras:
+        raise InputError("model: the model file holds no feature description or cluster "
+                         "centres; build it from MD files (msmkit build ... --topology) to "
+                         "assign new trajectories with it")
+    trajs = load_trajectories(files, topology=topology, frames=frames,
+                              features=MDFeatures.from_dict(spec["spec"]))
+    if list(trajs.feature_names) != list(spec["feature_names"]):
+        raise InputError(f"files: the features of these files ({trajs.n_features}, e.g. "
+                         f"{trajs.feature_names[0]!r}) differ from those the model was built "
+                         f"on ({len(spec['feature_names'])}, e.g. {spec['feature_names'][0]!r}); "
+                         f"give trajectories of the same system and topology")
+    from scipy.spatial import cKDTree
+
+    extras = model.extras
+    tree = cKDTree(extras["centers"])
+    labels = []
+    for run in trajs:
+        out = []
+        for block in iter_chunks(run):
+            x = np.asarray(block, dtype=np.float64)
+            if "feature_scale" in extras:
+                x = (x - extras["feature_mean"]) / extras["feature_scale"]
+            if "tica_components" in extras:
+                x = (x - extras["tica_mean"]) @ extras["tica_components"].T
+            out.append(tree.query(x)[1].astype(np.int32))
+        labels.append(np.concatenate(out))
+    return labels
+

@@ -17,7 +17,8 @@ dt                     float, physical time per frame
 unit                   str
 reversible             bool
 metadata               JSON string (parameters, version, creation time, fingerprint, ...)
-optional: centers (k, d), tica_mean (f,), tica_components (d, f), affinity (n, m)
+optional: centers (k, d), tica_mean (f,), tica_components (d, f), affinity (n, m),
+          feature_mean (f,), feature_scale (f,) (features standardised before clustering)
 """
 from __future__ import annotations
 
@@ -37,7 +38,7 @@ __all__ = ["FORMAT", "FORMAT_VERSION", "read_model_file", "save_model"]
 
 FORMAT = "msmkit-model"
 FORMAT_VERSION = 1
-OPTIONAL_KEYS = ("centers", "tica_mean", "tica_components", "affinity")
+OPTIONAL_KEYS = ("centers", "tica_mean", "tica_components", "affinity", "feature_mean", "feature_scale")
 REQUIRED_KEYS = ("format", "format_version", "propagator", "equilibrium", "states",
                  "lag", "dt", "unit", "reversible", "metadata")
 ROW_TOL = 1e-8

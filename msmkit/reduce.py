@@ -422,6 +422,12 @@ class TICA:
     def _finish(self, moments: LaggedMoments, dim, kv, names, n_runs=None) -> None:
         lag = moments.lag
         n_features = len(moments.shift)
+        if n_features >= moments.n_pairs:
+            warnings.warn(f"TICA: more features than frames: {n_features} features but only "
+                          f"{int(moments.n_pairs)} frame pairs at lag {lag}, so the covariances "
+                          f"are singular and fitted to noise; eigenvalues near or above 1 and "
+                          f"infinite timescales are artefacts of that. Use fewer features (a "
+                          f"selection) or more data", DiagnosticWarning, stacklevel=3)
         mean, c0, ctau = tica_covariances(moments)
         lam_all, comps_all = _tica_solve(c0, ctau, mean, names)
         sq = lam_all ** 2

@@ -282,7 +282,11 @@ def test_md_features_from_pdb_and_dcd(tmp_path, rng):
         top.add_bond(atoms[2], atoms[3])
     for a, b in zip(list(top.atoms)[2::4], list(top.atoms)[4::4]):
         top.add_bond(a, b)
-    base = np.array([[i * 0.15, 0.02 * (i % 2), 0.0] for i in range(12)])
+    # backbone N, CA, C every 0.145 nm along a zigzag (so the C-N peptide bond stays under the
+    # 0.2 nm chain-break limit), each O 0.12 nm off its C
+    spine = np.array([[k * 0.145, 0.02 * (k % 2), 0.0] for k in range(9)])
+    base = np.concatenate([np.vstack([spine[3 * r:3 * r + 3], spine[3 * r + 2] + [0, 0.12, 0]])
+                           for r in range(3)])
     xyz = base + 0.02 * rng.normal(size=(25, 12, 3))
     traj = md.Trajectory(xyz.astype(np.float32), top)
     traj.save_pdb(str(tmp_path / "pep.pdb"))
