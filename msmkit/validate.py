@@ -157,7 +157,7 @@ class CKResult:
 
 
 def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_samples=20, seed=None,
-                       confidence=0.95, tolerance=0.05, progress=False, client=None) -> CKResult:
+                       confidence=0.95, tolerance=0.05, progress=False, client=None, cancel=None) -> CKResult:
     """Chapman-Kolmogorov test: does T(tau)^k predict the data at lag k tau?
 
     For each pair of sets (a, b) and k = 1..``multiples``, compares
@@ -201,6 +201,9 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
         Count the runs and fit the bootstrap samples on the cluster's workers, batches of
         samples as tasks (needs the extra ``dask``); the same seed gives the same samples and
         the same result as in memory.
+    cancel : object with ``is_set()``, optional
+        E.g. a ``threading.Event`` set from another thread: asked between units of work (a lag
+        multiple, a bootstrap sample); once set, :class:`~msmkit.errors.Cancelled` is raised.
 
     Returns
     -------
@@ -280,7 +283,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
         from . import distributed as _dist
 
         remote = _dist.scatter_labels(client, runs)
-    bar = progress_bar(K * (1 + n_samples), progress, "Chapman-Kolmogorov test")
+    bar = progress_bar(K * (1 + n_samples), progress, "Chapman-Kolmogorov test", cancel)
     try:
         for k in range(1, K + 1):
             if remote is not None:

@@ -41,7 +41,9 @@ def wb(trajs):
     """A workbench taken through clustering and scanning by the buttons."""
     bench = Workbench(trajs, n_states=N_STATES, lags=LAGS, n_samples=5, progress=False)
     bench.states_panel.cluster_button.click()
+    bench.wait(60)
     bench.lag_panel.scan_button.click()
+    bench.wait(60)
     return bench
 
 
@@ -105,6 +107,7 @@ def test_warnings_are_shown_in_the_panel():
             for _ in range(3)]
     panel = StatesPanel(runs, tica_dim=1, n_states=5, progress=False)
     panel.cluster_button.click()
+    panel.wait(60)
     assert panel.labels is not None
     assert "msmkit-warning" in panel.status.value
     assert "constant" in status_text(panel.status)  # TICA's finding about feature x2
@@ -242,6 +245,7 @@ def test_bad_choices_show_messages_not_tracebacks(trajs, tmp_path):
     bench = Workbench(trajs, n_states=6, lags=[1, 2], n_samples=0, progress=False,
                       file_name=str(tmp_path / "never.npz"))
     bench.lag_panel.scan_button.click()
+    bench.wait(60)
     assert "no microstates yet" in status_text(bench.lag_panel.status)
     bench.saver.button.click()
     assert "no model to save" in status_text(bench.saver.status)
@@ -249,6 +253,7 @@ def test_bad_choices_show_messages_not_tracebacks(trajs, tmp_path):
 
     bench.states_panel.n_states.value = 10 ** 6
     bench.states_panel.cluster_button.click()
+    bench.wait(60)
     assert "n_states=1000000" in status_text(bench.states_panel.status)
     assert bench.labels is None
     with pytest.raises(InputError, match="n_states"):
@@ -257,14 +262,17 @@ def test_bad_choices_show_messages_not_tracebacks(trajs, tmp_path):
         bench.make_states(n_states="many")
     bench.states_panel.features.value = ()
     bench.states_panel.cluster_button.click()
+    bench.wait(60)
     assert "choose at least one feature" in status_text(bench.states_panel.status)
 
     bench.make_states(n_states=6, features=list(demo.FEATURE_NAMES))
     bench.lag_panel.lags.value = "1, 100000"
     bench.lag_panel.scan_button.click()
+    bench.wait(60)
     assert "not shorter than the longest trajectory" in status_text(bench.lag_panel.status)
     bench.lag_panel.lags.value = "1, two"
     bench.lag_panel.scan_button.click()
+    bench.wait(60)
     assert "whole numbers" in status_text(bench.lag_panel.status)
     assert bench.scan_result is None and bench.model is None
     assert bench.lag_panel.progress_bar.bar_style == "danger"
@@ -349,6 +357,7 @@ def test_validate_button_gives_the_public_ck_test(wb):
 
     panel.multiples.value, panel.n_samples.value = CK_MULTIPLES, CK_SAMPLES
     panel.run_button.click()
+    panel.wait(60)
     ck = wb.ck
     assert ck is not None and ck is panel.ck, status_text(panel.status)
     want = chapman_kolmogorov(model, wb.labels, n_sets=n_sets, multiples=CK_MULTIPLES, n_samples=CK_SAMPLES,
@@ -399,6 +408,7 @@ def test_validate_method_errors_and_new_models(wb, trajs):
     assert panel.progress_bar.bar_style == "danger" and wb.ck is ck
     panel.n_sets.field.value = 10 ** 3
     panel.run_button.click()
+    panel.wait(60)
     assert "n_sets" in status_text(panel.status) and wb.ck is ck
     panel.n_sets.field.value = 2
     panel.pair.first.value = 1  # the same set twice
@@ -419,6 +429,7 @@ def test_validate_method_errors_and_new_models(wb, trajs):
 
     bench = Workbench(trajs, n_states=6, lags=[1], n_samples=0, progress=False)
     bench.validation_panel.run_button.click()
+    bench.wait(60)
     assert "no model to test" in status_text(bench.validation_panel.status)
     with pytest.raises(InputError, match="no model"):
         bench.validate()
@@ -435,6 +446,7 @@ def test_kinetics_button_gives_the_public_numbers(wb):
     n_sets = panel.n_sets.field.value
     assert n_sets == max(model.suggest_n_macrostates()[0], 2)
     panel.compute_button.click()
+    panel.wait(60)
     res = panel.result
     assert res is not None, status_text(panel.status)
     assert "msmkit-error" not in panel.status.value
@@ -503,6 +515,7 @@ def test_kinetics_method_errors_and_saved_memberships(wb, tmp_path):
     panel.fraction.value = 0.9
     panel.n_sets.field.value = 10 ** 4
     panel.compute_button.click()
+    panel.wait(60)
     assert "n_sets" in status_text(panel.status) and panel.progress_bar.bar_style == "danger"
     panel.n_sets.field.value = 2
 
@@ -544,3 +557,166 @@ def test_new_panels_work_on_their_own(reference):
     assert (res.source, res.target) == (1, 0)
     np.testing.assert_allclose(res.passage["mfpt"], model.passage_time_matrix(model.find_macrostates(2).members)[[0, 1], [1, 0]],
                                rtol=1e-12)
+
+
+# -- background work, cancel, stale state (checked against the panels' own earlier results) ----
+def _slow_bench(trajs):
+    bench = Workbench(trajs, n_states=8, lags=[1, 2], n_samples=2, progress=True)
+    bench.make_states()
+    first = bench.scan()
+    return bench, first
+
+
+def test_cancel_button_stops_a_scan_and_keeps_the_previous_result(trajs):
+    import time
+
+    bench, first = _slow_bench(trajs)
+    model = bench.model
+    panel = bench.lag_panel
+    panel.lags.value = "1, 2, 3, 4, 5, 6, 8, 10"
+    panel.n_samples.value = 5000  # minutes of work when not cancelled
+    panel.scan_button.click()
+    assert panel.running and not panel.cancel_button.disabled
+    assert panel.scan_button.disabled
+    deadline = time.monotonic() + 30
+    while panel.progress_bar.value < 3 and time.monotonic() < deadline:  # some samples done
+        time.sleep(0.01)
+    panel.cancel_button.click()
+    assert panel.wait(120), "the scan did not stop after Cancel"
+    assert bench.scan_result is first and bench.model is model  # nothing half-made
+    text = status_text(panel.status)
+    assert "cancelled" in text and "previous successful run" in text
+    assert panel.progress_bar.bar_style == "warning"
+    assert panel.cancel_button.disabled and not panel.scan_button.disabled
+    assert "msmkit-stale" in panel.plot._dom_classes
+    # a new run after a cancel runs to the end and clears the stale mark
+    panel.n_samples.value = 2
+    panel.scan_button.click()
+    assert panel.wait(120)
+    assert bench.scan_result is not first and "msmkit-stale" not in panel.plot._dom_classes
+
+
+def test_cancel_stops_work_without_cancel_points():
+    """A method with no cancel points of its own (like scikit-learn's k-means) is stopped in its
+    thread at its next Python-level step."""
+    import itertools
+    import time
+
+    from msmkit.widgets._base import Step
+
+    class Endless(Step):
+        interrupt_thread = True
+
+        def __init__(self):
+            super().__init__(css_class="msmkit-test")
+            self.go = widgets_button = __import__("ipywidgets").Button(description="go")
+            self._on_click(widgets_button, self.work)
+            self.steps = 0
+
+        def work(self):
+            with self._action("Endless work"):
+                for self.steps in itertools.count():
+                    time.sleep(0.001)
+
+    panel = Endless()
+    panel.go.click()
+    while panel.steps < 5:
+        time.sleep(0.01)
+    assert panel.cancel()
+    assert panel.wait(30), "the thread was not stopped"
+    assert "cancelled" in status_text(panel.status)
+    assert not panel.cancel()  # nothing left to cancel
+
+
+def test_kernel_interrupt_cancels_background_work(trajs, monkeypatch):
+    """Kernel -> Interrupt: the idle kernel's SIGINT handler (the one it puts back after each
+    message) becomes ours and cancels what runs in the background."""
+    import signal
+    import time
+    import types
+
+    import IPython
+
+    from msmkit.widgets import _base
+
+    kernel = types.SimpleNamespace(saved_sigint_handler=signal.SIG_IGN)
+    monkeypatch.setattr(IPython, "get_ipython", lambda: types.SimpleNamespace(kernel=kernel))
+    bench, first = _slow_bench(trajs)
+    panel = bench.lag_panel
+    panel.lags.value = "1, 2, 3, 4, 5"
+    panel.n_samples.value = 5000
+    panel.scan_button.click()
+    handler = kernel.saved_sigint_handler
+    assert callable(handler) and handler is not signal.SIG_IGN
+    while panel.progress_bar.value < 2:
+        time.sleep(0.01)
+    handler(signal.SIGINT, None)  # what the kernel does on Interrupt
+    assert panel.wait(120)
+    assert bench.scan_result is first and "cancelled" in status_text(panel.status)
+    _base._interrupt_cancels_jobs()  # installed once only
+    assert kernel.saved_sigint_handler is handler
+    handler(signal.SIGINT, None)  # nothing runs: passes on to SIG_IGN, no error
+
+
+def test_recluster_resets_save_row_and_downstream_panels(trajs, tmp_path):
+    bench = Workbench(trajs, n_states=8, lags=[1, 2], n_samples=0, ck_samples=0, progress=False)
+    bench.make_states()
+    bench.scan()
+    bench.validate(n_sets=2, multiples=2)
+    bench.kinetics(n_sets=2)
+    assert "Ready to save" in status_text(bench.saver.status)
+    assert bench.validation_panel.ck_plot.outputs
+    bench.states_panel.n_states.value = 6
+    bench.states_panel.cluster_button.click()
+    bench.wait(60)
+    assert bench.labels is not None and bench.model is None
+    assert "Ready to save" not in status_text(bench.saver.status)
+    assert "Nothing to save yet" in status_text(bench.saver.status)
+    assert bench.ck is None and bench.macrostates is None
+    assert not bench.validation_panel.ck_plot.outputs and not bench.lag_panel.plot.outputs
+    assert bench.kinetics_panel.passage_html.value == ""
+    bench.saver.name.value = str(tmp_path / "gone.npz")
+    bench.saver.button.click()
+    assert "no model to save" in status_text(bench.saver.status)
+    assert not (tmp_path / "gone.npz").exists()
+
+
+def test_error_after_a_result_marks_the_old_figure_stale(wb):
+    panel = wb.lag_panel
+    kept = wb.scan_result
+    old = panel.lags.value
+    try:
+        panel.lags.value = "1, two"
+        panel.scan_button.click()
+        panel.wait(60)
+        assert "whole numbers" in status_text(panel.status)
+        assert "still those of the previous successful run" in status_text(panel.status)
+        assert "msmkit-stale" in panel.plot._dom_classes and panel.plot.outputs
+        assert wb.scan_result is kept
+    finally:
+        panel.lags.value = old
+    wb.scan()
+    assert "msmkit-stale" not in panel.plot._dom_classes
+
+
+def test_buttons_leave_no_progress_widgets_behind(trajs, monkeypatch):
+    """No detailed (tqdm) bar is made by a button: nothing to pile up or to outlive its model."""
+    import tqdm.auto
+
+    made = []
+
+    class Recording(tqdm.auto.tqdm):
+        def __init__(self, *a, **kw):
+            made.append(not kw.get("disable", False))
+            super().__init__(*a, **kw)
+
+    monkeypatch.setattr(tqdm.auto, "tqdm", Recording)
+    bench = Workbench(trajs, n_states=8, lags=[1, 2], n_samples=2, ck_samples=2, progress=True)
+    for button in (bench.states_panel.cluster_button, bench.lag_panel.scan_button,
+                   bench.validation_panel.run_button, bench.kinetics_panel.compute_button):
+        button.click()
+        bench.wait(60)
+    assert bench.kinetics_panel.result is not None, status_text(bench.kinetics_panel.status)
+    assert made and not any(made)  # the library was asked, with its bars off
+    for out in (bench.states_panel.map, bench.lag_panel.plot, bench.validation_panel.ck_plot):
+        assert [list(o["data"]) for o in out.outputs] == [["image/png", "text/plain"]]

@@ -92,6 +92,7 @@ class KineticsPanel(Step):
     """
 
     result = traitlets.Any(None)
+    interrupt_thread = True  # the macrostate bootstrap has no cancel points of its own
 
     def __init__(self, model=None, *, n_sets=None, fraction: float = 0.9, max_paths: int = 20,
                  progress: bool = True):
@@ -128,10 +129,10 @@ class KineticsPanel(Step):
             "first-passage time and the rate from transition path theory; for one chosen pair: the reactive "
             "flux and the routes that carry it, microstate by microstate."))
         settings = widgets.HBox([
-            widgets.VBox([self.n_sets.field, widgets.HBox([self.compute_button, self.progress_bar])]),
+            widgets.VBox([self.n_sets.field, widgets.HBox([self.compute_button, self.cancel_button, self.progress_bar])]),
             widgets.VBox([self.fraction, self.max_paths]),
         ])
-        self.children = [intro, settings, self.n_sets.reason, self.details, self.status, self.populations_html, self.passage_html,
+        self.children = [intro, settings, self.n_sets.reason, self.status, self.populations_html, self.passage_html,
                          self.cautions, widgets.HTML("<b>Reactive flux and routes</b>"), self.pair,
                          self.flux_summary, self.pathways_html]
         self.set_model(model)

@@ -138,7 +138,8 @@ class LagPanel(Step):
             "faster than the lag and cannot be resolved."))
         settings = widgets.HBox([widgets.VBox([self.lags, self.n_processes]),
                                  widgets.VBox([self.n_samples, self.seed])])
-        self.children = [intro, settings, widgets.HBox([self.scan_button, self.progress_bar]), self.details,
+        self._plots = [self.plot]
+        self.children = [intro, settings, widgets.HBox([self.scan_button, self.cancel_button, self.progress_bar]),
                          self.status, self.plot, self.suggestion, self.slider, self.diagnostics]
         if labels is not None:
             self.set_labels(labels)
@@ -183,11 +184,13 @@ class LagPanel(Step):
             if self.labels is None:
                 raise InputError("there are no microstates yet: make them first (step 1, Cluster)")
             wanted = parse_int_list(self.lags.value, "lags")
-            self._stage(1, 3, f"{len(wanted)} lags")
+            self._stage(0, 1, f"{len(wanted)} lags")
+            units = len(wanted) * (1 + max(int(self.n_samples.value), 0))
             result = lag_scan(self.labels, wanted, dt=self.dt, unit=self.unit,
                               n_processes=check_int(self.n_processes.value, "timescales shown", minimum=1),
-                              n_samples=self.n_samples.value, seed=self.seed.value, progress=self.progress)
-            self._stage(2, 3, "drawing")
+                              n_samples=self.n_samples.value, seed=self.seed.value,
+                              cancel=self._cancel_point(units + 1, what=f"{len(wanted)} lags"))
+            self._stage(units, units + 1, "drawing")
             lag = result.suggested_lag if result.suggested_lag is not None else int(result.lags[0])
             view = TimescaleView(result, lag)
         self._view = view

@@ -87,9 +87,10 @@ class ValidationPanel(Step):
             "data at lag kτ. The lag flow below draws the same numbers for two sets as paths toward equilibrium."))
         settings = widgets.HBox([
             widgets.VBox([self.n_sets.field, self.multiples]),
-            widgets.VBox([self.n_samples, self.seed, widgets.HBox([self.run_button, self.progress_bar])]),
+            widgets.VBox([self.n_samples, self.seed, widgets.HBox([self.run_button, self.cancel_button, self.progress_bar])]),
         ])
-        self.children = [intro, settings, self.n_sets.reason, self.details, self.status, self.verdict, self.ck_plot,
+        self._plots = [self.ck_plot, self.flow_plot]
+        self.children = [intro, settings, self.n_sets.reason, self.status, self.verdict, self.ck_plot,
                          widgets.HTML("<b>Lag flow</b>"), self.pair, self.flow_summary, self.flow_plot]
         self.set_labels(labels)
         self.set_model(model)
@@ -140,10 +141,12 @@ class ValidationPanel(Step):
                 raise InputError("there is no model to test yet: make microstates (step 1), then scan and "
                                  "choose a lag (step 2)")
             m = self.n_sets.get(n_sets, self.model)
-            self._stage(1, 3, "testing")
+            self._stage(0, 1, "testing")
+            units = check_int(self.multiples.value, "multiples", minimum=1) * (1 + max(int(self.n_samples.value), 0))
             ck = chapman_kolmogorov(self.model, self.labels, n_sets=m, multiples=self.multiples.value,
-                                    n_samples=self.n_samples.value, seed=self.seed.value, progress=self.progress)
-            self._stage(2, 3, "drawing")
+                                    n_samples=self.n_samples.value, seed=self.seed.value,
+                                    cancel=self._cancel_point(units + 1, what="testing"))
+            self._stage(units, units + 1, "drawing")
             flow = lag_flow(ck, pair=(0, 1))
             _render.show_figure(self.ck_plot, plot_chapman_kolmogorov(ck), alt="Chapman-Kolmogorov test")
             _render.show_figure(self.flow_plot, plot_lag_flow(flow), alt="lag flow")

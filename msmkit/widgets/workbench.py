@@ -132,11 +132,24 @@ class Workbench(widgets.VBox):
 
     def _show_ready(self):
         m = self.model
-        if m is not None:
-            macro = self.macrostates
-            with_sets = f", with the affinity of {macro.n_sets} macrostates" if macro is not None else ""
-            _render.show_message(self.saver.status, f"Ready to save the model at lag {frames(m.lag)} "
-                                                    f"({m.lag_time:g} {m.unit}), {m.n_states} states{with_sets}.")
+        if m is None:
+            what = ("Nothing to save yet: scan the lags and choose one (step 2)." if self.labels is not None
+                    else "Nothing to save yet.")
+            _render.show_message(self.saver.status, what)
+            return
+        macro = self.macrostates
+        with_sets = f", with the affinity of {macro.n_sets} macrostates" if macro is not None else ""
+        _render.show_message(self.saver.status, f"Ready to save the model at lag {frames(m.lag)} "
+                                                f"({m.lag_time:g} {m.unit}), {m.n_states} states{with_sets}.")
+
+    def wait(self, timeout=None) -> bool:
+        """Wait for the computations the buttons started in the background; True when none is
+        left running."""
+        return all([panel.wait(timeout) for _, panel in self.steps if hasattr(panel, "wait")])
+
+    def cancel(self) -> bool:
+        """Cancel every running background computation; True when one was running."""
+        return any([panel.cancel() for _, panel in self.steps if hasattr(panel, "cancel")])
 
     # -- the chosen results ------------------------------------------------------------------
     @property
