@@ -15,5 +15,5 @@ class DiagnosticWarning(UserWarning):
 
 
 class Cancelled(Exception):
-    """A computation stopped on request: its ``cancel`` flag was set between two units of work.
+    """A computation stopped on request: the ``cancel`` flag given to it was set between two units of work.
     Nothing it would have returned or changed exists."""

@@ -597,8 +597,8 @@ def test_cancel_button_stops_a_scan_and_keeps_the_previous_result(trajs):
 
 
 def test_cancel_stops_work_without_cancel_points():
-    """A method with no cancel points of its own (like scikit-learn's k-means) is stopped in its
-    thread at its next Python-level step."""
+    """A method without cancel points (like scikit-learn's k-means) is stopped in the worker
+    thread at the next Python-level step."""
     import itertools
     import time
 
@@ -700,7 +700,7 @@ def test_error_after_a_result_marks_the_old_figure_stale(wb):
 
 
 def test_buttons_leave_no_progress_widgets_behind(trajs, monkeypatch):
-    """No detailed (tqdm) bar is made by a button: nothing to pile up or to outlive its model."""
+    """No detailed (tqdm) bar is made by a button: nothing to pile up or to outlive the model behind it."""
     import tqdm.auto
 
     made = []

@@ -164,9 +164,9 @@ class Step(widgets.VBox):
     bad input (:class:`~msmkit.errors.InputError`) and warnings appear in the panel; the
     method still raises the error to a caller in code, while buttons only show it.
 
-    A button runs its method in a background thread, so that the kernel stays free: Cancel
+    A button runs the method behind it in a background thread, so that the kernel stays free: Cancel
     (or Kernel -> Interrupt) stops it between two units of work (a lag, a bootstrap sample, a
-    k-means iteration) and the panel keeps its previous result. :meth:`wait` waits for it.
+    k-means iteration) and the panel keeps the previous result. :meth:`wait` waits for it.
     Called from code, the methods run in the caller's thread (Kernel -> Interrupt stops them).
     """
 
