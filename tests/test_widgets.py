@@ -720,3 +720,55 @@ def test_buttons_leave_no_progress_widgets_behind(trajs, monkeypatch):
     assert made and not any(made)  # the library was asked, with its bars off
     for out in (bench.states_panel.map, bench.lag_panel.plot, bench.validation_panel.ck_plot):
         assert [list(o["data"]) for o in out.outputs] == [["image/png", "text/plain"]]
+
+
+# -- cautions about the chosen lag --------------------------------------------------------------
+def test_lag_cautions_below_the_suggestion_and_near_the_run_length():
+    """A scan with given timescales: below the suggestion the slowest one rises (6 -> 9); 30
+    frames of a 200-frame run is 15 %, 200/30 = 6.67 steps (exact arithmetic)."""
+    from types import SimpleNamespace
+
+    from msmkit.widgets.lags import lag_cautions
+
+    model = SimpleNamespace(metadata={"frames_per_run": [200, 150]})
+    # timescales rising up to lag 5, then level (values chosen for the rule, not measured)
+    scan = SimpleNamespace(lags=np.array([1, 2, 5, 10, 30]), timescales=np.array([[4.0], [6.0], [9.0], [9.1], [9.2]]),
+                           suggested_lag=5, unit="ns", model=lambda lag: model)
+    below = lag_cautions(scan, 2)
+    assert len(below) == 1 and "below the suggested lag" in below[0] and "6 to 9" in below[0]
+    assert lag_cautions(scan, 5) == [] and lag_cautions(scan, 10) == []
+    far = lag_cautions(scan, 30)  # 30 frames > 10% of the longest run (200 frames)
+    assert len(far) == 1 and "15% of the longest run" in far[0] and "6.67 steps" in far[0]
+    unsure = SimpleNamespace(**{**vars(scan), "suggested_lag": None})
+    rising = lag_cautions(unsure, 1)
+    assert len(rising) == 1 and "still rises" in rising[0] and "9.2 ns at 30 frames" in rising[0]
+    assert lag_cautions(unsure, 10) == []  # 9.1 -> 9.2 is less than 5 %
+
+
+def test_chosen_lag_caution_shown_in_the_panel(wb):
+    scan = wb.scan_result
+    slowest = scan.timescales[:, 0]
+    assert slowest[-1] > 1.05 * slowest[0]  # the demo's timescales still rise over these lags
+    wb.lag_panel.slider.value = int(scan.lags[0])
+    text = status_text(wb.lag_panel.diagnostics)
+    assert "still rises" in text and "msmkit-warning" in wb.lag_panel.diagnostics.value
+
+
+def test_suggested_marker_is_drawn_above_the_chosen_lag_line(wb):
+    scan = wb.scan_result
+    view = TimescaleView(dataclasses_replace(scan, suggested_lag=int(scan.lags[1])), int(scan.lags[1]))
+    labels = [str(a.get_label()) for a in view._figure.moving]
+    assert labels.index(next(x for x in labels if x.startswith("suggested lag"))) > \
+        labels.index(next(x for x in labels if x.startswith("chosen lag")))
+    png = view.png(int(scan.lags[1]))
+    # the suggestion's dark dotted line shows on top of the orange chosen-lag line
+    im = pixels(png)
+    dark = (im.sum(axis=2) < 150)
+    orange = (im[..., 0] > 180) & (im[..., 1] > 80) & (im[..., 1] < 170) & (im[..., 2] < 90)
+    cols = np.flatnonzero(orange.sum(axis=0) > 20)
+    assert cols.size and dark[:, cols.min():cols.max() + 1].sum() > 20
+
+
+def dataclasses_replace(obj, **kw):
+    import dataclasses
+    return dataclasses.replace(obj, **kw)

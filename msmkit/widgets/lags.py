@@ -12,7 +12,7 @@ from . import _render
 from ._base import DESCRIPTION_WIDTH, Step, button, field, parse_int_list, set_value, widgets
 from ._render import frames
 
-__all__ = ["LagPanel", "TimescaleView", "default_lags"]
+__all__ = ["LagPanel", "TimescaleView", "default_lags", "lag_cautions"]
 
 #: always said next to a chosen model
 SAMPLING_CAUTION = ("A Markov model is only as good as the sampling behind it: the slow processes must be "
@@ -41,6 +41,8 @@ class TimescaleView:
     """
 
     MARKER = "chosen lag"
+    #: label start of the suggested-lag line, redrawn above the chosen-lag line
+    SUGGESTED = "suggested lag"
 
     def __init__(self, scan, lag):
         self.scan = scan
@@ -52,7 +54,10 @@ class TimescaleView:
         self._text = None if legend is None else next(
             (t for t in legend.get_texts() if t.get_text().startswith(self.MARKER)), None)
         self.fast = self._line is not None and self._text is not None
-        self._figure = _render.MovingMarkerFigure(fig, [self._line, self._text]) if self.fast else None
+        # drawn after the chosen-lag line, so that the suggestion stays visible where both meet
+        above = [a for a in ax.get_lines() if str(a.get_label()).startswith(self.SUGGESTED)]
+        self._figure = (_render.MovingMarkerFigure(fig, [self._line, *above, self._text]) if self.fast
+                        else None)
 
     def png(self, lag: int) -> bytes:
         lag = int(lag)
@@ -238,7 +243,8 @@ class LagPanel(Step):
     def _show_lag(self, lag):
         model = self.scan_result.model(lag)
         _render.show_png(self.plot, self._view.png(lag), alt=f"implied timescales, chosen lag {lag}")
-        self.diagnostics.value = _diagnostics_html(model, self.scan_result.timescales.shape[1])
+        self.diagnostics.value = _diagnostics_html(model, self.scan_result.timescales.shape[1],
+                                                   lag_cautions(self.scan_result, lag))
         self.model = model
 
 
@@ -253,7 +259,53 @@ def _suggestion_html(scan) -> str:
     return _render.message_html(["No lag is suggested.", scan.reason], "warning")
 
 
-def _diagnostics_html(model, k) -> str:
+#: a lag above this share of the longest run leaves too few lag steps per run
+LONG_LAG_SHARE = 0.1
+#: relative rise of the slowest timescale at longer lags that counts as "still rising"
+RISING = 0.05
+
+
+def lag_cautions(scan, lag) -> list[str]:
+    """Cautions about choosing ``lag`` (frames) from ``scan``: below the suggested lag, where the
+    slowest timescale is still rising; or so long that a run holds few steps of the model.
+
+    Parameters
+    ----------
+    scan : LagScan
+    lag : int
+        A scanned lag, in frames.
+
+    Returns
+    -------
+    list of str
+        Empty when there is nothing to say.
+    """
+    lag = int(lag)
+    lags = [int(x) for x in scan.lags]
+    out = []
+    s = scan.suggested_lag
+    slowest = scan.timescales[:, 0]
+    here = slowest[lags.index(lag)]
+    if s is not None and lag < s:
+        there = slowest[lags.index(int(s))]
+        out.append(f"The chosen lag ({frames(lag)}) is below the suggested lag ({frames(s)}): the slowest implied "
+                   f"timescale still rises from {here:.4g} to {there:.4g} {scan.unit} between them, so the model "
+                   f"at this lag is not yet Markovian and its slow timescales come out too short.")
+    elif s is None and lag < lags[-1] and np.nanmax(slowest[lags.index(lag) + 1:]) > (1 + RISING) * here:
+        top = int(np.nanargmax(slowest[lags.index(lag) + 1:])) + lags.index(lag) + 1
+        out.append(f"The slowest implied timescale still rises after the chosen lag ({frames(lag)}): from {here:.4g} "
+                   f"to {slowest[top]:.4g} {scan.unit} at {frames(lags[top])}, and no scanned lag levels it off. The "
+                   f"model at this lag is probably not Markovian yet; scan longer lags or make finer microstates.")
+    runs = scan.model(lag).metadata.get("frames_per_run") or []
+    if runs and lag > LONG_LAG_SHARE * max(runs):
+        longest = int(max(runs))
+        out.append(f"The chosen lag ({frames(lag)}) is {100 * lag / longest:.3g}% of the longest run ({frames(longest)}): "
+                   f"a run holds only {longest / lag:.3g} steps of the model, so transitions and slow "
+                   f"processes are poorly sampled at this lag; choose a shorter lag or simulate longer runs.")
+    return out
+
+
+def _diagnostics_html(model, k, cautions=()) -> str:
     ts = model.relaxation_times(k)
     lines = [f"Model at lag {frames(model.lag)} ({model.lag_time:g} {model.unit}): {model.n_states} states kept, "
              f"{100 * model.kept_fraction:.3g}% of the transition counts.",
@@ -263,6 +315,7 @@ def _diagnostics_html(model, k) -> str:
         shown = ", ".join(str(int(s)) for s in model.dropped_states[:12])
         more = " ..." if model.dropped_states.size > 12 else ""
         lines.append(f"Dropped (not in the largest connected set): states {shown}{more}.")
-    lines += list(model.diagnostics)
+    lines += list(cautions) + list(model.diagnostics)
     lines.append(SAMPLING_CAUTION)
-    return _render.message_html(lines, "warning" if model.diagnostics or model.dropped_states.size else "info")
+    warn = model.diagnostics or model.dropped_states.size or cautions
+    return _render.message_html(lines, "warning" if warn else "info")
