@@ -290,7 +290,7 @@ def lag_cautions(scan, lag) -> list[str]:
         there = slowest[lags.index(int(s))]
         out.append(f"The chosen lag ({frames(lag)}) is below the suggested lag ({frames(s)}): the slowest implied "
                    f"timescale still rises from {here:.4g} to {there:.4g} {scan.unit} between them, so the model "
-                   f"at this lag is not yet Markovian and its slow timescales come out too short.")
+                   f"at this lag is not yet Markovian and the slow timescales come out too short.")
     elif s is None and lag < lags[-1] and np.nanmax(slowest[lags.index(lag) + 1:]) > (1 + RISING) * here:
         top = int(np.nanargmax(slowest[lags.index(lag) + 1:])) + lags.index(lag) + 1
         out.append(f"The slowest implied timescale still rises after the chosen lag ({frames(lag)}): from {here:.4g} "
