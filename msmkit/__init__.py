@@ -18,6 +18,7 @@ from .macro import (Macrostates, check_macrostate_gap, lumped_propagator, find_m
 from .model import MarkovModel, build_model
 from .modelfile import load_model, save_model
 from .reduce import TICA
+from .report import write_report
 from .spectral import eigen_decomposition, implied_timescales, equilibrium_distribution
 from .states import Microstates, nearest_center
 from .validate import (CKResult, CrossValidation, LagFlow, chapman_kolmogorov, cross_validate, lag_flow,
@@ -71,4 +72,5 @@ __all__ = sorted([
     "equilibrium",
     "suggest_lag",
     "suggest_n_macrostates",
+    "write_report",
 ])

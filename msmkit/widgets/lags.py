@@ -8,6 +8,7 @@ from .._checks import check_dt, check_int, check_unit
 from ..errors import InputError
 from ..lagscan import lag_scan
 from ..plots import plot_timescales
+from ..report import lag_cautions
 from . import _render
 from ._base import DESCRIPTION_WIDTH, Step, button, field, parse_int_list, set_value, widgets
 from ._render import frames
@@ -257,52 +258,6 @@ def _suggestion_html(scan) -> str:
         head = f"Suggested lag: {frames(scan.suggested_lag)} ({scan.suggested_lag * scan.dt:g} {scan.unit})."
         return _render.message_html([head, scan.reason], "info")
     return _render.message_html(["No lag is suggested.", scan.reason], "warning")
-
-
-#: a lag above this share of the longest run leaves too few lag steps per run
-LONG_LAG_SHARE = 0.1
-#: relative rise of the slowest timescale at longer lags that counts as "still rising"
-RISING = 0.05
-
-
-def lag_cautions(scan, lag) -> list[str]:
-    """Cautions about choosing ``lag`` (frames) from ``scan``: below the suggested lag, where the
-    slowest timescale is still rising; or so long that a run holds few steps of the model.
-
-    Parameters
-    ----------
-    scan : LagScan
-    lag : int
-        A scanned lag, in frames.
-
-    Returns
-    -------
-    list of str
-        Empty when there is nothing to say.
-    """
-    lag = int(lag)
-    lags = [int(x) for x in scan.lags]
-    out = []
-    s = scan.suggested_lag
-    slowest = scan.timescales[:, 0]
-    here = slowest[lags.index(lag)]
-    if s is not None and lag < s:
-        there = slowest[lags.index(int(s))]
-        out.append(f"The chosen lag ({frames(lag)}) is below the suggested lag ({frames(s)}): the slowest implied "
-                   f"timescale still rises from {here:.4g} to {there:.4g} {scan.unit} between them, so the model "
-                   f"at this lag is not yet Markovian and the slow timescales come out too short.")
-    elif s is None and lag < lags[-1] and np.nanmax(slowest[lags.index(lag) + 1:]) > (1 + RISING) * here:
-        top = int(np.nanargmax(slowest[lags.index(lag) + 1:])) + lags.index(lag) + 1
-        out.append(f"The slowest implied timescale still rises after the chosen lag ({frames(lag)}): from {here:.4g} "
-                   f"to {slowest[top]:.4g} {scan.unit} at {frames(lags[top])}, and no scanned lag levels it off. The "
-                   f"model at this lag is probably not Markovian yet; scan longer lags or make finer microstates.")
-    runs = scan.model(lag).metadata.get("frames_per_run") or []
-    if runs and lag > LONG_LAG_SHARE * max(runs):
-        longest = int(max(runs))
-        out.append(f"The chosen lag ({frames(lag)}) is {100 * lag / longest:.3g}% of the longest run ({frames(longest)}): "
-                   f"a run holds only {longest / lag:.3g} steps of the model, so transitions and slow "
-                   f"processes are poorly sampled at this lag; choose a shorter lag or simulate longer runs.")
-    return out
 
 
 def _diagnostics_html(model, k, cautions=()) -> str:
