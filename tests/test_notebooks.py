@@ -22,7 +22,8 @@ NOTEBOOKS = sorted((ROOT / "example_notebooks").glob("*.ipynb"))
 DRIVE_WORKBENCH = '''
 from msmkit.errors import InputError
 wb.states_panel.n_states.value = 10 ** 6
-wb.states_panel.cluster_button.click()
+wb.states_panel.cluster_button.click()  # buttons compute in a background thread
+assert wb.wait(120)
 assert "msmkit-error" in wb.states_panel.status.value and "n_states" in wb.states_panel.status.value
 try:
     wb.make_states(n_states=10 ** 6)
@@ -32,8 +33,10 @@ else:
     raise AssertionError("a bad n_states did not raise InputError from the method")
 wb.states_panel.n_states.value = 50
 wb.states_panel.cluster_button.click()
+assert wb.wait(120)
 assert wb.labels is not None, wb.states_panel.status.value
 wb.lag_panel.scan_button.click()
+assert wb.wait(300)
 assert wb.scan_result is not None, wb.lag_panel.status.value
 lags = [int(x) for x in wb.scan_result.lags]
 wb.lag_panel.slider.value = lags[-1]
@@ -42,6 +45,8 @@ wb.saver.button.click()
 import msmkit
 saved = msmkit.load_model(wb.saver.name.value)
 assert saved.lag == lags[-1], wb.saver.status.value
+wb.save_report("workbench_report.html")
+assert "Wrote the report" in wb.reporter.status.value, wb.reporter.status.value
 print("driven:", saved.lag, saved.n_states)
 '''
 
@@ -111,6 +116,7 @@ def test_notebook_runs_top_to_bottom(path, tmp_path):
     if path.name == "01_workbench.ipynb":
         assert any("application/vnd.jupyter.widget-view+json" in o.get("data", {}) for o in outs)
         assert (tmp_path / "workbench_model.npz").exists()
+        assert (tmp_path / "workbench_report.html").read_text(encoding="utf-8").count("data:image/png;base64,") >= 2
         assert any("driven:" in o.get("text", "") for o in outs)
     if path.name == "02_scripted_analysis.ipynb":
         import msmkit

@@ -772,3 +772,34 @@ def test_suggested_marker_is_drawn_above_the_chosen_lag_line(wb):
 def dataclasses_replace(obj, **kw):
     import dataclasses
     return dataclasses.replace(obj, **kw)
+
+
+# -- handing on: the report row -------------------------------------------------------------------
+def test_save_report_button_writes_the_analysis(trajs, tmp_path):
+    bench = Workbench(trajs, n_states=8, lags=[1, 2], n_samples=2, ck_samples=2, progress=False,
+                      file_name=str(tmp_path / "m.npz"))
+    assert bench.reporter.name.value == str(tmp_path / "m.html")
+    bench.reporter.button.click()
+    assert "no model to report" in status_text(bench.reporter.status)
+    assert not (tmp_path / "m.html").exists()
+    bench.make_states()
+    bench.scan()
+    assert "Ready to write a report" in status_text(bench.reporter.status)
+    bench.validate(n_sets=2, multiples=2)
+    bench.kinetics(n_sets=2)
+    bench.reporter.button.click()
+    text = (tmp_path / "m.html").read_text(encoding="utf-8")
+    assert "Wrote the report" in status_text(bench.reporter.status)
+    assert "Chapman-Kolmogorov test" in text and "<h2>Macrostates</h2>" in text
+    assert text.count("data:image/png;base64,") >= 3
+    assert "preparation: microstates.n_states" in text
+    bench.reporter.button.click()  # exists, overwrite off: kept
+    assert "exists" in status_text(bench.reporter.status)
+    bench.reporter.overwrite.value = True
+    tested = bench.model.lag
+    bench.select_lag(next(x for x in (1, 2) if x != tested))  # another model: the test is not for it
+    bench.reporter.button.click()
+    again = (tmp_path / "m.html").read_text(encoding="utf-8")
+    assert "<h2>Chapman-Kolmogorov test</h2>" not in again and "<h2>Lag scan</h2>" in again
+    bench.make_states(n_states=6)  # re-clustering: nothing to report any more
+    assert "A report needs a model" in status_text(bench.reporter.status)
