@@ -464,7 +464,7 @@ def plot_state_map(coords, centers, counts, *, names=("coordinate 1", "coordinat
         energy[hist == 0] = np.nan
         mesh = left.pcolormesh(xe, ye, energy.T, cmap=STATE_MAP_COLOURS, shading="flat", rasterized=True)
         fig.colorbar(mesh, ax=left, label="−ln(frame density) [kT]", shrink=0.9)
-        left.scatter(centers[:, 0], centers[:, 1], s=9, c="white", edgecolors=PALETTE[1], linewidths=0.7,
+        left.scatter(centers[:, 0], centers[:, 1], s=26, c="white", edgecolors=PALETTE[1], linewidths=1.1,
                      label="microstate centers", zorder=3)
         left.set_xlabel(names[0])
         left.set_ylabel(names[1] if len(names) > 1 else "")

@@ -23,6 +23,7 @@ from msmkit.plots import figure_png, plot_timescales  # noqa: E402
 from msmkit.reduce import TICA  # noqa: E402
 from msmkit.states import Microstates  # noqa: E402
 from msmkit.widgets import LagPanel, PopulationsPanel, StatesPanel, Workbench  # noqa: E402
+from msmkit.widgets import _render  # noqa: E402
 from msmkit.widgets.lags import TimescaleView  # noqa: E402
 
 LAGS = [1, 2, 5, 10]
@@ -158,8 +159,8 @@ def test_fast_marker_draws_what_the_full_figure_draws(wb):
     view = TimescaleView(scan, LAGS[0])
     assert view.fast
     quick = pixels(view.png(LAGS[2]))
-    full = pixels(figure_png(plot_timescales(scan, selected_lag=LAGS[2]), dpi=96))
-    other = pixels(figure_png(plot_timescales(scan, selected_lag=LAGS[-1]), dpi=96))
+    full = pixels(figure_png(plot_timescales(scan, selected_lag=LAGS[2]), dpi=_render.DPI))
+    other = pixels(figure_png(plot_timescales(scan, selected_lag=LAGS[-1]), dpi=_render.DPI))
     assert quick.shape == full.shape
     differ = np.mean(np.any(np.abs(quick - full) > 40, axis=-1))
     moved = np.mean(np.any(np.abs(other - full) > 40, axis=-1))

@@ -17,7 +17,7 @@ from . import _render
 
 widgets = require_optional("ipywidgets", "lab", "The msmkit workbench")
 
-__all__ = ["FileRow", "MacrostateCount", "SetPair", "Step", "action", "on_click", "parse_int_list", "report",
+__all__ = ["FileRow", "MacrostateCount", "SetPair", "Step", "action", "on_click", "parse_int_list", "report", "row",
            "widgets"]
 
 #: width of the descriptions in front of the input fields
@@ -31,6 +31,11 @@ def field(kind, value, description, tooltip="", width="350px", **kw):
     if tooltip:
         w.tooltip = tooltip
     return w
+
+
+def row(children):
+    """A row of widgets that wraps onto the next line in a narrow window instead of clipping."""
+    return widgets.HBox(children, layout=widgets.Layout(flex_flow="row wrap", align_items="flex-start"))
 
 
 def button(description, css_class, tooltip="", style="primary", icon=""):
@@ -363,7 +368,7 @@ class FileRow(widgets.VBox):
         self.status = widgets.HTML()
         self.status.add_class("msmkit-status")
         self.status.add_class(f"{css_class}-status")
-        super().__init__([widgets.HBox([self.name, self.overwrite, self.button]), self.status])
+        super().__init__([row([self.name, self.overwrite, self.button]), self.status])
 
 
 class MacrostateCount:

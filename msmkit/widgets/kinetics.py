@@ -10,7 +10,7 @@ import traitlets
 from .._checks import check_int
 from ..errors import InputError
 from . import _render
-from ._base import MacrostateCount, SetPair, Step, button, field, set_value, widgets
+from ._base import MacrostateCount, SetPair, Step, button, field, set_value, row, widgets
 from ._render import frames
 from .lags import SAMPLING_CAUTION
 
@@ -128,7 +128,7 @@ class KineticsPanel(Step):
             "Macrostates (PCCA+) group the microstates into long-lived sets. For every pair of them: the mean "
             "first-passage time and the rate from transition path theory; for one chosen pair: the reactive "
             "flux and the routes that carry it, microstate by microstate."))
-        settings = widgets.HBox([
+        settings = row([
             widgets.VBox([self.n_sets.field, widgets.HBox([self.compute_button, self.cancel_button, self.progress_bar])]),
             widgets.VBox([self.fraction, self.max_paths]),
         ])

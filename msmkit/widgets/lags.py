@@ -10,7 +10,7 @@ from ..lagscan import lag_scan
 from ..plots import plot_timescales
 from ..report import lag_cautions
 from . import _render
-from ._base import DESCRIPTION_WIDTH, Step, button, field, parse_int_list, set_value, widgets
+from ._base import DESCRIPTION_WIDTH, Step, button, field, parse_int_list, set_value, row, widgets
 from ._render import frames
 
 __all__ = ["LagPanel", "TimescaleView", "default_lags", "lag_cautions"]
@@ -124,7 +124,7 @@ class LagPanel(Step):
         self.scan_button = button("Scan lags", "msmkit-scan-button", "Estimate a model at every lag", icon="line-chart")
         self._on_click(self.scan_button, self.scan)
 
-        self.plot = widgets.Output(layout=widgets.Layout(min_height="60px", overflow="auto"))
+        self.plot = widgets.Output(layout=widgets.Layout(min_height="60px", width="100%", overflow="auto"))
         self.plot.add_class("msmkit-timescale-plot")
         self.plot.add_class("msmkit-plot")
         self.suggestion = widgets.HTML()
@@ -142,7 +142,7 @@ class LagPanel(Step):
             "Estimate a model at several lag times and watch the implied timescales: choose the "
             "smallest lag from which they stay constant. Timescales below the line t = τ are "
             "faster than the lag and cannot be resolved."))
-        settings = widgets.HBox([widgets.VBox([self.lags, self.n_processes]),
+        settings = row([widgets.VBox([self.lags, self.n_processes]),
                                  widgets.VBox([self.n_samples, self.seed])])
         self._plots = [self.plot]
         self.children = [intro, settings, widgets.HBox([self.scan_button, self.cancel_button, self.progress_bar]),

@@ -8,7 +8,7 @@ import traitlets
 from .._checks import check_int
 from ..errors import InputError
 from . import _render
-from ._base import FileRow, Step, field, on_click, widgets
+from ._base import FileRow, Step, field, on_click, row, widgets
 from ._render import frames
 
 __all__ = ["PopulationsPanel"]
@@ -79,7 +79,7 @@ class PopulationsPanel(Step):
             "Equilibrium populations of the states of the chosen model; free energies are −ln of "
             "the population relative to the most populated state (in kT, and in kJ/mol at the "
             "temperature given)."))
-        self.children = [intro, widgets.HBox([widgets.VBox([self.temperature, self.max_rows]),
+        self.children = [intro, row([widgets.VBox([self.temperature, self.max_rows]),
                                               widgets.VBox([self.sort_by, self.ascending])]),
                          self.status, self.table_html, self.csv]
         self.set_model(model)

@@ -11,7 +11,7 @@ from ..plots import plot_state_map
 from ..reduce import TICA
 from ..states import Microstates
 from . import _render
-from ._base import DESCRIPTION_WIDTH, Step, button, field, set_value, widgets
+from ._base import DESCRIPTION_WIDTH, Step, button, field, set_value, row, widgets
 
 __all__ = ["StatesPanel"]
 
@@ -100,7 +100,7 @@ class StatesPanel(Step):
         self._on_click(self.cluster_button, self.make_states)
         self.use_tica.observe(self._tica_switched, names="value")
         self._tica_switched()
-        self.map = widgets.Output(layout=widgets.Layout(min_height="60px", overflow="auto"))
+        self.map = widgets.Output(layout=widgets.Layout(min_height="60px", width="100%", overflow="auto"))
         self.map.add_class("msmkit-state-map")
         self.map.add_class("msmkit-plot")
 
@@ -108,7 +108,7 @@ class StatesPanel(Step):
             f"{len(self._runs)} runs, {sum(self.n_frames)} frames, {len(self.feature_names)} features. Choose "
             f"the features, reduce them to slow coordinates (optional), and cluster the frames into "
             f"microstates."))
-        settings = widgets.HBox([
+        settings = row([
             widgets.VBox([self.features, self.use_tica, self.tica_lag, self.tica_dim]),
             widgets.VBox([self.n_states, self.method, self.stride, self.seed,
                           widgets.HBox([self.cluster_button, self.cancel_button, self.progress_bar])]),

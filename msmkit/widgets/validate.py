@@ -8,7 +8,7 @@ from ..errors import InputError
 from ..plots import plot_chapman_kolmogorov, plot_lag_flow
 from ..validate import chapman_kolmogorov, lag_flow
 from . import _render
-from ._base import MacrostateCount, SetPair, Step, button, field, set_value, widgets
+from ._base import MacrostateCount, SetPair, Step, button, field, set_value, row, widgets
 from ._render import frames
 from .lags import SAMPLING_CAUTION
 
@@ -69,14 +69,14 @@ class ValidationPanel(Step):
 
         self.verdict = widgets.HTML()
         self.verdict.add_class("msmkit-ck-verdict")
-        self.ck_plot = widgets.Output(layout=widgets.Layout(min_height="40px", overflow="auto"))
+        self.ck_plot = widgets.Output(layout=widgets.Layout(min_height="40px", width="100%", overflow="auto"))
         self.ck_plot.add_class("msmkit-ck-plot")
         self.ck_plot.add_class("msmkit-plot")
         self.pair = SetPair("lag flow: set a", "set b", "msmkit-flow-pair", self._pair_changed,
                             "The two sets whose self-transition probabilities are followed")
         self.flow_summary = widgets.HTML()
         self.flow_summary.add_class("msmkit-flow-summary")
-        self.flow_plot = widgets.Output(layout=widgets.Layout(min_height="40px", overflow="auto"))
+        self.flow_plot = widgets.Output(layout=widgets.Layout(min_height="40px", width="100%", overflow="auto"))
         self.flow_plot.add_class("msmkit-lag-flow-plot")
         self.flow_plot.add_class("msmkit-plot")
 
@@ -85,7 +85,7 @@ class ValidationPanel(Step):
             "the transition matrix, T(τ)^k. The test groups the states into macrostates and compares, for every "
             "pair of them, the predicted probability to go from one to the other with the one estimated from the "
             "data at lag kτ. The lag flow below draws the same numbers for two sets as paths toward equilibrium."))
-        settings = widgets.HBox([
+        settings = row([
             widgets.VBox([self.n_sets.field, self.multiples]),
             widgets.VBox([self.n_samples, self.seed, widgets.HBox([self.run_button, self.cancel_button, self.progress_bar])]),
         ])

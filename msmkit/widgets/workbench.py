@@ -105,7 +105,7 @@ class Workbench(widgets.VBox):
         on_click(self.reporter.button, self.save_report)
         _render.show_message(self.reporter.status, "A report needs a model: choose a lag in step 2.")
         header = widgets.HTML(
-            f"<div style='font-size:120%; font-weight:600; margin:2px 0'>msmkit workbench</div>"
+            _render.PLOT_STYLE + f"<div style='font-size:120%; font-weight:600; margin:2px 0'>msmkit workbench</div>"
             f"<div style='color:#555'>{len(lengths)} runs, {sum(lengths)} frames, one frame = {self.dt:g} "
             f"{self.unit}. Work through the steps from left to right; every setting is also an "
             f"argument of a method (see help(Workbench)).</div>")
