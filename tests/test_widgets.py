@@ -804,3 +804,53 @@ def test_save_report_button_writes_the_analysis(trajs, tmp_path):
     assert "<h2>Chapman-Kolmogorov test</h2>" not in again and "<h2>Lag scan</h2>" in again
     bench.make_states(n_states=6)  # re-clustering: nothing to report any more
     assert "A report needs a model" in status_text(bench.reporter.status)
+
+
+# -- kinetics pictures ----------------------------------------------------------------------------
+def test_kinetics_step_draws_network_and_maps(trajs):
+    """The pictures show what the public objects hold: the lumped net current (TransitionPaths.lump),
+    the committor and the slowest right eigenvector of the model."""
+    from msmkit.plots import plot_macrostate_network
+
+    bench = Workbench(trajs, n_states=12, lags=[1, 2], n_samples=0, progress=False)
+    bench.make_states()
+    bench.scan()
+    panel = bench.kinetics_panel
+    panel.compute_button.click()
+    panel.wait(60)
+    result = panel.result
+    assert result is not None, status_text(panel.status)
+    assert panel.network_plot.outputs and panel.maps_plot.outputs
+    assert "Why the two route lists differ" in status_text(panel.routes_note)
+    lumped = result.flux.lump(result.macrostates.members)
+    # the net current drawn is antisymmetric-positive: F_ij > 0 implies F_ji == 0 (Noé et al. 2009)
+    F = np.asarray(lumped.net_current)
+    assert np.all((F > 0) <= (F.T == 0))
+    fig = plot_macrostate_network(lumped)
+    ax = fig.axes[0]
+    arrows = [p for p in ax.patches if type(p).__name__ == "FancyArrowPatch"]
+    total = float(lumped.throughput)
+    drawn = F[(F > 0) & (F >= 0.01 * total)]  # currents of at least 1 % of the total flux
+    assert len(arrows) == drawn.size > 0
+    shares = sorted(t.get_text() for t in ax.texts if t.get_text().endswith("%"))
+    assert shares == sorted(f"{100 * f / total:.0f}%" for f in drawn)
+    # a new model clears the pictures (no stale figures of another model)
+    bench.select_lag(next(x for x in (1, 2) if x != bench.model.lag))
+    assert not panel.network_plot.outputs and not panel.maps_plot.outputs
+
+
+def test_kinetics_maps_colour_the_public_numbers(trajs):
+    from msmkit.plots import plot_kinetics_maps
+
+    coords = list(TICA(10, dim=2).fit(trajs).transform(trajs))
+    micro = Microstates(12, seed=0).fit(coords)
+    model = mk.build_model(micro.labels_, lag=2)
+    macro = model.find_macrostates(2)
+    flux = model.transition_paths(macro.members[0], macro.members[1])
+    fig = plot_kinetics_maps(micro.centers_[model.states], model, macro, flux, pair=(0, 1))
+    left, middle, right = fig.axes[:3]
+    np.testing.assert_allclose(middle.collections[0].get_array(), flux.reach_target)
+    np.testing.assert_allclose(right.collections[0].get_array(), model.modes(2)[:, 1])
+    np.testing.assert_allclose(left.collections[0].get_offsets(), micro.centers_[model.states][:, :2])
+    with pytest.raises(InputError, match="kept states"):
+        plot_kinetics_maps(micro.centers_[:3], model, macro, flux)

@@ -125,6 +125,10 @@ class Workbench(widgets.VBox):
             panel.set_model(self.model)
 
     def _labels_changed(self, change):
+        micro, tica = self.states_panel.microstates, self.states_panel.tica
+        if micro is not None:
+            names = (tica.get_feature_names_out() if tica is not None else self.states_panel.settings["features"])
+            self.kinetics_panel.set_centers(micro.centers_, names)
         for _, panel in self.steps:
             if hasattr(panel, "set_labels"):
                 panel.set_labels(change["new"])
