@@ -512,9 +512,9 @@ def plot_kinetics_maps(centers, model, macrostates, paths, *, names=("coordinate
     """The kinetics on the state map: macrostates, the committor, and a slow eigenvector.
 
     Each microstate center of the model's kept states is a dot in the first two coordinates,
-    its area proportional to the stationary population. Left: coloured by macrostate
+    the dot area proportional to the stationary population. Left: coloured by macrostate
     (largest membership), numbered at their population-weighted mean. Middle: coloured by the
-    forward committor of ``paths`` (probability to reach the target before the source).
+    committor toward the target of ``paths`` (probability to reach the target before the source).
     Right: coloured by right eigenvector ``mode`` (1 = slowest process): states of opposite
     sign exchange population in that process.
 
@@ -585,13 +585,13 @@ def plot_macrostate_network(paths, *, positions=None, labels=None, min_share: fl
     Parameters
     ----------
     paths : TransitionPaths
-        A flux lumped onto macrostates (:meth:`TransitionPaths.lump`): its states are the
+        A flux lumped onto macrostates (:meth:`TransitionPaths.lump`), whose states are the
         macrostates 0..m-1.
     positions : ndarray (m, 2), optional
-        Where to draw each macrostate (e.g. its population-weighted center on the state
+        Where to draw each macrostate (e.g. the population-weighted center on the state
         map); default: evenly on a circle.
     labels : list of str, optional
-        Text under each disc (default: its stationary population).
+        Text under each disc (default: the stationary population).
     min_share : float, default 0.01
         Currents below this share of the total flux are not drawn.
     width, height : float
@@ -602,7 +602,7 @@ def plot_macrostate_network(paths, *, positions=None, labels=None, min_share: fl
     matplotlib.figure.Figure
         Disc area is proportional to the stationary population, disc colour is the committor
         (0 at the source, 1 at the target), arrow width is proportional to the net current
-        and the number on it is its share of the total reactive flux.
+        and the number on it is the share of the total reactive flux it carries.
     """
     from matplotlib import colormaps
     from matplotlib.patches import FancyArrowPatch

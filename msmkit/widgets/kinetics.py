@@ -26,7 +26,7 @@ METASTABILITY_CAUTION = ("First-passage times and rates between macrostates mean
 SHOWN_STATES = 12
 
 #: why the routes through microstates and those between macrostates can disagree
-ROUTES_NOTE = ("Why the two route lists differ: a pathway through microstates carries the flux of its weakest jump, "
+ROUTES_NOTE = ("Why the two route lists differ: a pathway through microstates carries the flux of the weakest jump on it, "
                "and the flux between two macrostates is spread over many parallel microstate jumps, so each "
                "microstate pathway carries little while the lumped route that collects them all carries much. "
                "Lumping also cancels currents running back and forth inside and between macrostates. Read the "
