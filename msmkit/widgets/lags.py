@@ -120,6 +120,7 @@ class LagPanel(Step):
                                  "How many of the slowest processes to follow")
         self.n_samples = field(widgets.IntText, int(n_samples), "bootstrap samples",
                                "Resampled data sets for the uncertainty bands (0: no bands)")
+        self.n_samples.add_class("msmkit-lag-samples")
         self.seed = field(widgets.IntText, int(seed), "seed", "Seed of the resampling")
         self.scan_button = button("Scan lags", "msmkit-scan-button", "Estimate a model at every lag", icon="line-chart")
         self._on_click(self.scan_button, self.scan)
