@@ -161,3 +161,45 @@ def test_a_used_notebook_runs_as_its_clean_copy(tmp_path):
     plain = clean_copy(outside, outside.parent)
     assert [c.source for c in plain.cells] == code_cells(json.dumps(used))
     assert all(c.outputs == [] for c in plain.cells)
+
+
+def test_kernel_interrupt_cancels_a_scan_started_by_a_button():
+    """Kernel -> Interrupt in a real ipykernel (jupyter_client's interrupt_kernel, what JupyterLab
+    sends) cancels the scan a button started in the background; the kernel stays usable."""
+    pytest.importorskip("nbclient")
+    import os
+    import time
+
+    from jupyter_client.manager import start_new_kernel
+
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in (str(ROOT), os.environ.get("PYTHONPATH", "")) if p))
+    km, kc = start_new_kernel(kernel_name="python3", env=env)
+
+    def run(code):
+        msg = kc.execute(code)
+        out = []
+        while True:
+            m = kc.get_iopub_msg(timeout=120)
+            if m["parent_header"].get("msg_id") != msg:
+                continue
+            if m["msg_type"] == "stream":
+                out.append(m["content"]["text"])
+            elif m["msg_type"] == "error":
+                raise AssertionError("\n".join(m["content"]["traceback"]))
+            elif m["msg_type"] == "status" and m["content"]["execution_state"] == "idle":
+                return "".join(out)
+
+    try:
+        run("import numpy as np\n"
+            "from msmkit.widgets import LagPanel\n"
+            "rng = np.random.default_rng(0)\n"
+            "p = LagPanel([rng.integers(0, 5, 3000) for _ in range(6)], lags=[1, 2, 3, 4, 5], n_samples=20000)\n"
+            "p.scan_button.click()\n"
+            "assert p.running")
+        time.sleep(1.0)
+        km.interrupt_kernel()
+        out = run("print(p.wait(120), p.scan_result is None, 'cancelled' in p.status.value)")
+        assert out.split() == ["True", "True", "True"], out
+    finally:
+        kc.stop_channels()
+        km.shutdown_kernel(now=True)
