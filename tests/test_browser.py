@@ -3,7 +3,7 @@
 Opens example_notebooks/01_workbench.ipynb, runs it, clusters, scans, moves the lag slider with
 the keyboard, checks that the plot and the table changed, saves, runs the Chapman-Kolmogorov test
 (a verdict in words must appear), cancels a long scan, writes the HTML report and opens it in
-Chromium (its figures must load), re-clusters and checks that Save no longer claims a model, and
+Chromium (the figures in it must load), re-clusters and checks that Save no longer claims a model, and
 loads the saved file. The inputs must fit the workbench at 1024 px.
 
 With CI=true this test must run: a missing Chromium or Playwright is a failure, not a skip.
