@@ -19,6 +19,7 @@ from .model import MarkovModel, build_model, load_model
 from .modelfile import save_model
 from .posterior import iter_reversible_posterior, sample_reversible_posterior
 from .reduce import TICA
+from .report import write_report
 from .spectral import eigen_decomposition, implied_timescales, equilibrium_distribution
 from .states import Microstates, nearest_center
 from .validate import (CKResult, CrossValidation, LagFlow, chapman_kolmogorov, cross_validate, lag_flow,
@@ -74,4 +75,5 @@ __all__ = sorted([
     "iter_reversible_posterior",
     "suggest_lag",
     "suggest_n_macrostates",
+    "write_report",
 ])

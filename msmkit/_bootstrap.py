@@ -19,6 +19,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .counts import kept_states
+from .errors import Cancelled, InputError
 from .estimate import estimate_transition_matrix
 
 #: with fewer runs than this, the bootstrap resamples contiguous blocks instead of whole runs
@@ -100,7 +101,31 @@ def percentile_interval(samples: np.ndarray, confidence: float, axis: int = 0):
         return np.nanpercentile(samples, lo, axis=axis), np.nanpercentile(samples, hi, axis=axis)
 
 
-def progress_bar(total: int, enabled: bool, desc: str):
-    """A tqdm.auto bar, disabled unless ``enabled``."""
+def progress_bar(total: int, enabled: bool, desc: str, cancel=None):
+    """A tqdm.auto bar, disabled unless ``enabled``.
+
+    ``cancel``: None, or an object with ``is_set()`` (e.g. ``threading.Event``), asked before
+    every update, i.e. between two units of work; once it is set, the update raises
+    :class:`~msmkit.errors.Cancelled`.
+    """
     from tqdm.auto import tqdm
-    return tqdm(total=total, disable=not enabled, desc=desc, leave=False)
+    bar = tqdm(total=total, disable=not enabled, desc=desc, leave=False)
+    return bar if cancel is None else _CancellableBar(bar, cancel, desc)
+
+
+class _CancellableBar:
+    """A progress bar whose updates are the points where a computation may be cancelled."""
+
+    def __init__(self, bar, cancel, desc):
+        if not callable(getattr(cancel, "is_set", None)):
+            raise InputError(f"cancel must be None or an object with an is_set() method, such as "
+                             f"threading.Event(), but got {type(cancel).__name__}")
+        self._bar, self._cancel, self._desc = bar, cancel, desc
+
+    def update(self, n=1):
+        if self._cancel.is_set():
+            raise Cancelled(f"{self._desc}: cancelled on request")
+        return self._bar.update(n)
+
+    def __getattr__(self, name):
+        return getattr(self._bar, name)

@@ -6,6 +6,7 @@ Sub-commands::
     msmkit build FILES... --lag N --states K -o model.npz
     msmkit scan  FILES... --lags 1,2,5,10 --states K -o DIR
     msmkit info  model.npz
+    msmkit report model.npz -o report.html      a self-contained HTML report of a saved model
 
 Exit codes: 0 success, 1 bad input or a failed computation (one line on stderr, no traceback,
 no output file written), 2 a malformed command line.
@@ -314,6 +315,23 @@ def cmd_info(args) -> int:
     return EXIT_OK
 
 
+def cmd_report(args) -> int:
+    from .model import load_model
+    from .report import write_report
+    target = Path(args.output)
+    target = target if target.suffix else target.with_suffix(".html")
+    if target.exists() and not args.force:
+        raise InputError(f"-o: {target} exists; choose another name or pass --force")
+    model = load_model(args.model)
+    macro = None
+    if "affinity" in model.extras and model.n_states > 2:
+        macro = model.find_macrostates(int(model.extras["affinity"].shape[1]))
+    written = write_report(args.output, model, macrostates=macro, title=f"Markov model {Path(args.model).name}",
+                           overwrite=args.force)
+    _say(args, f"wrote {written}")
+    return EXIT_OK
+
+
 # ----------------------------------------------------------------------------- parser
 def _positive(kind, word):
     """An argparse type: ``kind(text)`` that must be finite and > 0 (>= 1 for whole numbers)."""
@@ -408,6 +426,15 @@ def build_parser() -> argparse.ArgumentParser:
     i = sub.add_parser("info", help="describe a saved model file", description="Check and describe a model file.")
     i.add_argument("model", help="model file (.npz)")
     i.set_defaults(func=cmd_info)
+
+    r = sub.add_parser("report", help="write a self-contained HTML report of a saved model",
+                       description="Model file -> one HTML file with settings, figures, tables, diagnostics "
+                                   "and provenance (figures embedded; opens offline).")
+    r.add_argument("model", help="model file (.npz)")
+    r.add_argument("-o", "--output", required=True, help="HTML file to write")
+    r.add_argument("--force", action="store_true", help="overwrite an existing report")
+    r.add_argument("-q", "--quiet", action="store_true", help="no messages")
+    r.set_defaults(func=cmd_report)
     return p
 
 

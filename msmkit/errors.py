@@ -12,3 +12,8 @@ class ModelFileError(ValueError):
 class DiagnosticWarning(UserWarning):
     """A finding about the data or the model that is not an error but may mislead
     (a periodic chain, discarded counts, a timescale shorter than the lag, ...)."""
+
+
+class Cancelled(Exception):
+    """A computation stopped on request: the ``cancel`` flag given to it was set between two units of work.
+    Nothing it would have returned or changed exists."""

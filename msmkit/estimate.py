@@ -45,7 +45,7 @@ class EstimationInfo:
     equilibrium: np.ndarray
 
 
-def _as_counts(counts) -> sp.csr_matrix:
+def as_count_matrix(counts) -> sp.csr_matrix:
     if sp.issparse(counts):
         C = sp.csr_matrix(counts, dtype=np.float64)
     else:
@@ -80,7 +80,7 @@ def log_likelihood(counts, propagator) -> float:
         return float(np.sum(C.data * np.log(vals)))
 
 
-def _check_connected(C: sp.csr_matrix) -> None:
+def check_connected(C: sp.csr_matrix) -> None:
     n_comp, comp = csgraph.connected_components(C, directed=True, connection="strong")
     if n_comp > 1:
         sizes = np.bincount(comp)
@@ -137,10 +137,10 @@ def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1
     the symmetric flow matrix and T_ij = x_ij / sum_k x_ik. Built this way T satisfies detailed
     balance to rounding error at every iterate, converged or not.
     """
-    C = _as_counts(counts)
+    C = as_count_matrix(counts)
     if C.nnz == 0:
         raise InputError("counts hold no transitions")
-    _check_connected(C)
+    check_connected(C)
     row = np.asarray(C.sum(axis=1)).ravel()
     if not reversible:
         T = np.asarray(sp.diags(1.0 / row) @ C.toarray())

@@ -107,7 +107,7 @@ class LagScan:
 def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: int = PROCESSES,
              reversible: bool = True, n_samples: int = 0, seed=None, confidence: float = 0.95,
              every_frame: bool = True, n_states: int | None = None, n_slow: int = 2, rtol: float = 0.05,
-             progress: bool = False, client=None) -> LagScan:
+             progress: bool = False, client=None, cancel=None) -> LagScan:
     """Estimate models at several lags and report their implied timescales with uncertainty.
 
     Parameters
@@ -144,6 +144,9 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
         Count the runs on the cluster's workers and fit the bootstrap samples there, in batches
         of samples as tasks (needs the extra ``dask``). The same seed gives the same samples
         and the same timescales as in memory.
+    cancel : object with ``is_set()``, optional
+        E.g. a ``threading.Event`` set from another thread: asked between units of work (a lag,
+        a bootstrap sample); once set, :class:`~msmkit.errors.Cancelled` is raised.
 
     Returns
     -------
@@ -176,7 +179,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     if client is not None:
         n_states = prepare_counting(runs, lags[0], n_states)[2]
     placed = place(runs, client)  # label arrays sent to the workers once, for every lag
-    bar = _progress(L * (1 + n_samples), progress, "lag scan")
+    bar = _progress(L * (1 + n_samples), progress, "lag scan", cancel)
     pool = ThreadPoolExecutor(min(2, os.cpu_count() or 1))
     try:
         for a, lag in enumerate(lags):
@@ -209,7 +212,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
                     samples[a, b, :got.size] = got
                     bar.update(1)
     finally:
-        pool.shutdown()
+        pool.shutdown(cancel_futures=True)  # a cancelled scan does not wait for queued samples
         bar.close()
 
     if n_samples:

@@ -11,8 +11,8 @@ import io
 import numpy as np
 
 __all__ = ["ck_deviations", "figure_png", "plot_chapman_kolmogorov", "plot_chapman_kolmogorov_pair",
-           "plot_cross_validation", "plot_lag_flow", "plot_populations", "plot_state_map", "plot_timescales",
-           "PALETTE"]
+           "plot_cross_validation", "plot_kinetics_maps", "plot_lag_flow", "plot_macrostate_network",
+           "plot_populations", "plot_state_map", "plot_timescales", "PALETTE"]
 
 #: the project's colours for successive processes / series
 PALETTE = ("#0f5c8c", "#c44536", "#4d8b31", "#b5851b", "#6b4c9a", "#2f8f8f", "#8c5a3c", "#5a5a5a")
@@ -725,7 +725,7 @@ def plot_state_map(coords, centers, counts, *, names=("coordinate 1", "coordinat
         energy[hist == 0] = np.nan
         mesh = left.pcolormesh(xe, ye, energy.T, cmap=STATE_MAP_COLOURS, shading="flat", rasterized=True)
         fig.colorbar(mesh, ax=left, label="−ln(frame density) [kT]", shrink=0.9)
-        left.scatter(centers[:, 0], centers[:, 1], s=9, c="white", edgecolors=PALETTE[1], linewidths=0.7,
+        left.scatter(centers[:, 0], centers[:, 1], s=26, c="white", edgecolors=PALETTE[1], linewidths=1.1,
                      label="microstate centers", zorder=3)
         left.set_xlabel(names[0])
         left.set_ylabel(names[1] if len(names) > 1 else "")
@@ -755,4 +755,164 @@ def plot_state_map(coords, centers, counts, *, names=("coordinate 1", "coordinat
     right.legend(fontsize=7.5, loc="upper right", framealpha=0.8)
     right.set_axisbelow(True)
     right.grid(True, axis="y", color="#dddddd", lw=0.6)
+    return fig
+
+
+# -- kinetics pictures -------------------------------------------------------------------------
+def _centers_2d(centers):
+    c = np.asarray(centers, dtype=float)
+    if c.ndim != 2 or c.shape[1] < 1:
+        from .errors import InputError
+        raise InputError(f"centers must be an (n_states, d) array, but has shape {c.shape}")
+    return c[:, :2] if c.shape[1] >= 2 else np.column_stack([c[:, 0], np.zeros(len(c))])
+
+
+def plot_kinetics_maps(centers, model, macrostates, paths, *, names=("coordinate 1", "coordinate 2"),
+                       mode: int = 1, pair=None, width: float = 12.0, height: float = 3.9):
+    """The kinetics on the state map: macrostates, the committor, and a slow eigenvector.
+
+    Each microstate center of the model's kept states is a dot in the first two coordinates,
+    the dot area proportional to the stationary population. Left: coloured by macrostate
+    (largest membership), numbered at their population-weighted mean. Middle: coloured by the
+    committor toward the target of ``paths`` (probability to reach the target before the source).
+    Right: coloured by right eigenvector ``mode`` (1 = slowest process): states of opposite
+    sign exchange population in that process.
+
+    Parameters
+    ----------
+    centers : ndarray (n_states, d)
+        Centers of the model's kept states, in the order of ``model.states``.
+    model : MarkovModel
+    macrostates : Macrostates
+    paths : TransitionPaths
+        Flux between two sets of the model's states.
+    names : tuple of str
+    mode : int, default 1
+    pair : (int, int), optional
+        The source and target macrostates of ``paths``, for the title.
+    width, height : float
+        Inches.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    xy = _centers_2d(centers)
+    if len(xy) != model.n_states:
+        from .errors import InputError
+        raise InputError(f"centers holds {len(xy)} rows but the model has {model.n_states} kept states; pass "
+                         f"the centers of model.states")
+    pi = np.asarray(model.equilibrium)
+    size = 12 + 260 * pi / pi.max()
+    fig = _figure_class()(figsize=(width, height), layout="constrained")
+    axes = fig.subplots(1, 3, sharex=True, sharey=True)
+    owner = np.asarray(macrostates.macro_index)
+    colours = np.array([PALETTE[j % len(PALETTE)] for j in owner])
+    axes[0].scatter(xy[:, 0], xy[:, 1], s=size, c=colours, edgecolors="white", linewidths=0.6, zorder=2)
+    for j in range(macrostates.n_sets):
+        inside = owner == j
+        if inside.any():
+            w = pi[inside] / pi[inside].sum()
+            cx, cy = w @ xy[inside]
+            axes[0].annotate(str(j), (cx, cy), ha="center", va="center", fontsize=11, fontweight="bold",
+                             color="white", zorder=4,
+                             bbox=dict(boxstyle="circle,pad=0.25", fc=PALETTE[j % len(PALETTE)], ec=_INK, lw=0.8))
+    axes[0].set_title("Macrostates (largest membership)", fontsize=9.5)
+    q = np.asarray(paths.reach_target)
+    dots = axes[1].scatter(xy[:, 0], xy[:, 1], s=size, c=q, cmap="viridis", vmin=0, vmax=1,
+                           edgecolors=_INK, linewidths=0.3, zorder=2)
+    fig.colorbar(dots, ax=axes[1], label="committor q⁺ (reach target first)", shrink=0.9)
+    axes[1].set_title("Committor" + (f": macrostate {pair[0]} → {pair[1]}" if pair is not None else ""),
+                      fontsize=9.5)
+    r = np.asarray(model.modes(mode + 1))[:, mode]
+    top = float(np.max(np.abs(r))) or 1.0
+    dots = axes[2].scatter(xy[:, 0], xy[:, 1], s=size, c=r, cmap="PuOr", vmin=-top, vmax=top,
+                           edgecolors=_INK, linewidths=0.3, zorder=2)
+    fig.colorbar(dots, ax=axes[2], label=f"right eigenvector {mode}", shrink=0.9)
+    t = model.relaxation_times(mode)
+    axes[2].set_title(f"Process {mode} (timescale {t[mode - 1]:.3g} {model.unit})" if t.size >= mode
+                      else f"Process {mode}", fontsize=9.5)
+    for ax in axes:
+        ax.set_xlabel(names[0])
+    axes[0].set_ylabel(names[1] if len(names) > 1 and np.asarray(centers).shape[1] > 1 else "")
+    return fig
+
+
+def plot_macrostate_network(paths, *, positions=None, labels=None, min_share: float = 0.01,
+                            width: float = 6.4, height: float = 4.8):
+    """Macrostates as discs and the net reactive current between them as arrows.
+
+    Parameters
+    ----------
+    paths : TransitionPaths
+        A flux lumped onto macrostates (:meth:`TransitionPaths.lump`), whose states are the
+        macrostates 0..m-1.
+    positions : ndarray (m, 2), optional
+        Where to draw each macrostate (e.g. the population-weighted center on the state
+        map); default: evenly on a circle.
+    labels : list of str, optional
+        Text under each disc (default: the stationary population).
+    min_share : float, default 0.01
+        Currents below this share of the total flux are not drawn.
+    width, height : float
+        Inches.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Disc area is proportional to the stationary population, disc colour is the committor
+        (0 at the source, 1 at the target), arrow width is proportional to the net current
+        and the number on it is the share of the total reactive flux it carries.
+    """
+    from matplotlib import colormaps
+    from matplotlib.patches import FancyArrowPatch
+
+    F = np.asarray(paths.net_current, dtype=float)
+    m = F.shape[0]
+    pi = np.asarray(paths.equilibrium, dtype=float)
+    q = np.asarray(paths.reach_target, dtype=float)
+    if positions is None:
+        angle = np.pi / 2 + 2 * np.pi * np.arange(m) / m
+        xy = np.column_stack([np.cos(angle), np.sin(angle)])
+    else:
+        xy = np.asarray(positions, dtype=float)[:, :2]
+    fig, ax = _new_figure(width, height)
+    span = float(np.ptp(xy, axis=0).max()) or 1.0
+    radius = span * (0.05 + 0.10 * np.sqrt(pi / pi.max()))
+    total = float(paths.throughput) or float(F.sum()) or 1.0
+    fmax = float(F.max()) or 1.0
+    cmap = colormaps["viridis"]
+    for i in range(m):
+        for j in range(m):
+            if F[i, j] <= 0 or F[i, j] < min_share * total:
+                continue
+            arrow = FancyArrowPatch(xy[i], xy[j], arrowstyle="-|>", mutation_scale=14 + 10 * F[i, j] / fmax,
+                                    lw=0.8 + 7 * F[i, j] / fmax, color="#58636e", alpha=0.85, zorder=1,
+                                    shrinkA=0, shrinkB=0, connectionstyle="arc3,rad=0.12")
+            # start and end at the rims of the discs
+            d = xy[j] - xy[i]
+            length = float(np.hypot(*d)) or 1.0
+            arrow.set_positions(xy[i] + d / length * radius[i], xy[j] - d / length * radius[j])
+            ax.add_patch(arrow)
+            mid = xy[i] + 0.5 * d
+            ax.annotate(f"{100 * F[i, j] / total:.0f}%", mid, ha="center", va="center", fontsize=8.5, zorder=5,
+                        bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.85))
+    from matplotlib.patches import Circle
+    for i in range(m):
+        ax.add_patch(Circle(xy[i], radius[i], fc=cmap(q[i]), ec=_INK, lw=1.0, zorder=3))
+        ax.annotate(str(i), xy[i], ha="center", va="center", fontsize=11, fontweight="bold", zorder=4,
+                    color="white" if q[i] < 0.6 else _INK)
+        text = labels[i] if labels is not None else f"population {pi[i]:.3g}"
+        ax.annotate(text, (xy[i][0], xy[i][1] - radius[i]), xytext=(0, -4), textcoords="offset points",
+                    ha="center", va="top", fontsize=8.5, color="#333333", zorder=4)
+    pad = radius.max() * 1.6
+    ax.set_xlim(xy[:, 0].min() - pad, xy[:, 0].max() + pad)
+    ax.set_ylim(xy[:, 1].min() - pad * 1.3, xy[:, 1].max() + pad)
+    ax.set_aspect("equal", adjustable="box")
+    ax.set_xticks([])
+    ax.set_yticks([])
+    for side in ax.spines.values():
+        side.set_visible(False)
+    ax.set_title("Net reactive current between macrostates (share of the total flux); colour: committor",
+                 fontsize=9.5)
     return fig

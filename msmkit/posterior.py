@@ -58,7 +58,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .errors import InputError
-from .estimate import _as_counts, _check_connected, estimate_transition_matrix
+from .estimate import as_count_matrix, check_connected, estimate_transition_matrix
 from .spectral import eigen_decomposition, equilibrium_distribution, obeys_detailed_balance
 
 __all__ = ["iter_reversible_posterior", "sample_reversible_posterior"]
@@ -234,10 +234,10 @@ def _initial_matrix(C: sp.csr_matrix, initial) -> np.ndarray:
 
 
 def _prepare(counts, burn_in, thin, prior_count, initial, seed):
-    C = _as_counts(counts)
+    C = as_count_matrix(counts)
     if C.nnz == 0:
         raise InputError("counts hold no transitions")
-    _check_connected(C)
+    check_connected(C)
     burn_in = _check_int("burn_in", burn_in, 0)
     thin = _check_int("thin", thin, 1)
     if not isinstance(prior_count, numbers.Real) or isinstance(prior_count, bool) \
@@ -327,7 +327,7 @@ def sample_reversible_posterior(counts, n_samples, *, seed=None, burn_in=100, th
     iter_reversible_posterior : the same samples one at a time, without storing them all.
     """
     from ._bootstrap import progress_bar
-    n = _as_counts(counts).shape[0]
+    n = as_count_matrix(counts).shape[0]
     n_samples = _check_int("n_samples", n_samples, 1)
     if n_samples * n * (n + 1) * 8 > MAX_ARRAY_BYTES:
         raise InputError(f"n_samples={n_samples} matrices of {n} states need "

@@ -204,7 +204,7 @@ class CKResult:
 
 
 def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MULTIPLES, n_samples=20, seed=None,
-                       confidence=0.95, tolerance=0.05, progress=False, client=None) -> CKResult:
+                       confidence=0.95, tolerance=0.05, progress=False, client=None, cancel=None) -> CKResult:
     """Chapman-Kolmogorov test: does T(tau)^k predict the data at lag k tau?
 
     For each pair of sets (a, b) and k = 1..``multiples``, compares
@@ -248,6 +248,9 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
         Count the runs and fit the bootstrap samples on the cluster's workers, batches of
         samples as tasks (needs the extra ``dask``); the same seed gives the same samples and
         the same result as in memory.
+    cancel : object with ``is_set()``, optional
+        E.g. a ``threading.Event`` set from another thread: asked between units of work (a lag
+        multiple, a bootstrap sample); once set, :class:`~msmkit.errors.Cancelled` is raised.
 
     Returns
     -------
@@ -332,7 +335,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
     lost = []
     support_counts = None
     placed = place(runs, client)  # label arrays sent to the workers once, for every multiple of the lag
-    bar = progress_bar(K * (1 + n_samples), progress, "Chapman-Kolmogorov test")
+    bar = progress_bar(K * (1 + n_samples), progress, "Chapman-Kolmogorov test", cancel)
     try:
         for k in range(1, K + 1):
             rows, _ = run_count_rows(placed, k * model.lag, n_states=n_lab, every_frame=every_frame,

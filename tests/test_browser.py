@@ -2,7 +2,9 @@
 
 Opens example_notebooks/01_workbench.ipynb, runs it, clusters, scans, moves the lag slider with
 the keyboard, checks that the plot and the table changed, saves, runs the Chapman-Kolmogorov test
-(a verdict in words must appear), and loads the saved file.
+(a verdict in words must appear), cancels a long scan, writes the HTML report and opens it in
+Chromium (the figures in it must load), re-clusters and checks that Save no longer claims a model, and
+loads the saved file. The inputs must fit the workbench at 1024 px.
 
 With CI=true this test must run: a missing Chromium or Playwright is a failure, not a skip.
 """
@@ -212,6 +214,63 @@ def test_workbench_in_jupyterlab(lab):
             page.locator(".msmkit-ck-plot .jp-RenderedImage img").wait_for(state="visible")
             assert "msmkit-error" not in page.locator(".msmkit-validate-status").inner_html()
             _shot(page, "4-validate")
+
+            # A long scan is cancelled: the chosen model stays.
+            page.locator(".msmkit-steps .lm-TabBar-tab", has_text="Lag time").click()
+            samples = page.locator(".msmkit-lag-samples input")
+            samples.fill("100000")
+            samples.press("Tab")
+            page.locator(".msmkit-scan-button").click()
+            cancel = page.locator(".msmkit-lags .msmkit-cancel-button")
+            page.wait_for_function("() => { const b = document.querySelector('.msmkit-lags .msmkit-cancel-button');"
+                                   " return b && !b.disabled && getComputedStyle(b).visibility === 'visible'; }")
+            cancel.click()
+            page.wait_for_function("() => document.querySelector('.msmkit-lags-status').innerText"
+                                   ".includes('cancelled')", timeout=60_000)
+            assert "previous successful run" in page.locator(".msmkit-lags-status").inner_text()
+            assert int(page.locator(".msmkit-lag-slider .widget-readout").inner_text().split()[0]) == chosen_lag
+            _shot(page, "5-cancelled")
+
+            # The report: written from the workbench, opened in Chromium with its figures.
+            report_name = page.locator(".msmkit-report-name input")
+            report_name.fill("browser_report.html")
+            report_name.press("Tab")
+            page.locator(".msmkit-report-button").click()
+            page.wait_for_function("() => document.querySelector('.msmkit-report-status').innerText"
+                                   ".includes('Wrote the report')")
+            report_page = browser.new_page(viewport={"width": 1400, "height": 1000})
+            report_page.goto((lab.root / "browser_report.html").as_uri())
+            report_page.wait_for_load_state("load")
+            sizes = report_page.evaluate("() => Array.from(document.images).map(i => i.complete ? i.naturalWidth : 0)")
+            assert len(sizes) >= 3 and min(sizes) > 300, sizes
+            assert report_page.locator("h2", has_text="Chapman-Kolmogorov test").count() == 1
+            if SHOTS:
+                report_page.screenshot(path=str(Path(SHOTS) / "6-report.png"), full_page=False)
+            report_page.close()
+
+            # At 1024 px nothing is clipped: every input ends inside the workbench.
+            page.set_viewport_size({"width": 1024, "height": 900})
+            page.locator(".msmkit-steps .lm-TabBar-tab", has_text="Microstates").click()
+            page.wait_for_timeout(300)
+            clipped = page.evaluate("""() => {
+              const box = document.querySelector('.msmkit-workbench').getBoundingClientRect();
+              return Array.from(document.querySelectorAll('.msmkit-workbench input, .msmkit-workbench button'))
+                .filter(e => e.offsetParent !== null)
+                .filter(e => e.getBoundingClientRect().right > box.right + 1).length; }""")
+            assert clipped == 0
+            _shot(page, "7-states-1024")
+
+            # Re-clustering: the save row no longer offers a model, and Save says so.
+            page.locator(".msmkit-cluster-button").click()
+            page.wait_for_function("() => document.querySelector('.msmkit-save-status').innerText"
+                                   ".includes('Nothing to save yet')")
+            page.wait_for_function("() => document.querySelector('.msmkit-states-status').innerText"
+                                   ".includes('microstates from')")
+            page.locator(".msmkit-save-button").click()
+            page.wait_for_function("() => document.querySelector('.msmkit-save-status').innerText"
+                                   ".includes('no model to save')")
+            _shot(page, "8-reclustered-1024")
+            page.set_viewport_size({"width": 1400, "height": 1000})
         finally:
             browser.close()
             for session in _api(lab.base, lab.token, "/api/sessions") or []:

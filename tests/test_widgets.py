@@ -23,6 +23,7 @@ from msmkit.plots import figure_png, plot_timescales  # noqa: E402
 from msmkit.reduce import TICA  # noqa: E402
 from msmkit.states import Microstates  # noqa: E402
 from msmkit.widgets import LagPanel, PopulationsPanel, StatesPanel, Workbench  # noqa: E402
+from msmkit.widgets import _render  # noqa: E402
 from msmkit.widgets.lags import TimescaleView  # noqa: E402
 
 LAGS = [1, 2, 5, 10]
@@ -41,7 +42,9 @@ def wb(trajs):
     """A workbench taken through clustering and scanning by the buttons."""
     bench = Workbench(trajs, n_states=N_STATES, lags=LAGS, n_samples=5, progress=False)
     bench.states_panel.cluster_button.click()
+    bench.wait(60)
     bench.lag_panel.scan_button.click()
+    bench.wait(60)
     return bench
 
 
@@ -105,6 +108,7 @@ def test_warnings_are_shown_in_the_panel():
             for _ in range(3)]
     panel = StatesPanel(runs, tica_dim=1, n_states=5, progress=False)
     panel.cluster_button.click()
+    panel.wait(60)
     assert panel.labels is not None
     assert "msmkit-warning" in panel.status.value
     assert "constant" in status_text(panel.status)  # TICA's finding about feature x2
@@ -155,8 +159,8 @@ def test_fast_marker_draws_what_the_full_figure_draws(wb):
     view = TimescaleView(scan, LAGS[0])
     assert view.fast
     quick = pixels(view.png(LAGS[2]))
-    full = pixels(figure_png(plot_timescales(scan, selected_lag=LAGS[2]), dpi=96))
-    other = pixels(figure_png(plot_timescales(scan, selected_lag=LAGS[-1]), dpi=96))
+    full = pixels(figure_png(plot_timescales(scan, selected_lag=LAGS[2]), dpi=_render.DPI))
+    other = pixels(figure_png(plot_timescales(scan, selected_lag=LAGS[-1]), dpi=_render.DPI))
     assert quick.shape == full.shape
     differ = np.mean(np.any(np.abs(quick - full) > 40, axis=-1))
     moved = np.mean(np.any(np.abs(other - full) > 40, axis=-1))
@@ -242,6 +246,7 @@ def test_bad_choices_show_messages_not_tracebacks(trajs, tmp_path):
     bench = Workbench(trajs, n_states=6, lags=[1, 2], n_samples=0, progress=False,
                       file_name=str(tmp_path / "never.npz"))
     bench.lag_panel.scan_button.click()
+    bench.wait(60)
     assert "no microstates yet" in status_text(bench.lag_panel.status)
     bench.saver.button.click()
     assert "no model to save" in status_text(bench.saver.status)
@@ -249,6 +254,7 @@ def test_bad_choices_show_messages_not_tracebacks(trajs, tmp_path):
 
     bench.states_panel.n_states.value = 10 ** 6
     bench.states_panel.cluster_button.click()
+    bench.wait(60)
     assert "n_states=1000000" in status_text(bench.states_panel.status)
     assert bench.labels is None
     with pytest.raises(InputError, match="n_states"):
@@ -257,14 +263,17 @@ def test_bad_choices_show_messages_not_tracebacks(trajs, tmp_path):
         bench.make_states(n_states="many")
     bench.states_panel.features.value = ()
     bench.states_panel.cluster_button.click()
+    bench.wait(60)
     assert "choose at least one feature" in status_text(bench.states_panel.status)
 
     bench.make_states(n_states=6, features=list(demo.FEATURE_NAMES))
     bench.lag_panel.lags.value = "1, 100000"
     bench.lag_panel.scan_button.click()
+    bench.wait(60)
     assert "not shorter than the longest trajectory" in status_text(bench.lag_panel.status)
     bench.lag_panel.lags.value = "1, two"
     bench.lag_panel.scan_button.click()
+    bench.wait(60)
     assert "whole numbers" in status_text(bench.lag_panel.status)
     assert bench.scan_result is None and bench.model is None
     assert bench.lag_panel.progress_bar.bar_style == "danger"
@@ -349,6 +358,7 @@ def test_validate_button_gives_the_public_ck_test(wb):
 
     panel.multiples.value, panel.n_samples.value = CK_MULTIPLES, CK_SAMPLES
     panel.run_button.click()
+    panel.wait(60)
     ck = wb.ck
     assert ck is not None and ck is panel.ck, status_text(panel.status)
     want = chapman_kolmogorov(model, wb.labels, n_sets=n_sets, multiples=CK_MULTIPLES, n_samples=CK_SAMPLES,
@@ -399,6 +409,7 @@ def test_validate_method_errors_and_new_models(wb, trajs):
     assert panel.progress_bar.bar_style == "danger" and wb.ck is ck
     panel.n_sets.field.value = 10 ** 3
     panel.run_button.click()
+    panel.wait(60)
     assert "n_sets" in status_text(panel.status) and wb.ck is ck
     panel.n_sets.field.value = 2
     panel.pair.first.value = 1  # the same set twice
@@ -419,6 +430,7 @@ def test_validate_method_errors_and_new_models(wb, trajs):
 
     bench = Workbench(trajs, n_states=6, lags=[1], n_samples=0, progress=False)
     bench.validation_panel.run_button.click()
+    bench.wait(60)
     assert "no model to test" in status_text(bench.validation_panel.status)
     with pytest.raises(InputError, match="no model"):
         bench.validate()
@@ -435,6 +447,7 @@ def test_kinetics_button_gives_the_public_numbers(wb):
     n_sets = panel.n_sets.field.value
     assert n_sets == max(model.suggest_n_macrostates()[0], 2)
     panel.compute_button.click()
+    panel.wait(60)
     res = panel.result
     assert res is not None, status_text(panel.status)
     assert "msmkit-error" not in panel.status.value
@@ -503,6 +516,7 @@ def test_kinetics_method_errors_and_saved_memberships(wb, tmp_path):
     panel.fraction.value = 0.9
     panel.n_sets.field.value = 10 ** 4
     panel.compute_button.click()
+    panel.wait(60)
     assert "n_sets" in status_text(panel.status) and panel.progress_bar.bar_style == "danger"
     panel.n_sets.field.value = 2
 
@@ -544,3 +558,299 @@ def test_new_panels_work_on_their_own(reference):
     assert (res.source, res.target) == (1, 0)
     np.testing.assert_allclose(res.passage["mfpt"], model.passage_time_matrix(model.find_macrostates(2).members)[[0, 1], [1, 0]],
                                rtol=1e-12)
+
+
+# -- background work, cancel, stale state (checked against the panels' own earlier results) ----
+def _slow_bench(trajs):
+    bench = Workbench(trajs, n_states=8, lags=[1, 2], n_samples=2, progress=True)
+    bench.make_states()
+    first = bench.scan()
+    return bench, first
+
+
+def test_cancel_button_stops_a_scan_and_keeps_the_previous_result(trajs):
+    import time
+
+    bench, first = _slow_bench(trajs)
+    model = bench.model
+    panel = bench.lag_panel
+    panel.lags.value = "1, 2, 3, 4, 5, 6, 8, 10"
+    panel.n_samples.value = 5000  # minutes of work when not cancelled
+    panel.scan_button.click()
+    assert panel.running and not panel.cancel_button.disabled
+    assert panel.scan_button.disabled
+    deadline = time.monotonic() + 30
+    while panel.progress_bar.value < 3 and time.monotonic() < deadline:  # some samples done
+        time.sleep(0.01)
+    panel.cancel_button.click()
+    assert panel.wait(120), "the scan did not stop after Cancel"
+    assert bench.scan_result is first and bench.model is model  # nothing half-made
+    text = status_text(panel.status)
+    assert "cancelled" in text and "previous successful run" in text
+    assert panel.progress_bar.bar_style == "warning"
+    assert panel.cancel_button.disabled and not panel.scan_button.disabled
+    assert "msmkit-stale" in panel.plot._dom_classes
+    # a new run after a cancel runs to the end and clears the stale mark
+    panel.n_samples.value = 2
+    panel.scan_button.click()
+    assert panel.wait(120)
+    assert bench.scan_result is not first and "msmkit-stale" not in panel.plot._dom_classes
+
+
+def test_cancel_stops_work_without_cancel_points():
+    """A method without cancel points (like scikit-learn's k-means) is stopped in the worker
+    thread at the next Python-level step."""
+    import itertools
+    import time
+
+    from msmkit.widgets._base import Step
+
+    class Endless(Step):
+        interrupt_thread = True
+
+        def __init__(self):
+            super().__init__(css_class="msmkit-test")
+            self.go = widgets_button = __import__("ipywidgets").Button(description="go")
+            self._on_click(widgets_button, self.work)
+            self.steps = 0
+
+        def work(self):
+            with self._action("Endless work"):
+                for self.steps in itertools.count():
+                    time.sleep(0.001)
+
+    panel = Endless()
+    panel.go.click()
+    while panel.steps < 5:
+        time.sleep(0.01)
+    assert panel.cancel()
+    assert panel.wait(30), "the thread was not stopped"
+    assert "cancelled" in status_text(panel.status)
+    assert not panel.cancel()  # nothing left to cancel
+
+
+def test_kernel_interrupt_cancels_background_work(trajs, monkeypatch):
+    """Kernel -> Interrupt: the idle kernel's SIGINT handler (the one it puts back after each
+    message) becomes ours and cancels what runs in the background."""
+    import signal
+    import time
+    import types
+
+    import IPython
+
+    from msmkit.widgets import _base
+
+    kernel = types.SimpleNamespace(saved_sigint_handler=signal.SIG_IGN)
+    monkeypatch.setattr(IPython, "get_ipython", lambda: types.SimpleNamespace(kernel=kernel))
+    bench, first = _slow_bench(trajs)
+    panel = bench.lag_panel
+    panel.lags.value = "1, 2, 3, 4, 5"
+    panel.n_samples.value = 5000
+    panel.scan_button.click()
+    handler = kernel.saved_sigint_handler
+    assert callable(handler) and handler is not signal.SIG_IGN
+    while panel.progress_bar.value < 2:
+        time.sleep(0.01)
+    handler(signal.SIGINT, None)  # what the kernel does on Interrupt
+    assert panel.wait(120)
+    assert bench.scan_result is first and "cancelled" in status_text(panel.status)
+    _base._interrupt_cancels_jobs()  # installed once only
+    assert kernel.saved_sigint_handler is handler
+    handler(signal.SIGINT, None)  # nothing runs: passes on to SIG_IGN, no error
+
+
+def test_recluster_resets_save_row_and_downstream_panels(trajs, tmp_path):
+    bench = Workbench(trajs, n_states=8, lags=[1, 2], n_samples=0, ck_samples=0, progress=False)
+    bench.make_states()
+    bench.scan()
+    bench.validate(n_sets=2, multiples=2)
+    bench.kinetics(n_sets=2)
+    assert "Ready to save" in status_text(bench.saver.status)
+    assert bench.validation_panel.ck_plot.outputs
+    bench.states_panel.n_states.value = 6
+    bench.states_panel.cluster_button.click()
+    bench.wait(60)
+    assert bench.labels is not None and bench.model is None
+    assert "Ready to save" not in status_text(bench.saver.status)
+    assert "Nothing to save yet" in status_text(bench.saver.status)
+    assert bench.ck is None and bench.macrostates is None
+    assert not bench.validation_panel.ck_plot.outputs and not bench.lag_panel.plot.outputs
+    assert bench.kinetics_panel.passage_html.value == ""
+    bench.saver.name.value = str(tmp_path / "gone.npz")
+    bench.saver.button.click()
+    assert "no model to save" in status_text(bench.saver.status)
+    assert not (tmp_path / "gone.npz").exists()
+
+
+def test_error_after_a_result_marks_the_old_figure_stale(wb):
+    panel = wb.lag_panel
+    kept = wb.scan_result
+    old = panel.lags.value
+    try:
+        panel.lags.value = "1, two"
+        panel.scan_button.click()
+        panel.wait(60)
+        assert "whole numbers" in status_text(panel.status)
+        assert "still those of the previous successful run" in status_text(panel.status)
+        assert "msmkit-stale" in panel.plot._dom_classes and panel.plot.outputs
+        assert wb.scan_result is kept
+    finally:
+        panel.lags.value = old
+    wb.scan()
+    assert "msmkit-stale" not in panel.plot._dom_classes
+
+
+def test_buttons_leave_no_progress_widgets_behind(trajs, monkeypatch):
+    """No detailed (tqdm) bar is made by a button: nothing to pile up or to outlive the model behind it."""
+    import tqdm.auto
+
+    made = []
+
+    class Recording(tqdm.auto.tqdm):
+        def __init__(self, *a, **kw):
+            made.append(not kw.get("disable", False))
+            super().__init__(*a, **kw)
+
+    monkeypatch.setattr(tqdm.auto, "tqdm", Recording)
+    bench = Workbench(trajs, n_states=8, lags=[1, 2], n_samples=2, ck_samples=2, progress=True)
+    for button in (bench.states_panel.cluster_button, bench.lag_panel.scan_button,
+                   bench.validation_panel.run_button, bench.kinetics_panel.compute_button):
+        button.click()
+        bench.wait(60)
+    assert bench.kinetics_panel.result is not None, status_text(bench.kinetics_panel.status)
+    assert made and not any(made)  # the library was asked, with its bars off
+    for out in (bench.states_panel.map, bench.lag_panel.plot, bench.validation_panel.ck_plot):
+        assert [list(o["data"]) for o in out.outputs] == [["image/png", "text/plain"]]
+
+
+# -- cautions about the chosen lag --------------------------------------------------------------
+def test_lag_cautions_below_the_suggestion_and_near_the_run_length():
+    """A scan with given timescales: below the suggestion the slowest one rises (6 -> 9); 30
+    frames of a 200-frame run is 15 %, 200/30 = 6.67 steps (exact arithmetic)."""
+    from types import SimpleNamespace
+
+    from msmkit.widgets.lags import lag_cautions
+
+    model = SimpleNamespace(metadata={"frames_per_run": [200, 150]})
+    # timescales rising up to lag 5, then level (values chosen for the rule, not measured)
+    scan = SimpleNamespace(lags=np.array([1, 2, 5, 10, 30]), timescales=np.array([[4.0], [6.0], [9.0], [9.1], [9.2]]),
+                           suggested_lag=5, unit="ns", model=lambda lag: model)
+    below = lag_cautions(scan, 2)
+    assert len(below) == 1 and "below the suggested lag" in below[0] and "6 to 9" in below[0]
+    assert lag_cautions(scan, 5) == [] and lag_cautions(scan, 10) == []
+    far = lag_cautions(scan, 30)  # 30 frames > 10% of the longest run (200 frames)
+    assert len(far) == 1 and "15% of the longest run" in far[0] and "6.67 steps" in far[0]
+    unsure = SimpleNamespace(**{**vars(scan), "suggested_lag": None})
+    rising = lag_cautions(unsure, 1)
+    assert len(rising) == 1 and "still rises" in rising[0] and "9.2 ns at 30 frames" in rising[0]
+    assert lag_cautions(unsure, 10) == []  # 9.1 -> 9.2 is less than 5 %
+
+
+def test_chosen_lag_caution_shown_in_the_panel(wb):
+    scan = wb.scan_result
+    slowest = scan.timescales[:, 0]
+    assert slowest[-1] > 1.05 * slowest[0]  # the demo's timescales still rise over these lags
+    wb.lag_panel.slider.value = int(scan.lags[0])
+    text = status_text(wb.lag_panel.diagnostics)
+    assert "still rises" in text and "msmkit-warning" in wb.lag_panel.diagnostics.value
+
+
+def test_suggested_marker_is_drawn_above_the_chosen_lag_line(wb):
+    scan = wb.scan_result
+    view = TimescaleView(dataclasses_replace(scan, suggested_lag=int(scan.lags[1])), int(scan.lags[1]))
+    labels = [str(a.get_label()) for a in view._figure.moving]
+    assert labels.index(next(x for x in labels if x.startswith("suggested lag"))) > \
+        labels.index(next(x for x in labels if x.startswith("chosen lag")))
+    png = view.png(int(scan.lags[1]))
+    # the suggestion's dark dotted line shows on top of the orange chosen-lag line
+    im = pixels(png)
+    dark = (im.sum(axis=2) < 150)
+    orange = (im[..., 0] > 180) & (im[..., 1] > 80) & (im[..., 1] < 170) & (im[..., 2] < 90)
+    cols = np.flatnonzero(orange.sum(axis=0) > 20)
+    assert cols.size and dark[:, cols.min():cols.max() + 1].sum() > 20
+
+
+def dataclasses_replace(obj, **kw):
+    import dataclasses
+    return dataclasses.replace(obj, **kw)
+
+
+# -- handing on: the report row -------------------------------------------------------------------
+def test_save_report_button_writes_the_analysis(trajs, tmp_path):
+    bench = Workbench(trajs, n_states=8, lags=[1, 2], n_samples=2, ck_samples=2, progress=False,
+                      file_name=str(tmp_path / "m.npz"))
+    assert bench.reporter.name.value == str(tmp_path / "m.html")
+    bench.reporter.button.click()
+    assert "no model to report" in status_text(bench.reporter.status)
+    assert not (tmp_path / "m.html").exists()
+    bench.make_states()
+    bench.scan()
+    assert "Ready to write a report" in status_text(bench.reporter.status)
+    bench.validate(n_sets=2, multiples=2)
+    bench.kinetics(n_sets=2)
+    bench.reporter.button.click()
+    text = (tmp_path / "m.html").read_text(encoding="utf-8")
+    assert "Wrote the report" in status_text(bench.reporter.status)
+    assert "Chapman-Kolmogorov test" in text and "<h2>Macrostates</h2>" in text
+    assert text.count("data:image/png;base64,") >= 3
+    assert "preparation: microstates.n_states" in text
+    bench.reporter.button.click()  # exists, overwrite off: kept
+    assert "exists" in status_text(bench.reporter.status)
+    bench.reporter.overwrite.value = True
+    tested = bench.model.lag
+    bench.select_lag(next(x for x in (1, 2) if x != tested))  # another model: the test is not for it
+    bench.reporter.button.click()
+    again = (tmp_path / "m.html").read_text(encoding="utf-8")
+    assert "<h2>Chapman-Kolmogorov test</h2>" not in again and "<h2>Lag scan</h2>" in again
+    bench.make_states(n_states=6)  # re-clustering: nothing to report any more
+    assert "A report needs a model" in status_text(bench.reporter.status)
+
+
+# -- kinetics pictures ----------------------------------------------------------------------------
+def test_kinetics_step_draws_network_and_maps(trajs):
+    """The pictures show what the public objects hold: the lumped net current (TransitionPaths.lump),
+    the committor and the slowest right eigenvector of the model."""
+    from msmkit.plots import plot_macrostate_network
+
+    bench = Workbench(trajs, n_states=12, lags=[1, 2], n_samples=0, progress=False)
+    bench.make_states()
+    bench.scan()
+    panel = bench.kinetics_panel
+    panel.compute_button.click()
+    panel.wait(60)
+    result = panel.result
+    assert result is not None, status_text(panel.status)
+    assert panel.network_plot.outputs and panel.maps_plot.outputs
+    assert "Why the two route lists differ" in status_text(panel.routes_note)
+    lumped = result.flux.lump(result.macrostates.members)
+    # the net current drawn is antisymmetric-positive: F_ij > 0 implies F_ji == 0 (Noé et al. 2009)
+    F = np.asarray(lumped.net_current)
+    assert np.all((F > 0) <= (F.T == 0))
+    fig = plot_macrostate_network(lumped)
+    ax = fig.axes[0]
+    arrows = [p for p in ax.patches if type(p).__name__ == "FancyArrowPatch"]
+    total = float(lumped.throughput)
+    drawn = F[(F > 0) & (F >= 0.01 * total)]  # currents of at least 1 % of the total flux
+    assert len(arrows) == drawn.size > 0
+    shares = sorted(t.get_text() for t in ax.texts if t.get_text().endswith("%"))
+    assert shares == sorted(f"{100 * f / total:.0f}%" for f in drawn)
+    # a new model clears the pictures (no stale figures of another model)
+    bench.select_lag(next(x for x in (1, 2) if x != bench.model.lag))
+    assert not panel.network_plot.outputs and not panel.maps_plot.outputs
+
+
+def test_kinetics_maps_colour_the_public_numbers(trajs):
+    from msmkit.plots import plot_kinetics_maps
+
+    coords = list(TICA(10, dim=2).fit(trajs).transform(trajs))
+    micro = Microstates(12, seed=0).fit(coords)
+    model = mk.build_model(micro.labels_, lag=2)
+    macro = model.find_macrostates(2)
+    flux = model.transition_paths(macro.members[0], macro.members[1])
+    fig = plot_kinetics_maps(micro.centers_[model.states], model, macro, flux, pair=(0, 1))
+    left, middle, right = fig.axes[:3]
+    np.testing.assert_allclose(middle.collections[0].get_array(), flux.reach_target)
+    np.testing.assert_allclose(right.collections[0].get_array(), model.modes(2)[:, 1])
+    np.testing.assert_allclose(left.collections[0].get_offsets(), micro.centers_[model.states][:, :2])
+    with pytest.raises(InputError, match="kept states"):
+        plot_kinetics_maps(micro.centers_[:3], model, macro, flux)

@@ -1,18 +1,23 @@
 """What every panel shares: the status line, the progress bar, error and warning capture,
-buttons that call public methods, and the file-name row used for saving."""
+buttons that call public methods in a background thread (with Cancel), and the file-name row
+used for saving."""
 from __future__ import annotations
 
 import contextlib
+import ctypes
 import re
+import signal
+import threading
 import warnings
+import weakref
 
 from .._checks import check_int, require_optional
-from ..errors import InputError
+from ..errors import Cancelled, InputError
 from . import _render
 
 widgets = require_optional("ipywidgets", "lab", "The msmkit workbench")
 
-__all__ = ["FileRow", "MacrostateCount", "SetPair", "Step", "action", "on_click", "parse_int_list", "report",
+__all__ = ["FileRow", "MacrostateCount", "SetPair", "Step", "action", "on_click", "parse_int_list", "report", "row",
            "widgets"]
 
 #: width of the descriptions in front of the input fields
@@ -26,6 +31,11 @@ def field(kind, value, description, tooltip="", width="350px", **kw):
     if tooltip:
         w.tooltip = tooltip
     return w
+
+
+def row(children):
+    """A row of widgets that wraps onto the next line in a narrow window instead of clipping."""
+    return widgets.HBox(children, layout=widgets.Layout(flex_flow="row wrap", align_items="flex-start"))
 
 
 def button(description, css_class, tooltip="", style="primary", icon=""):
@@ -71,14 +81,23 @@ def stage(bar, done: int, total: int, what: str) -> None:
     bar.description = what[:24]
 
 
+#: CSS class of a figure that belongs to an earlier result than the message above it
+STALE_CLASS = "msmkit-stale"
+#: added to an error (or cancel) message when figures of the previous result stay shown
+STALE_NOTE = ("The figures and tables below are still those of the previous successful run, not of these "
+              "settings.")
+
+
 @contextlib.contextmanager
-def action(status, what: str, *, bar=None, total: int = 1, details=None, buttons=()):
+def action(status, what: str, *, bar=None, total: int = 1, buttons=(), shown=()):
     """Run a computation: buttons disabled, progress shown, warnings collected, errors shown.
 
     Yields a list that collects the warnings raised inside; the caller shows them next to
     the result (:func:`report`). An InputError is shown in ``status`` and raised again (a
-    button's handler drops it, a call from code sees it); anything else is shown as a bug.
-    ``details``: an Output widget that catches the detailed progress bars while running.
+    button's handler drops it, a call from code sees it); a :class:`~msmkit.errors.Cancelled`
+    is shown as such; anything else is shown as a bug. ``shown``: the Output widgets holding
+    the previous result; after a failure those that are not empty get :data:`STALE_CLASS` and
+    the message says they are old; after a success the mark is removed.
     """
     caught = []
     for b in buttons:
@@ -87,49 +106,35 @@ def action(status, what: str, *, bar=None, total: int = 1, details=None, buttons
         stage(bar, 0, total, what)
     _render.show_message(status, f"{what} ...")
     try:
-        with warnings.catch_warnings(record=True) as raw, _capture(details):
+        with warnings.catch_warnings(record=True) as raw:
             warnings.simplefilter("always")
             yield caught
         caught.extend(_unique_messages(raw))
-    except InputError as err:
+    except BaseException as err:
         if bar is not None:
-            bar.bar_style = "danger"
-        _render.show_message(status, str(err), "error")
-        raise
-    except Exception as err:
-        if bar is not None:
-            bar.bar_style = "danger"
-        _render.show_message(status, [f"Unexpected {type(err).__name__}: {err}",
-                                      "This is a bug in msmkit; please report it."], "error")
+            bar.bar_style = "warning" if isinstance(err, (Cancelled, KeyboardInterrupt)) else "danger"
+        old = [out for out in shown if out.outputs]
+        for out in old:
+            out.add_class(STALE_CLASS)
+        note = [STALE_NOTE] if old else []
+        if isinstance(err, (Cancelled, KeyboardInterrupt)):
+            _render.show_message(status, [f"{what}: cancelled; nothing was changed.", *note], "warning")
+        elif isinstance(err, InputError):
+            _render.show_message(status, [str(err), *note], "error")
+        elif isinstance(err, Exception):
+            _render.show_message(status, [f"Unexpected {type(err).__name__}: {err}",
+                                          "This is a bug in msmkit; please report it.", *note], "error")
         raise
     else:
+        for out in shown:
+            out.remove_class(STALE_CLASS)
         if bar is not None:
             bar.value = bar.max
             bar.bar_style = "success"
             bar.description = "done"
     finally:
-        if details is not None:
-            _render.clear(details)
         for b in buttons:
             b.disabled = False
-
-
-@contextlib.contextmanager
-def _capture(out):
-    """Send displayed output (detailed progress bars) to ``out`` while running.
-
-    Unlike ``with out:``, an exception is never caught here: inside IPython, an Output
-    widget's own exit shows the traceback in the widget and swallows the exception, which
-    would hide an error from both the panel and a caller.
-    """
-    if out is None:
-        yield
-        return
-    out.__enter__()
-    try:
-        yield
-    finally:
-        out.__exit__(None, None, None)
 
 
 def on_click(button, method) -> None:
@@ -152,14 +157,27 @@ def report(status, done: str, warnings_=(), extra=()) -> None:
         _render.show_message(status, lines, "ok")
 
 
+#: panels with a computation running in the background (Kernel -> Interrupt cancels them)
+_RUNNING = weakref.WeakSet()
+_RUNNING_LOCK = threading.Lock()
+
+
 class Step(widgets.VBox):
-    """Base of the panels: a VBox with a status line, a progress bar and an area for the
-    detailed progress bars of long computations.
+    """Base of the panels: a VBox with a status line, a progress bar and a Cancel button.
 
     Public methods that compute run inside :meth:`_action` (see :func:`action`): errors of
     bad input (:class:`~msmkit.errors.InputError`) and warnings appear in the panel; the
     method still raises the error to a caller in code, while buttons only show it.
+
+    A button runs the method behind it in a background thread, so that the kernel stays free: Cancel
+    (or Kernel -> Interrupt) stops it between two units of work (a lag, a bootstrap sample, a
+    k-means iteration) and the panel keeps the previous result. :meth:`wait` waits for it.
+    Called from code, the methods run in the caller's thread (Kernel -> Interrupt stops them).
     """
+
+    #: stop a background computation that has no cancel points of its own (clustering in
+    #: scikit-learn) by raising Cancelled in its thread at its next Python-level step
+    interrupt_thread = False
 
     def __init__(self, *, progress: bool = True, css_class: str = "", **kw):
         super().__init__(**kw)
@@ -172,24 +190,157 @@ class Step(widgets.VBox):
         self.progress_bar = widgets.IntProgress(value=0, min=0, max=1, description="",
                                                 layout=widgets.Layout(width="350px", visibility="hidden"))
         self.progress_bar.add_class("msmkit-progress")
-        self.details = widgets.Output()
+        self.cancel_button = button("Cancel", "msmkit-cancel-button", "Stop the running computation; the "
+                                    "previous result stays", style="warning", icon="stop")
+        self.cancel_button.disabled = True
+        self.cancel_button.layout.visibility = "hidden"
+        self.cancel_button.on_click(lambda _: self.cancel())
         self._buttons = []
+        self._plots = []
+        self._thread = None
+        self._cancel = threading.Event()
+        self._job_lock = threading.Lock()
+        self._in_method = False
 
+    # -- running in the background ----------------------------------------------------------
+    @property
+    def running(self) -> bool:
+        """Whether a button's computation is running in the background."""
+        t = self._thread
+        return t is not None and t.is_alive()
+
+    def wait(self, timeout=None) -> bool:
+        """Wait for the background computation (if any); True when none is left running."""
+        t = self._thread
+        if t is not None:
+            t.join(timeout)
+        return not self.running
+
+    def cancel(self) -> bool:
+        """Ask the background computation to stop; True when one was running."""
+        with self._job_lock:
+            if not self.running:
+                return False
+            self._cancel.set()
+            if self.interrupt_thread and self._in_method:
+                ctypes.pythonapi.PyThreadState_SetAsyncExc(ctypes.c_ulong(self._thread.ident),
+                                                           ctypes.py_object(Cancelled))
+        _render.show_message(self.status, "Cancelling ...", "warning")
+        return True
+
+    def _start(self, method) -> None:
+        """Run ``method()`` in a background thread (a button's click)."""
+        if self.running:
+            return
+        self._cancel = threading.Event()
+        self._in_method = True
+        self._thread = threading.Thread(target=self._run, args=(method,), daemon=True,
+                                        name=f"msmkit {type(self).__name__}")
+        for b in self._buttons:
+            b.disabled = True
+        self.cancel_button.disabled = False
+        self.cancel_button.layout.visibility = "visible"
+        with _RUNNING_LOCK:
+            _RUNNING.add(self)
+        _interrupt_cancels_jobs()
+        self._thread.start()
+
+    def _run(self, method) -> None:
+        try:
+            try:
+                method()
+            except Exception:  # shown in the panel (an unexpected one as a bug)
+                pass
+            finally:
+                with self._job_lock:
+                    self._in_method = False
+        except Cancelled:  # an interrupt that arrived just as the method ended
+            pass
+        finally:
+            self.cancel_button.disabled = True
+            self.cancel_button.layout.visibility = "hidden"
+            with _RUNNING_LOCK:
+                _RUNNING.discard(self)
+
+    def _cancel_point(self, total: int, start: int = 0, what: str = ""):
+        """The ``cancel=`` object for a library call: asked once per unit of work, it also
+        advances the progress bar by one unit (``total`` units after ``start``)."""
+        return _CancelPoint(self._cancel, self.progress_bar if self.progress else None, total, start, what)
+
+    # -- actions ----------------------------------------------------------------------------
     def _stage(self, done: int, total: int, what: str) -> None:
+        if self._cancel.is_set():
+            raise Cancelled(f"{what}: cancelled on request")
         stage(self.progress_bar, done, total, what)
 
     def _action(self, what: str, total: int = 1, *, status=None):
         """:func:`action` with this panel's widgets; another ``status`` (a file row's) goes
         without the progress bar."""
-        return action(self.status if status is None else status, what, total=total, details=self.details,
-                      bar=self.progress_bar if status is None else None, buttons=self._buttons)
+        return action(self.status if status is None else status, what, total=total,
+                      bar=self.progress_bar if status is None else None, buttons=self._buttons,
+                      shown=self._plots if status is None else ())
 
     def _on_click(self, button, method):
         self._buttons.append(button)
-        on_click(button, method)
+        button.on_click(lambda _: self._start(method))
 
     def _report(self, done: str, warnings_, extra=(), *, status=None):
         report(self.status if status is None else status, done, warnings_, extra)
+
+
+class _CancelPoint:
+    """The cancel flag handed to a library function: each question is one unit of work done."""
+
+    def __init__(self, event, bar, total, start, what):
+        self._event, self._bar, self._total, self._what = event, bar, max(int(total), 1), what
+        self._done = int(start)
+
+    def is_set(self) -> bool:
+        if self._bar is not None:
+            self._done += 1
+            self._bar.max = self._total
+            self._bar.value = min(self._done, self._total)
+            if self._what:
+                self._bar.description = self._what[:24]
+        return self._event.is_set()
+
+
+def _cancel_running(signum, frame, previous=None):
+    """SIGINT while panels compute in the background: cancel them (the kernel itself is idle)."""
+    with _RUNNING_LOCK:
+        panels = list(_RUNNING)
+    cancelled = [p.cancel() for p in panels]
+    if not any(cancelled) and callable(previous):
+        previous(signum, frame)
+
+
+def _interrupt_cancels_jobs() -> None:
+    """Make Kernel -> Interrupt cancel background computations.
+
+    An idle ipykernel ignores SIGINT and, around every message it handles, installs the default
+    handler and then puts back the one it saved; the handler to put back is replaced here, so
+    it is ours between messages. It passes the signal on when nothing runs. Outside a kernel
+    nothing changes.
+    """
+    try:
+        from IPython import get_ipython
+    except ImportError:
+        return
+    kernel = getattr(get_ipython(), "kernel", None)
+    if kernel is None or not hasattr(kernel, "saved_sigint_handler"):
+        return
+    saved = kernel.saved_sigint_handler
+    if getattr(saved, "_msmkit", False):
+        return
+    previous = saved if callable(saved) else None
+
+    def handler(signum, frame):
+        _cancel_running(signum, frame, previous)
+
+    handler._msmkit = True
+    kernel.saved_sigint_handler = handler
+    if threading.current_thread() is threading.main_thread() and signal.getsignal(signal.SIGINT) is saved:
+        signal.signal(signal.SIGINT, handler)
 
 
 def _unique_messages(records) -> list[str]:
@@ -217,7 +368,7 @@ class FileRow(widgets.VBox):
         self.status = widgets.HTML()
         self.status.add_class("msmkit-status")
         self.status.add_class(f"{css_class}-status")
-        super().__init__([widgets.HBox([self.name, self.overwrite, self.button]), self.status])
+        super().__init__([row([self.name, self.overwrite, self.button]), self.status])
 
 
 class MacrostateCount:

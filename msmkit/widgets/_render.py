@@ -17,8 +17,15 @@ from ..plots import figure_png
 __all__ = ["MovingMarkerFigure", "clear", "encode_png", "frames", "message_html", "show_figure", "show_message",
            "show_png", "table_html"]
 
-#: dots per inch of every PNG the widgets show
-DPI = 96
+#: dots per inch of every PNG the widgets show: 1.5 screen pixels per point, so that a figure
+#: scaled to the width of a wide window stays sharp (see PLOT_STYLE)
+DPI = 144
+
+#: figures fill the width of the panel (up to a readable size) instead of keeping their
+#: pixel width; JupyterLab shrinks them in a narrow window
+PLOT_STYLE = ("<style>.msmkit-plot .jp-RenderedImage img, .msmkit-plot .jp-OutputArea-output img"
+              "{width:100%;max-width:1150px;height:auto}"
+              ".msmkit-plot .jp-RenderedImage{width:100%}</style>")
 
 #: compact rows for tables shown in an HTML widget
 TABLE_STYLE = ("<style>.msmkit-table{border-collapse:collapse;font-size:90%}"

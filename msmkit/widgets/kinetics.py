@@ -10,8 +10,9 @@ import traitlets
 from .._checks import check_int
 from ..defaults import ROUTE_SHARE
 from ..errors import InputError
+from ..plots import plot_kinetics_maps, plot_macrostate_network
 from . import _render
-from ._base import MacrostateCount, SetPair, Step, button, field, set_value, widgets
+from ._base import MacrostateCount, SetPair, Step, button, field, set_value, row, widgets
 from ._render import frames
 from .lags import SAMPLING_CAUTION
 
@@ -24,6 +25,13 @@ METASTABILITY_CAUTION = ("First-passage times and rates between macrostates mean
 
 #: longest list of states written out in a table cell
 SHOWN_STATES = 12
+
+#: why the routes through microstates and those between macrostates can disagree
+ROUTES_NOTE = ("Why the two route lists differ: a pathway through microstates carries the flux of the weakest jump on it, "
+               "and the flux between two macrostates is spread over many parallel microstate jumps, so each "
+               "microstate pathway carries little while the lumped route that collects them all carries much. "
+               "Lumping also cancels currents running back and forth inside and between macrostates. Read the "
+               "microstate pathways for mechanism, the lumped routes and the network for where the flux goes.")
 
 
 @dataclasses.dataclass(eq=False)
@@ -93,6 +101,7 @@ class KineticsPanel(Step):
     """
 
     result = traitlets.Any(None)
+    interrupt_thread = True  # the macrostate bootstrap has no cancel points of its own
 
     def __init__(self, model=None, *, n_sets=None, fraction: float = ROUTE_SHARE, max_paths: int = 20,
                  progress: bool = True):
@@ -123,18 +132,27 @@ class KineticsPanel(Step):
         self.flux_summary.add_class("msmkit-flux-summary")
         self.pathways_html = widgets.HTML(layout=widgets.Layout(max_height="360px", overflow="auto"))
         self.pathways_html.add_class("msmkit-routes-table")
+        self.centers = None
+        self.coordinate_names = ("coordinate 1", "coordinate 2")
+        self.network_plot = widgets.Output(layout=widgets.Layout(min_height="40px", width="100%", overflow="auto"))
+        self.maps_plot = widgets.Output(layout=widgets.Layout(min_height="40px", width="100%", overflow="auto"))
+        for out, name in ((self.network_plot, "msmkit-network-plot"), (self.maps_plot, "msmkit-kinetics-maps")):
+            out.add_class(name)
+            out.add_class("msmkit-plot")
+        self._plots = [self.network_plot, self.maps_plot]
+        self.routes_note = widgets.HTML(_render.message_html(ROUTES_NOTE))
 
         intro = widgets.HTML(_render.message_html(
             "Macrostates (PCCA+) group the microstates into long-lived sets. For every pair of them: the mean "
             "first-passage time and the rate from transition path theory; for one chosen pair: the reactive "
             "flux and the routes that carry it, microstate by microstate."))
-        settings = widgets.HBox([
-            widgets.VBox([self.n_sets.field, widgets.HBox([self.compute_button, self.progress_bar])]),
+        settings = row([
+            widgets.VBox([self.n_sets.field, widgets.HBox([self.compute_button, self.cancel_button, self.progress_bar])]),
             widgets.VBox([self.fraction, self.max_paths]),
         ])
-        self.children = [intro, settings, self.n_sets.reason, self.details, self.status, self.populations_html, self.passage_html,
+        self.children = [intro, settings, self.n_sets.reason, self.status, self.populations_html, self.passage_html,
                          self.cautions, widgets.HTML("<b>Reactive flux and routes</b>"), self.pair,
-                         self.flux_summary, self.pathways_html]
+                         self.flux_summary, self.network_plot, self.maps_plot, self.routes_note, self.pathways_html]
         self.set_model(model)
 
     # -- inputs ------------------------------------------------------------------------------
@@ -142,11 +160,20 @@ class KineticsPanel(Step):
         """The label trajectories of the model: macrostate populations then get bootstrap intervals."""
         self.labels = labels
 
+    def set_centers(self, centers, names=None):
+        """Microstate centers by original label (rows), for the pictures on the state map; None:
+        the network picture only."""
+        self.centers = None if centers is None else np.asarray(centers, dtype=float)
+        if names is not None:
+            self.coordinate_names = tuple(str(n) for n in names)
+
     def set_model(self, model):
         """A new model: the previous macrostates are dropped and the suggested number shown."""
         self.model = model
         self.n_sets.update(model)
         self.result = None
+        for out in self._plots:
+            _render.clear(out)
         for w in (self.populations_html, self.passage_html, self.cautions, self.flux_summary, self.pathways_html):
             w.value = ""
         self.pair.clear()
@@ -181,7 +208,7 @@ class KineticsPanel(Step):
         KineticsSummary
             Also in :attr:`result`.
         """
-        with self._action("Macrostates and kinetics", total=3) as caught:
+        with self._action("Macrostates and kinetics", total=4) as caught:
             self._set_path_settings(fraction, max_paths)
             if self.model is None:
                 raise InputError("there is no model yet: make microstates (step 1), then scan and choose a lag "
@@ -205,6 +232,8 @@ class KineticsPanel(Step):
             passage.attrs["unit"] = model.unit
             result = self._with_flux(KineticsSummary(macro, source, target, None, populations, passage, None,
                                                      self.fraction.value, self.max_paths.value, model.unit))
+            self._stage(3, 4, "drawing")
+            self._draw(result)
         self.result = result
         self.pair.set_sets(macro.stationary_populations, (source, target))
         self.populations_html.value = _populations_html(result, model)
@@ -230,6 +259,7 @@ class KineticsPanel(Step):
             result = self._with_flux(dataclasses.replace(self.result, source=source, target=target,
                                                          fraction=self.fraction.value,
                                                          max_paths=self.max_paths.value))
+            self._draw(result)
         self.result = result
         self.pair.choose((source, target))
         self._show_flux()
@@ -254,6 +284,18 @@ class KineticsPanel(Step):
         paths = flux.routes_table(result.fraction, max_paths=check_int(result.max_paths, "routes shown",
                                                                          minimum=1))
         return dataclasses.replace(result, flux=flux, routes=paths)
+
+    def _draw(self, result):
+        """The network of macrostates and, with centers, the pictures on the state map."""
+        macro = result.macrostates
+        lumped = result.flux.lump(macro.members)
+        _render.show_figure(self.network_plot, plot_macrostate_network(lumped), alt="macrostate network")
+        if self.centers is not None and self.centers.shape[0] > int(np.max(self.model.states)):
+            fig = plot_kinetics_maps(self.centers[self.model.states], self.model, macro, result.flux,
+                                     names=self.coordinate_names, pair=(result.source, result.target))
+            _render.show_figure(self.maps_plot, fig, alt="macrostates, committor and slowest eigenvector")
+        else:
+            _render.clear(self.maps_plot)
 
     def _show_flux(self):
         self.flux_summary.value = _flux_html(self.result)

@@ -9,11 +9,12 @@ from ..defaults import PROCESSES
 from ..errors import InputError
 from ..lagscan import lag_scan
 from ..plots import plot_timescales
+from ..report import lag_cautions
 from . import _render
-from ._base import DESCRIPTION_WIDTH, Step, button, field, parse_int_list, set_value, widgets
+from ._base import DESCRIPTION_WIDTH, Step, button, field, parse_int_list, set_value, row, widgets
 from ._render import frames
 
-__all__ = ["LagPanel", "TimescaleView", "default_lags"]
+__all__ = ["LagPanel", "TimescaleView", "default_lags", "lag_cautions"]
 
 #: always said next to a chosen model
 SAMPLING_CAUTION = ("A Markov model is only as good as the sampling behind it: the slow processes must be "
@@ -42,6 +43,8 @@ class TimescaleView:
     """
 
     MARKER = "chosen lag"
+    #: label start of the suggested-lag line, redrawn above the chosen-lag line
+    SUGGESTED = "suggested lag"
 
     def __init__(self, scan, lag):
         self.scan = scan
@@ -53,7 +56,10 @@ class TimescaleView:
         self._text = None if legend is None else next(
             (t for t in legend.get_texts() if t.get_text().startswith(self.MARKER)), None)
         self.fast = self._line is not None and self._text is not None
-        self._figure = _render.MovingMarkerFigure(fig, [self._line, self._text]) if self.fast else None
+        # drawn after the chosen-lag line, so that the suggestion stays visible where both meet
+        above = [a for a in ax.get_lines() if str(a.get_label()).startswith(self.SUGGESTED)]
+        self._figure = (_render.MovingMarkerFigure(fig, [self._line, *above, self._text]) if self.fast
+                        else None)
 
     def png(self, lag: int) -> bytes:
         lag = int(lag)
@@ -115,11 +121,12 @@ class LagPanel(Step):
                                  "How many of the slowest processes to follow")
         self.n_samples = field(widgets.IntText, int(n_samples), "bootstrap samples",
                                "Resampled data sets for the uncertainty bands (0: no bands)")
+        self.n_samples.add_class("msmkit-lag-samples")
         self.seed = field(widgets.IntText, int(seed), "seed", "Seed of the resampling")
         self.scan_button = button("Scan lags", "msmkit-scan-button", "Estimate a model at every lag", icon="line-chart")
         self._on_click(self.scan_button, self.scan)
 
-        self.plot = widgets.Output(layout=widgets.Layout(min_height="60px", overflow="auto"))
+        self.plot = widgets.Output(layout=widgets.Layout(min_height="60px", width="100%", overflow="auto"))
         self.plot.add_class("msmkit-timescale-plot")
         self.plot.add_class("msmkit-plot")
         self.suggestion = widgets.HTML()
@@ -137,9 +144,10 @@ class LagPanel(Step):
             "Estimate a model at several lag times and watch the implied timescales: choose the "
             "smallest lag from which they stay constant. Timescales below the line t = τ are "
             "faster than the lag and cannot be resolved."))
-        settings = widgets.HBox([widgets.VBox([self.lags, self.n_processes]),
+        settings = row([widgets.VBox([self.lags, self.n_processes]),
                                  widgets.VBox([self.n_samples, self.seed])])
-        self.children = [intro, settings, widgets.HBox([self.scan_button, self.progress_bar]), self.details,
+        self._plots = [self.plot]
+        self.children = [intro, settings, widgets.HBox([self.scan_button, self.cancel_button, self.progress_bar]),
                          self.status, self.plot, self.suggestion, self.slider, self.diagnostics]
         if labels is not None:
             self.set_labels(labels)
@@ -184,11 +192,13 @@ class LagPanel(Step):
             if self.labels is None:
                 raise InputError("there are no microstates yet: make them first (step 1, Cluster)")
             wanted = parse_int_list(self.lags.value, "lags")
-            self._stage(1, 3, f"{len(wanted)} lags")
+            self._stage(0, 1, f"{len(wanted)} lags")
+            units = len(wanted) * (1 + max(int(self.n_samples.value), 0))
             result = lag_scan(self.labels, wanted, dt=self.dt, unit=self.unit,
                               n_processes=check_int(self.n_processes.value, "timescales shown", minimum=1),
-                              n_samples=self.n_samples.value, seed=self.seed.value, progress=self.progress)
-            self._stage(2, 3, "drawing")
+                              n_samples=self.n_samples.value, seed=self.seed.value,
+                              cancel=self._cancel_point(units + 1, what=f"{len(wanted)} lags"))
+            self._stage(units, units + 1, "drawing")
             lag = result.suggested_lag if result.suggested_lag is not None else int(result.lags[0])
             view = TimescaleView(result, lag)
         self._view = view
@@ -236,7 +246,8 @@ class LagPanel(Step):
     def _show_lag(self, lag):
         model = self.scan_result.model(lag)
         _render.show_png(self.plot, self._view.png(lag), alt=f"implied timescales, chosen lag {lag}")
-        self.diagnostics.value = _diagnostics_html(model, self.scan_result.timescales.shape[1])
+        self.diagnostics.value = _diagnostics_html(model, self.scan_result.timescales.shape[1],
+                                                   lag_cautions(self.scan_result, lag))
         self.model = model
 
 
@@ -251,7 +262,7 @@ def _suggestion_html(scan) -> str:
     return _render.message_html(["No lag is suggested.", scan.reason], "warning")
 
 
-def _diagnostics_html(model, k) -> str:
+def _diagnostics_html(model, k, cautions=()) -> str:
     ts = model.relaxation_times(k)
     lines = [f"Model at lag {frames(model.lag)} ({model.lag_time:g} {model.unit}): {model.n_states} states kept, "
              f"{100 * model.kept_fraction:.3g}% of the transition counts.",
@@ -261,6 +272,7 @@ def _diagnostics_html(model, k) -> str:
         shown = ", ".join(str(int(s)) for s in model.dropped_states[:12])
         more = " ..." if model.dropped_states.size > 12 else ""
         lines.append(f"Dropped (not in the largest connected set): states {shown}{more}.")
-    lines += list(model.diagnostics)
+    lines += list(cautions) + list(model.diagnostics)
     lines.append(SAMPLING_CAUTION)
-    return _render.message_html(lines, "warning" if model.diagnostics or model.dropped_states.size else "info")
+    warn = model.diagnostics or model.dropped_states.size or cautions
+    return _render.message_html(lines, "warning" if warn else "info")

@@ -8,7 +8,7 @@ import traitlets
 from .._checks import check_int
 from ..errors import InputError
 from . import _render
-from ._base import FileRow, Step, field, widgets
+from ._base import FileRow, Step, field, on_click, row, widgets
 from ._render import frames
 
 __all__ = ["PopulationsPanel"]
@@ -71,14 +71,15 @@ class PopulationsPanel(Step):
         self.table_html.add_class("msmkit-populations-table")
         self.csv = FileRow(file_name, description="CSV file", button_text="Export CSV", css_class="msmkit-csv",
                            tooltip="Write the whole table (in the order shown) to a CSV file")
-        self._on_click(self.csv.button, self.export_csv)
+        self._buttons.append(self.csv.button)
+        on_click(self.csv.button, self.export_csv)  # a quick write: no background thread
         for w in (self.temperature, self.sort_by, self.ascending, self.max_rows):
             w.observe(self._refresh, names="value")
         intro = widgets.HTML(_render.message_html(
             "Equilibrium populations of the states of the chosen model; free energies are −ln of "
             "the population relative to the most populated state (in kT, and in kJ/mol at the "
             "temperature given)."))
-        self.children = [intro, widgets.HBox([widgets.VBox([self.temperature, self.max_rows]),
+        self.children = [intro, row([widgets.VBox([self.temperature, self.max_rows]),
                                               widgets.VBox([self.sort_by, self.ascending])]),
                          self.status, self.table_html, self.csv]
         self.set_model(model)

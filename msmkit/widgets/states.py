@@ -11,7 +11,7 @@ from ..plots import plot_state_map
 from ..reduce import TICA
 from ..states import Microstates
 from . import _render
-from ._base import DESCRIPTION_WIDTH, Step, button, field, set_value, widgets
+from ._base import DESCRIPTION_WIDTH, Step, button, field, set_value, row, widgets
 
 __all__ = ["StatesPanel"]
 
@@ -41,7 +41,7 @@ class StatesPanel(Step):
         Cluster on every ``stride``-th frame (all frames are labelled).
     seed : int, default 0
     progress : bool, default True
-        Show detailed progress bars while computing.
+        Count units of work (lags, bootstrap samples) on the progress bar, not only stages.
 
     Attributes
     ----------
@@ -59,6 +59,7 @@ class StatesPanel(Step):
     """
 
     labels = traitlets.Any(None)
+    interrupt_thread = True  # scikit-learn's k-means has no cancel points of its own
 
     def __init__(self, trajs, *, features=None, use_tica: bool = True, tica_lag: int = 10, tica_dim: int = 2,
                  n_states: int = 100, method: str = "kmeans", stride: int = 1, seed: int = 0,
@@ -99,7 +100,7 @@ class StatesPanel(Step):
         self._on_click(self.cluster_button, self.make_states)
         self.use_tica.observe(self._tica_switched, names="value")
         self._tica_switched()
-        self.map = widgets.Output(layout=widgets.Layout(min_height="60px", overflow="auto"))
+        self.map = widgets.Output(layout=widgets.Layout(min_height="60px", width="100%", overflow="auto"))
         self.map.add_class("msmkit-state-map")
         self.map.add_class("msmkit-plot")
 
@@ -107,12 +108,13 @@ class StatesPanel(Step):
             f"{len(self._runs)} runs, {sum(self.n_frames)} frames, {len(self.feature_names)} features. Choose "
             f"the features, reduce them to slow coordinates (optional), and cluster the frames into "
             f"microstates."))
-        settings = widgets.HBox([
+        settings = row([
             widgets.VBox([self.features, self.use_tica, self.tica_lag, self.tica_dim]),
             widgets.VBox([self.n_states, self.method, self.stride, self.seed,
-                          widgets.HBox([self.cluster_button, self.progress_bar])]),
+                          widgets.HBox([self.cluster_button, self.cancel_button, self.progress_bar])]),
         ])
-        self.children = [intro, settings, self.details, self.status, self.map]
+        self._plots = [self.map]
+        self.children = [intro, settings, self.status, self.map]
 
     def _known_features(self, features) -> tuple:
         features = [features] if isinstance(features, str) else list(features)
@@ -161,7 +163,7 @@ class StatesPanel(Step):
             self._stage(1, 4, "TICA" if self.use_tica.value else "features")
             tica = None
             if self.use_tica.value:
-                tica = TICA(self.tica_lag.value, dim=self.tica_dim.value, progress=self.progress).fit(runs)
+                tica = TICA(self.tica_lag.value, dim=self.tica_dim.value, progress=False).fit(runs)
                 coords = list(tica.transform(runs))
                 names = tica.get_feature_names_out()
             else:
@@ -169,7 +171,7 @@ class StatesPanel(Step):
                 names = tuple(chosen)
             self._stage(2, 4, "clustering")
             micro = Microstates(self.n_states.value, method=self.method.value, stride=self.stride.value,
-                                seed=self.seed.value, progress=self.progress).fit(coords)
+                                seed=self.seed.value, progress=False).fit(coords)
             self._stage(3, 4, "drawing")
             fig = plot_state_map(coords, micro.centers_, micro.counts_, names=tuple(names))
             _render.show_figure(self.map, fig, alt="microstate map")

@@ -9,7 +9,7 @@ from ..errors import InputError
 from ..plots import plot_chapman_kolmogorov, plot_lag_flow
 from ..validate import chapman_kolmogorov, lag_flow
 from . import _render
-from ._base import MacrostateCount, SetPair, Step, button, field, set_value, widgets
+from ._base import MacrostateCount, SetPair, Step, button, field, set_value, row, widgets
 from ._render import frames
 from .lags import SAMPLING_CAUTION
 
@@ -70,14 +70,14 @@ class ValidationPanel(Step):
 
         self.verdict = widgets.HTML()
         self.verdict.add_class("msmkit-ck-verdict")
-        self.ck_plot = widgets.Output(layout=widgets.Layout(min_height="40px", overflow="auto"))
+        self.ck_plot = widgets.Output(layout=widgets.Layout(min_height="40px", width="100%", overflow="auto"))
         self.ck_plot.add_class("msmkit-ck-plot")
         self.ck_plot.add_class("msmkit-plot")
         self.pair = SetPair("lag flow: set a", "set b", "msmkit-flow-pair", self._pair_changed,
                             "The two sets whose self-transition probabilities are followed")
         self.flow_summary = widgets.HTML()
         self.flow_summary.add_class("msmkit-flow-summary")
-        self.flow_plot = widgets.Output(layout=widgets.Layout(min_height="40px", overflow="auto"))
+        self.flow_plot = widgets.Output(layout=widgets.Layout(min_height="40px", width="100%", overflow="auto"))
         self.flow_plot.add_class("msmkit-lag-flow-plot")
         self.flow_plot.add_class("msmkit-plot")
 
@@ -86,11 +86,12 @@ class ValidationPanel(Step):
             "the transition matrix, T(τ)^k. The test groups the states into macrostates and compares, for every "
             "pair of them, the predicted probability to go from one to the other with the one estimated from the "
             "data at lag kτ. The lag flow below draws the same numbers for two sets as paths toward equilibrium."))
-        settings = widgets.HBox([
+        settings = row([
             widgets.VBox([self.n_sets.field, self.multiples]),
-            widgets.VBox([self.n_samples, self.seed, widgets.HBox([self.run_button, self.progress_bar])]),
+            widgets.VBox([self.n_samples, self.seed, widgets.HBox([self.run_button, self.cancel_button, self.progress_bar])]),
         ])
-        self.children = [intro, settings, self.n_sets.reason, self.details, self.status, self.verdict, self.ck_plot,
+        self._plots = [self.ck_plot, self.flow_plot]
+        self.children = [intro, settings, self.n_sets.reason, self.status, self.verdict, self.ck_plot,
                          widgets.HTML("<b>Lag flow</b>"), self.pair, self.flow_summary, self.flow_plot]
         self.set_labels(labels)
         self.set_model(model)
@@ -141,10 +142,12 @@ class ValidationPanel(Step):
                 raise InputError("there is no model to test yet: make microstates (step 1), then scan and "
                                  "choose a lag (step 2)")
             m = self.n_sets.get(n_sets, self.model)
-            self._stage(1, 3, "testing")
+            self._stage(0, 1, "testing")
+            units = check_int(self.multiples.value, "multiples", minimum=1) * (1 + max(int(self.n_samples.value), 0))
             ck = chapman_kolmogorov(self.model, self.labels, n_sets=m, multiples=self.multiples.value,
-                                    n_samples=self.n_samples.value, seed=self.seed.value, progress=self.progress)
-            self._stage(2, 3, "drawing")
+                                    n_samples=self.n_samples.value, seed=self.seed.value,
+                                    cancel=self._cancel_point(units + 1, what="testing"))
+            self._stage(units, units + 1, "drawing")
             flow = lag_flow(ck, pair=(0, 1))
             _render.show_figure(self.ck_plot, plot_chapman_kolmogorov(ck), alt="Chapman-Kolmogorov test")
             _render.show_figure(self.flow_plot, plot_lag_flow(flow), alt="lag flow")

@@ -27,8 +27,10 @@ class Workbench(widgets.VBox):
 
     Each step is a panel in a tab; the save row below the tabs writes the chosen model. Every
     button is also a method (:meth:`make_states`, :meth:`scan`, :meth:`select_lag`,
-    :meth:`validate`, :meth:`kinetics`, :meth:`save`); the chosen model is :attr:`model`, the
-    last Chapman-Kolmogorov test :attr:`ck` and the macrostates :attr:`macrostates`.
+    :meth:`validate`, :meth:`kinetics`, :meth:`save`, :meth:`save_report`); the chosen model is
+    :attr:`model`, the last Chapman-Kolmogorov test :attr:`ck` and the macrostates
+    :attr:`macrostates`. Buttons compute in a background thread: each long step has a Cancel
+    button (Kernel -> Interrupt cancels too), and :meth:`wait` waits for them from code.
 
     Parameters
     ----------
@@ -98,12 +100,20 @@ class Workbench(widgets.VBox):
                                                               "macrostates of step 5")
         on_click(self.saver.button, self.save)
         _render.show_message(self.saver.status, "Nothing to save yet.")
+        report_name = str(Path(file_name).with_suffix(".html")) if Path(file_name).suffix else f"{file_name}.html"
+        self.reporter = FileRow(report_name, description="report file", button_text="Save report",
+                                css_class="msmkit-report", tooltip="Write one self-contained HTML file with the "
+                                                                   "settings, figures, tables with intervals, "
+                                                                   "diagnostics and provenance of this analysis")
+        on_click(self.reporter.button, self.save_report)
+        _render.show_message(self.reporter.status, "A report needs a model: choose a lag in step 2.")
         header = widgets.HTML(
-            f"<div style='font-size:120%; font-weight:600; margin:2px 0'>msmkit workbench</div>"
+            _render.PLOT_STYLE + f"<div style='font-size:120%; font-weight:600; margin:2px 0'>msmkit workbench</div>"
             f"<div style='color:#555'>{len(lengths)} runs, {sum(lengths)} frames, one frame = {self.dt:g} "
             f"{self.unit}. Work through the steps from left to right; every setting is also an "
             f"argument of a method (see help(Workbench)).</div>")
-        self.children = [header, self.tabs, widgets.HTML("<b>Save the chosen model</b>"), self.saver]
+        self.children = [header, self.tabs, widgets.HTML("<b>Save the chosen model</b>"), self.saver,
+                         widgets.HTML("<b>Hand on the analysis</b>"), self.reporter]
 
     # -- steps -------------------------------------------------------------------------------
     def add_step(self, title: str, panel) -> None:
@@ -118,6 +128,10 @@ class Workbench(widgets.VBox):
             panel.set_model(self.model)
 
     def _labels_changed(self, change):
+        micro, tica = self.states_panel.microstates, self.states_panel.tica
+        if micro is not None:
+            names = (tica.get_feature_names_out() if tica is not None else self.states_panel.settings["features"])
+            self.kinetics_panel.set_centers(micro.centers_, names)
         for _, panel in self.steps:
             if hasattr(panel, "set_labels"):
                 panel.set_labels(change["new"])
@@ -133,11 +147,26 @@ class Workbench(widgets.VBox):
 
     def _show_ready(self):
         m = self.model
-        if m is not None:
-            macro = self.macrostates
-            with_sets = f", with the affinity of {macro.n_sets} macrostates" if macro is not None else ""
-            _render.show_message(self.saver.status, f"Ready to save the model at lag {frames(m.lag)} "
-                                                    f"({m.lag_time:g} {m.unit}), {m.n_states} states{with_sets}.")
+        if m is None:
+            what = ("Nothing to save yet: scan the lags and choose one (step 2)." if self.labels is not None
+                    else "Nothing to save yet.")
+            _render.show_message(self.saver.status, what)
+            _render.show_message(self.reporter.status, "A report needs a model: choose a lag in step 2.")
+            return
+        macro = self.macrostates
+        with_sets = f", with the affinity of {macro.n_sets} macrostates" if macro is not None else ""
+        _render.show_message(self.saver.status, f"Ready to save the model at lag {frames(m.lag)} "
+                                                f"({m.lag_time:g} {m.unit}), {m.n_states} states{with_sets}.")
+        _render.show_message(self.reporter.status, f"Ready to write a report of the model at lag {frames(m.lag)}.")
+
+    def wait(self, timeout=None) -> bool:
+        """Wait for the computations the buttons started in the background; True when none is
+        left running."""
+        return all([panel.wait(timeout) for _, panel in self.steps if hasattr(panel, "wait")])
+
+    def cancel(self) -> bool:
+        """Cancel every running background computation; True when one was running."""
+        return any([panel.cancel() for _, panel in self.steps if hasattr(panel, "cancel")])
 
     # -- the chosen results ------------------------------------------------------------------
     @property
@@ -243,6 +272,48 @@ class Workbench(widgets.VBox):
                      if "affinity" in extras else "")
         report(self.saver.status, f"Saved the model at lag {frames(model.lag)}{with_sets} to {written.resolve()} "
                                   f"(load it with msmkit.load_model).", caught)
+        return written
+
+    def save_report(self, path=None, *, overwrite=None):
+        """Write a self-contained HTML report (:func:`msmkit.write_report`) of the chosen model
+        with the lag scan, the last Chapman-Kolmogorov test and the macrostates of this model,
+        and the settings the microstates were made with.
+
+        Parameters
+        ----------
+        path : str or Path, optional
+            Default: the report file field. ``.html`` is appended when there is no suffix.
+        overwrite : bool, optional
+            Default: the report row's overwrite switch.
+
+        Returns
+        -------
+        Path
+        """
+        from ..report import write_report
+
+        with action(self.reporter.status, "Writing the report", buttons=[self.reporter.button]) as caught:
+            if path is not None:
+                self.reporter.name.value = str(path)
+            if overwrite is not None:
+                self.reporter.overwrite.value = bool(overwrite)
+            model = self.model
+            if model is None:
+                raise InputError("there is no model to report yet: make microstates (step 1), then scan and "
+                                 "choose a lag (step 2)")
+            name = self.reporter.name.value.strip()
+            if not name:
+                raise InputError("report file: give a file name")
+            ck = self.ck if self.ck is not None and int(self.ck.lag) == int(model.lag) else None
+            macro = self.macrostates
+            if macro is not None and not np.array_equal(macro.states, model.states):
+                macro = None
+            written = write_report(Path(name), model, scan=self.scan_result, ck=ck, macrostates=macro,
+                                   settings=self._provenance()[1], overwrite=self.reporter.overwrite.value)
+        parts = ["the lag scan"] + (["the Chapman-Kolmogorov test"] if ck is not None else []) + (
+            ["the macrostates"] if macro is not None else [])
+        report(self.reporter.status, f"Wrote the report of the model at lag {frames(model.lag)} with "
+                                     f"{' and '.join(parts)} to {written.resolve()} (open it in a browser).", caught)
         return written
 
     def _provenance(self):
