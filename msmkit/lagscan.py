@@ -197,7 +197,8 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
             bar.update(1)
             if n_samples:
                 initial = np.zeros(n)
-                initial[model.states] = model.equilibrium
+                # positive exactly on the model's states: the samples are restricted to them
+                initial[model.states] = np.maximum(model.equilibrium, np.finfo(float).tiny)
                 sampled = sample_rows(weights, rows)  # (n_samples, n*n): all samples in one product
                 if remote is not None:
                     samples[a] = _dist.bootstrap_timescales(client, sampled, n, lag, dt, reversible,
@@ -249,8 +250,16 @@ def _check_lags(lags, runs) -> list[int]:
 
 
 def _sample_timescales(row, n, lag, dt, reversible, initial, k) -> np.ndarray:
-    """Timescales of one bootstrap sample given as a flattened count row; NaN-free, may be short."""
-    fit = fit_sample(_unflatten(row, n), reversible=reversible, initial=initial)
+    """Timescales of one bootstrap sample given as a flattened count row; NaN-free, may be short.
+
+    ``initial`` is the full-data model's stationary vector over all ``n`` labels, zero outside
+    the model's states. The sample is restricted to those states (the largest connected set
+    among them): a sample drawn mostly from runs of a component the full-data model dropped
+    must not report that component's timescales.
+    """
+    states = np.flatnonzero(np.asarray(initial) > 0)
+    C = _unflatten(row, n)[states][:, states]
+    fit = fit_sample(C, reversible=reversible, initial=np.asarray(initial)[states])
     if fit is None:
         return np.empty(0)
     _, T, pi = fit

@@ -251,3 +251,23 @@ def test_bootstrap_on_threads_leaves_warning_filters_alone(sample_chain, reversi
     assert warnings.filters == before
     b = lag_scan(runs, [1, 2], n_samples=12, seed=5)  # threads do not change the answer
     np.testing.assert_array_equal(a.samples, b.samples)
+
+
+def test_samples_stay_on_the_full_data_states(sample_chain):
+    # Seven runs of a slow two-state chain (labels 0, 1) and three runs of a fast one on labels
+    # 2, 3: the full-data model keeps the slow pair. A sample drawing mostly fast runs must still
+    # be fitted on states 0 and 1, never report the fast system's timescale. Exact two-state
+    # timescales -1 / ln(1 - 2p) (eigenvalue 1 - 2p of [[1-p, p], [p, 1-p]], common practice).
+    def two_state(p):
+        return np.array([[1 - p, p], [p, 1 - p]])
+
+    slow = sample_chain(two_state(0.01), 1500, n_runs=7, seed=31)
+    fast = [r + 2 for r in sample_chain(two_state(0.2), 1500, n_runs=3, seed=32)]
+    slow_t, fast_t = -1 / np.log(1 - 0.02), -1 / np.log(1 - 0.4)  # 49.5 and 1.96 steps
+    scan = quiet(lag_scan, slow + fast, [1, 2], n_processes=1, n_samples=60, seed=0)
+    assert scan.model(1).states.tolist() == [0, 1]
+    assert np.all(np.isfinite(scan.samples))
+    # the fast timescale lies more than 10x below every sample and the interval
+    assert np.min(scan.samples) > 10 * fast_t
+    assert np.all(scan.lower > 10 * fast_t)
+    assert np.all(scan.lower < slow_t) and np.all(scan.upper > slow_t)
