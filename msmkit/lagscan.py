@@ -13,16 +13,17 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
+import scipy.linalg as la
 
 from ._bootstrap import BLOCK_UNITS, MIN_RUNS_FOR_RUN_BOOTSTRAP  # noqa: F401  (re-exported constants)
-from ._bootstrap import fit_sample, percentile_interval, resampling_plan, sample_rows
+from ._bootstrap import StateCounts, fit_sample, percentile_interval, resampling_plan, sample_rows
 from ._bootstrap import progress_bar as _progress
 from ._bootstrap import unflatten as _unflatten
 from ._checks import as_label_trajectories, check_dt, check_int, check_probability, check_unit
 from .counts import run_count_rows
 from .errors import InputError
 from .model import MarkovModel, fingerprint, model_from_counts, _now, _version
-from .spectral import eigen_decomposition, implied_timescales
+from .spectral import _magnitude_order, eigen_decomposition, implied_timescales
 
 __all__ = ["LagScan", "lag_scan", "suggest_lag"]
 
@@ -199,13 +200,18 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
                 initial = np.zeros(n)
                 # positive exactly on the model's states: the samples are restricted to them
                 initial[model.states] = np.maximum(model.equilibrium, np.finfo(float).tiny)
-                sampled = sample_rows(weights, rows)  # (n_samples, n*n): all samples in one product
                 if remote is not None:
+                    sampled = sample_rows(weights, rows)  # (n_samples, n*n): all samples in one product
                     samples[a] = _dist.bootstrap_timescales(client, sampled, n, lag, dt, reversible,
                                                             initial, n_processes, bar)
                     continue
-                def one(b, sampled=sampled, n=n, lag=lag, initial=initial):
-                    return _sample_timescales(sampled.getrow(b), n, lag, dt, reversible, initial, n_processes)
+                on_states = StateCounts(rows, n, model.states)
+                values = on_states.values(weights)  # all samples in one product
+                start = model.equilibrium
+
+                def one(b, values=values, on_states=on_states, lag=lag, start=start):
+                    return _fitted_timescales(on_states.matrix(values[b]), lag, dt, reversible, start,
+                                              n_processes)
 
                 # samples are independent; the estimate and eigen-solve release the interpreter lock
                 for b, got in enumerate(pool.map(one, range(n_samples))):
@@ -259,12 +265,42 @@ def _sample_timescales(row, n, lag, dt, reversible, initial, k) -> np.ndarray:
     """
     states = np.flatnonzero(np.asarray(initial) > 0)
     C = _unflatten(row, n)[states][:, states]
-    fit = fit_sample(C, reversible=reversible, initial=np.asarray(initial)[states])
+    return _fitted_timescales(C, lag, dt, reversible, np.asarray(initial)[states], k)
+
+
+def _fitted_timescales(C, lag, dt, reversible, initial, k) -> np.ndarray:
+    """Timescales of one bootstrap sample's counts among the model's states (``initial``: the
+    model's stationary vector, the warm start); NaN-free, may be short."""
+    fit = fit_sample(C, reversible=reversible, initial=initial)
     if fit is None:
         return np.empty(0)
     _, T, pi = fit
-    w = eigen_decomposition(T, pi, k=min(k + 1, T.shape[0]), reversible=reversible)
+    if reversible:
+        w = _leading_eigenvalues(T, pi, min(k + 1, T.shape[0]))
+    else:
+        w = eigen_decomposition(T, pi, k=min(k + 1, T.shape[0]), reversible=False)
     return implied_timescales(w[1:k + 1], lag, dt)
+
+
+def _leading_eigenvalues(T, pi, k) -> np.ndarray:
+    """The ``k`` largest-magnitude eigenvalues of a reversible T, largest first, from a partial
+    symmetric solve (only the k largest, and the k smallest when they could compete in magnitude).
+
+    The k of largest magnitude are among the k largest and the k smallest algebraic ones. All
+    eigenvalues lie in Gershgorin discs, so none is below min_i (2 T_ii - 1) (Horn & Johnson,
+    Matrix Analysis, Thm. 6.1.1): when that bound is above -|lambda_k|, the negative end is skipped.
+    """
+    n = T.shape[0]
+    if k >= n - 1:
+        return eigen_decomposition(T, pi, k=k, reversible=True)
+    s = np.sqrt(pi)
+    A = s[:, None] * T / s[None, :]
+    A = 0.5 * (A + A.T)
+    w = la.eigh(A, eigvals_only=True, subset_by_index=[n - k, n - 1], check_finite=False)
+    if 2 * np.min(np.diag(T)) - 1 < -np.min(np.abs(w)):
+        low = la.eigh(A, eigvals_only=True, subset_by_index=[0, k - 1], check_finite=False)
+        w = np.concatenate([w, low])
+    return w[_magnitude_order(w)][:k]
 
 
 def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow: int = 2, rtol: float = 0.05,
