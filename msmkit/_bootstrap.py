@@ -73,7 +73,7 @@ class StateCounts:
     n : int
         Number of labels of the flattened rows.
     states : ndarray of int
-        The model's states (labels), in the order of its rows.
+        The model's states (labels), in the order of the model's rows.
     """
 
     def __init__(self, rows, n: int, states):
