@@ -19,12 +19,42 @@ import numpy as np
 import scipy.sparse as sp
 
 from .counts import kept_states
+from .errors import DiagnosticWarning, InputError
 from .estimate import estimate_transition_matrix
 
 #: with fewer runs than this, the bootstrap resamples contiguous blocks instead of whole runs
 MIN_RUNS_FOR_RUN_BOOTSTRAP = 5
 #: target number of resampling units when blocks are used
 BLOCK_UNITS = 20
+
+
+#: interval methods of :func:`bootstrap_interval`
+INTERVALS = ("bca", "bc", "percentile")
+#: expected number of samples beyond each end of the interval below which a warning is issued
+TAIL_SAMPLES = 5
+
+
+def check_interval(interval) -> str:
+    """The interval method, or InputError naming the choices."""
+    if not isinstance(interval, str) or interval not in INTERVALS:
+        raise InputError(f"interval must be one of {', '.join(map(repr, INTERVALS))}, but got {interval!r}")
+    return interval
+
+
+def samples_needed(confidence: float) -> int:
+    """Fewest bootstrap samples that leave :data:`TAIL_SAMPLES` samples expected beyond each end
+    of an interval at ``confidence`` (200 at 0.95)."""
+    return int(math.ceil(TAIL_SAMPLES / ((1 - confidence) / 2) - 1e-9))
+
+
+def warn_few_samples(n_samples: int, confidence: float, where: str, stacklevel: int = 2) -> None:
+    """DiagnosticWarning when ``0 < n_samples`` is too few for intervals at ``confidence``."""
+    need = samples_needed(confidence)
+    if 0 < n_samples < need:
+        warnings.warn(f"{where}: {n_samples} bootstrap samples are too few for {100 * confidence:g}% intervals: "
+                      f"their ends rest on fewer than {TAIL_SAMPLES} samples each, and such intervals cover the "
+                      f"truth less often than stated; use n_samples >= {need}.", DiagnosticWarning,
+                      stacklevel=stacklevel + 1)
 
 
 def resampling_plan(n_runs: int, n_samples: int, rng) -> tuple[int, np.ndarray, list[str]]:

@@ -271,3 +271,36 @@ def test_samples_stay_on_the_full_data_states(sample_chain):
     assert np.min(scan.samples) > 10 * fast_t
     assert np.all(scan.lower > 10 * fast_t)
     assert np.all(scan.lower < slow_t) and np.all(scan.upper > slow_t)
+
+
+# --------------------------------------------------------------------------- coverage
+
+def test_too_few_samples_warn(sample_chain):
+    runs = sample_chain(true_chain(), 300, n_runs=6, seed=2)
+    with pytest.warns(DiagnosticWarning, match=r"20 bootstrap samples are too few for 95% intervals.*n_samples >= 200"):
+        lag_scan(runs, [1], n_processes=1, n_samples=20, seed=0)
+    with pytest.warns(DiagnosticWarning, match=r"n_samples >= 100"):
+        lag_scan(runs, [1], n_processes=1, n_samples=20, seed=0, confidence=0.9)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", DiagnosticWarning)
+        lag_scan(runs, [1], n_processes=1, n_samples=0)
+    with pytest.raises(InputError, match=r"interval must be one of 'bca', 'bc', 'percentile'"):
+        lag_scan(runs, [1], n_samples=0, interval="student")
+
+
+@pytest.mark.slow
+def test_interval_coverage_on_a_known_chain(sample_chain):
+    # Replicates of 10 runs from a known chain; the share of 95 % intervals that hold the exact
+    # slowest timescale (scipy.linalg.eig of the truth) must be 0.95 within 3 binomial standard
+    # errors, sqrt(0.95 * 0.05 / R) (common practice). Plain percentile intervals over 10 runs
+    # cover about 0.90 (bench/bench_coverage.py), which this bound is meant to catch with R = 80.
+    T = true_chain()
+    exact = -1 / np.log(np.sort(la.eigvals(T).real)[::-1][1])
+    R = 80
+    hits = []
+    for rep in range(R):
+        runs = sample_chain(T, 400, n_runs=10, seed=1000 + rep)
+        scan = quiet(lag_scan, runs, [1], n_processes=1, n_samples=200, seed=rep)
+        hits.append(scan.lower[0, 0] <= exact <= scan.upper[0, 0])
+    coverage = np.mean(hits)
+    assert abs(coverage - 0.95) <= 3 * np.sqrt(0.95 * 0.05 / R), coverage
