@@ -248,10 +248,14 @@ def _timescales_of(weights, rows, n, model, lag, dt, reversible, k, pool, bar, c
     def one(b):
         return _fitted_timescales(on_states.matrix(values[b]), lag, dt, reversible, model.equilibrium, k)
 
-    # samples are independent; the estimate and eigen-solve release the interpreter lock
-    for b, got in enumerate(pool.map(one, range(weights.shape[0]))):
-        out[b, :got.size] = got
-        bar.update(1)
+    # samples are independent and run on the pool's threads (the estimate and eigen-solve release
+    # the interpreter lock); one BLAS thread each, or the threads oversubscribe the cores
+    from threadpoolctl import threadpool_limits  # a dependency of scikit-learn
+
+    with threadpool_limits(1, user_api="blas"):
+        for b, got in enumerate(pool.map(one, range(weights.shape[0]))):
+            out[b, :got.size] = got
+            bar.update(1)
     return out
 
 
