@@ -53,6 +53,9 @@ def main():
           f"{a.states} states: {t_scan:.3g} s")
     print(f"single-lag build_model: {single:.3g} s; scan / (20 x single) = {t_scan / (20 * single):.3g}; "
           f"scan / (20 x 51 x single) = {t_scan / (20 * (1 + a.samples) * single):.3g}")
+    per_sample = max(t_scan - 20 * single, 0.0) / (20 * a.samples)
+    print(f"one bootstrap sample (scan beyond 20 builds, per sample) / one build_model = {per_sample / single:.3g} "
+          f"(target: scan / (20 x single) <= 5, a sample <= 0.04 of a build)")
     print(f"suggested lag: {scan.suggested_lag} ({scan.reason[:80]}...)")
 
 

@@ -103,7 +103,7 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
             w, v = la.eigh(A)
         else:
             w, v = la.eigvalsh(A), None
-        order = _magnitude_order(w)[:k]
+        order = magnitude_order(w)[:k]
         if not vectors:
             return w[order]
         right = v[:, order] / s[:, None]
@@ -112,7 +112,7 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
         w, v = la.eig(T)
     else:
         w, v = la.eigvals(T), None
-    order = _magnitude_order(w)[:k]
+    order = magnitude_order(w)[:k]
     w = w[order]
     if np.all(np.abs(w.imag) <= 1e-12 * np.maximum(np.abs(w), 1.0)):
         w = w.real
@@ -147,11 +147,11 @@ def _leading_eigen(T, pi, k, reversible, vectors):
     except (sla.ArpackNoConvergence, sla.ArpackError):
         full = eigen_decomposition(T, pi, reversible=reversible, vectors=vectors)  # dense
         return (full[0][:k], full[1][:, :k]) if vectors else full[:k]
-    order = _magnitude_order(w)
+    order = magnitude_order(w)
     return (w[order], v[:, order]) if vectors else w[order]
 
 
-def _magnitude_order(w: np.ndarray) -> np.ndarray:
+def magnitude_order(w: np.ndarray) -> np.ndarray:
     """Indices sorting eigenvalues by magnitude, largest first, with the eigenvalue nearest 1 (the
     stationary one) always first: on a periodic chain others share the same magnitude (-1, e^{2 pi i/3})
     and a plain sort by magnitude may put one of them in front."""
