@@ -13,7 +13,7 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse import csgraph
 
-from ._checks import as_label_trajectories, check_int, check_lag
+from ._checks import as_label_trajectories, check_bool, check_int, check_lag
 from .errors import InputError
 
 __all__ = ["count_transitions", "communicating_classes", "kept_states", "run_count_rows"]
@@ -95,6 +95,7 @@ def count_transitions(labels, lag, *, n_states=None, every_frame=True, client=No
            [1, 1]])
     """
     runs, lag, n_states = _prepare(labels, lag, n_states)
+    every_frame = check_bool(every_frame, "every_frame")
     if client is not None:
         from . import distributed as _dist
 
@@ -220,6 +221,7 @@ def run_count_rows(labels, lag, *, n_states=None, every_frame=True, blocks_per_r
     n_states : int
     """
     runs, lag, n_states = _prepare(labels, lag, n_states)
+    every_frame = check_bool(every_frame, "every_frame")
     blocks_per_run = check_int(blocks_per_run, "blocks_per_run", minimum=1)
     return _stack_rows([_run_rows(run, lag, n_states, every_frame, blocks_per_run) for run in runs],
                             n_states), n_states

@@ -26,7 +26,7 @@ import numpy as np
 import scipy.linalg as la
 import scipy.sparse as sp
 
-from ._checks import as_transition_matrix
+from ._checks import as_transition_matrix, check_bool
 from .errors import DiagnosticWarning, InputError
 
 __all__ = [
@@ -401,6 +401,7 @@ def splitting_probability(T, source, target, *, reverse_time: bool = False, pi=N
     array([0. , 0.1, 0.9, 1. ])
     """
     T = _as_transition_matrix(T)
+    reverse_time = check_bool(reverse_time, "reverse_time")
     n = T.shape[0]
     labels = _as_labels(labels, n)
     source, target = _source_and_target(source, target, n, labels)

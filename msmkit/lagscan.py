@@ -18,7 +18,8 @@ from ._bootstrap import BLOCK_UNITS, MIN_RUNS_FOR_RUN_BOOTSTRAP  # noqa: F401  (
 from ._bootstrap import fit_sample, percentile_interval, resampling_plan, sample_rows
 from ._bootstrap import progress_bar as _progress
 from ._bootstrap import unflatten as _unflatten
-from ._checks import as_label_trajectories, check_dt, check_int, check_probability, check_unit
+from ._checks import (as_label_trajectories, check_bool, check_dt, check_int, check_probability, check_seed,
+                      check_tolerance, check_unit)
 from .counts import run_count_rows
 from .errors import InputError
 from .model import MarkovModel, fingerprint, model_from_counts, _now, _version
@@ -159,7 +160,9 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     n_samples = check_int(n_samples, "n_samples", minimum=0)
     n_slow = check_int(n_slow, "n_slow", minimum=1)
     confidence = check_probability(confidence, "confidence")
-    rng = np.random.default_rng(seed)
+    reversible, every_frame = check_bool(reversible, "reversible"), check_bool(every_frame, "every_frame")
+    rtol, progress = check_tolerance(rtol, "rtol"), check_bool(progress, "progress")
+    rng = np.random.default_rng(check_seed(seed))
 
     blocks, weights, notes = resampling_plan(len(runs), n_samples, rng)
 

@@ -15,7 +15,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from ._checks import as_label_trajectories, as_state_set, as_transition_matrix, check_dt, check_int, check_unit
+from ._checks import (as_label_trajectories, as_state_set, as_transition_matrix, check_bool, check_dt, check_int,
+                      check_seed, check_unit)
 from .counts import _count_flat, _flat_to_csr, _prepare, kept_states
 from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix
@@ -206,6 +207,7 @@ class MarkovModel:
         from .macro import find_macrostates
         n_sets = check_int(n_sets, "n_sets", minimum=1, maximum=self.n_states)
         n_samples = check_int(n_samples, "n_samples", minimum=0)
+        optimize, seed = check_bool(optimize, "optimize"), check_seed(seed)
         if n_samples and labels is None:
             raise InputError("n_samples > 0 needs labels= (the label trajectories of the model) to resample")
         macro = find_macrostates(self.propagator, self.equilibrium, n_sets,
@@ -231,6 +233,7 @@ class MarkovModel:
         from .counts import run_count_rows
         runs = as_label_trajectories(labels)
         n_samples = check_int(n_samples, "n_samples", minimum=1)
+        seed = check_seed(seed)
         n_lab = max(int(self.states.max()) + 1, max(int(r.max()) for r in runs if r.size) + 1)
         blocks, weights, _ = resampling_plan(len(runs), n_samples, np.random.default_rng(seed))
         rows, _ = run_count_rows(runs, self.lag, n_states=n_lab, blocks_per_run=blocks)
@@ -275,7 +278,7 @@ class MarkovModel:
         reach ``target`` before ``source``; backward, to have come from ``source`` last."""
         from .kinetics import splitting_probability
         return splitting_probability(self.propagator, self.index_of(source, "source"),
-                         self.index_of(target, "target"), reverse_time=backward,
+                         self.index_of(target, "target"), reverse_time=reverse_time,
                          pi=self.equilibrium, labels=self.states)
 
     def transition_paths(self, source, target):
@@ -317,21 +320,31 @@ class MarkovModel:
         """
         T = as_transition_matrix(propagator, "propagator", tol=1e-8, irreducible=True)
         dt, unit = check_dt(dt), check_unit(unit)
+        reversible = None if reversible is None else check_bool(reversible, "reversible")
         n = T.shape[0]
         labels = np.arange(n) if states is None else np.asarray(states)
         if labels.shape != (n,) or labels.dtype.kind not in "iu" or np.unique(labels).size != n:
             raise InputError(f"states must be {n} distinct integer labels, one per row of propagator")
         pi = equilibrium_distribution(T)
+        balanced = obeys_detailed_balance(T, pi, rtol=REVERSIBLE_RTOL)
         if reversible is None:
-            reversible = obeys_detailed_balance(T, pi)
+            reversible = balanced
+        elif reversible and not balanced:
+            raise InputError("reversible=True, but propagator does not obey detailed balance "
+                             "(pi_i T_ij != pi_j T_ji): its spectrum may be complex; pass reversible=False "
+                             "or None (detect it)")
         model = cls(T, pi, labels.astype(np.int64), 1, dt, unit, bool(reversible),
                     metadata={"source": "transition matrix", "package_version": _version(),
                               "created": _now()})
         model.diagnostics = chain_diagnostics(model.spectrum(REPORTED + 1), lag=1, dt=dt, unit=unit,
-                                              n_reported=min(REPORTED, n - 1))
+                                              n_reported=min(REPORTED, n - 1), connected=True)
         for line in model.diagnostics:
             warnings.warn(line, DiagnosticWarning, stacklevel=2)
         return model
+
+
+#: relative tolerance of detailed balance for a matrix given as reversible (typed-in values carry rounding)
+REVERSIBLE_RTOL = 1e-6
 
 
 def _now() -> str:
@@ -387,6 +400,7 @@ def build_model(labels, lag, *, dt: float = 1.0, unit: str = "step", reversible:
     """
     runs, lag, n = _prepare(labels, lag, n_states)
     dt, unit = check_dt(dt), check_unit(unit)
+    reversible, every_frame = check_bool(reversible, "reversible"), check_bool(every_frame, "every_frame")
     flat = _count_flat(runs, lag, n, every_frame)
     metadata = {
         "parameters": {"lag": lag, "dt": dt, "unit": unit, "reversible": bool(reversible),
@@ -445,7 +459,7 @@ def model_from_counts(counts: sp.csr_matrix, lag: int, *, dt: float, unit: str, 
         model.diagnostics += chain_diagnostics(model.spectrum(REPORTED + 1), lag=lag, dt=dt, unit=unit,
                                                row_counts=row_counts, states=model.states,
                                                dropped_states=dropped, kept_fraction=kept_fraction,
-                                               n_reported=min(REPORTED, model.n_states - 1))
+                                               n_reported=min(REPORTED, model.n_states - 1), connected=True)
     if warn:
         for line in model.diagnostics:
             warnings.warn(line, DiagnosticWarning, stacklevel=3)

@@ -26,8 +26,8 @@ import scipy.linalg as la
 
 from ._bootstrap import (fit_sample, percentile_interval, progress_bar, resampling_plan, sample_rows,
                          unflatten)
-from ._checks import (_short, as_float_trajectories, as_label_trajectories, as_state_set, check_dt, check_int,
-                      check_probability, check_unit)
+from ._checks import (_short, as_float_trajectories, as_label_trajectories, as_state_set, check_bool, check_dt,
+                      check_int, check_probability, check_seed, check_unit)
 from .counts import _count_flat, run_count_rows
 from .errors import DiagnosticWarning, InputError
 from .model import MarkovModel, build_model, fingerprint
@@ -239,6 +239,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=5, n_
     n_samples = check_int(n_samples, "n_samples", minimum=0)
     confidence = check_probability(confidence, "confidence")
     tolerance = check_probability(tolerance, "tolerance")
+    seed = check_seed(seed)
     _check_reach(runs, model, multiples)
     notes = []
     sets, how = _resolve_sets(model, sets, n_sets)
@@ -992,7 +993,8 @@ def cross_validate(trajs, n_states=None, lags=1, *, n_folds=5, k=None, reversibl
     if len(lag_list) > 1:
         notes.append("VAMP-2 scores fall with the lag for any model; compare candidates at the same lag.")
 
-    rng = np.random.default_rng(seed)
+    reversible = check_bool(reversible, "reversible")
+    rng = np.random.default_rng(check_seed(seed))
     folds = np.array_split(rng.permutation(len(runs)), n_folds)
     n_rows = 1 if candidates is None else len(candidates)
     scores = np.full((n_rows, len(lag_list), n_folds), np.nan)
