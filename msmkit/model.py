@@ -331,7 +331,7 @@ class MarkovModel:
             reversible = balanced
         elif reversible and not balanced:
             raise InputError("reversible=True, but propagator does not obey detailed balance "
-                             "(pi_i T_ij != pi_j T_ji): its spectrum may be complex; pass reversible=False "
+                             "(pi_i T_ij != pi_j T_ji), so the spectrum may be complex; pass reversible=False "
                              "or None (detect it)")
         model = cls(T, pi, labels.astype(np.int64), 1, dt, unit, bool(reversible),
                     metadata={"source": "transition matrix", "package_version": _version(),

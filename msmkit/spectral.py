@@ -291,7 +291,7 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, row_counts
                 found.append(f"An eigenvalue other than the stationary one lies within {UNIT_CIRCLE_TOL:g} of 1 "
                              "although every kept state reaches every other: the slowest process takes more "
                              f"than about {1 / UNIT_CIRCLE_TOL:.0e} lag times, far beyond what the data resolve; "
-                             "its timescale and the populations across that barrier are poorly determined.")
+                             "that timescale and the populations across the barrier are poorly determined.")
             else:
                     found.append("More than one eigenvalue equals 1: the kept states split into parts that never "
                              "exchange at this lag, so there is no unique equilibrium; check connectivity.")
