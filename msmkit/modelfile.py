@@ -354,7 +354,7 @@ def load_model(path):
 
 
 def read_arrays(path: Path) -> dict:
-    """The known arrays of a model file, each checked from its header before it is read."""
+    """The known arrays of a model file, each checked from the header before it is read."""
     try:
         with open(path, "rb") as fh:
             magic = fh.read(6)
@@ -398,7 +398,7 @@ def _known_members(zf: zipfile.ZipFile, path) -> dict:
 
 
 def _member_header(zf, info, key, path):
-    """(shape, fortran_order, dtype, header_bytes) of one member, read from its first bytes."""
+    """(shape, fortran_order, dtype, header_bytes) of one member, read from the first bytes."""
     with zf.open(info) as fh:
         try:
             version = np.lib.format.read_magic(fh)
@@ -454,7 +454,7 @@ def _read_member(zf, info, header, key, path) -> np.ndarray:
                 raise ModelFileError(f"{path}: key '{key}' ends early: truncated or damaged")
             got += k
         if fh.read(1):
-            raise ModelFileError(f"{path}: key '{key}' holds more data than its header declares")
+            raise ModelFileError(f"{path}: key '{key}' holds more data than the header declares")
     return out.reshape(shape, order="F" if fortran else "C")
 
 
