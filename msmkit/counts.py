@@ -18,6 +18,12 @@ from .errors import InputError
 
 __all__ = ["count_transitions", "communicating_classes", "kept_states", "run_count_rows"]
 
+#: count matrices of at most this many cells (n_states**2) are tallied densely with np.bincount (32 MiB);
+#: larger ones by sorting the pair codes, so that memory follows the pairs seen, not the largest label
+DENSE_MAX_CELLS = 1 << 22
+#: largest count matrix side: its CSR row pointers alone take 8 bytes per state (128 MiB here)
+MAX_STATES = 1 << 24
+
 #: codes inspected to decide whether run-length encoding pays off, and the change rate below which it does
 RLE_PROBE = 100_000
 RLE_CHANGE_FRACTION = 0.35
@@ -52,9 +58,13 @@ def _prepare(labels, lag, n_states):
     if largest < 0:
         raise InputError("labels hold no assigned frame: every label is -1")
     if n_states is None:
+        if largest >= MAX_STATES:
+            raise InputError(f"labels go up to {largest}, which would make a count matrix of {largest + 1} rows; "
+                             f"labels must be below {MAX_STATES}: renumber the visited states 0..n-1 first "
+                             f"(e.g. np.unique(labels, return_inverse=True))")
         n_states = largest + 1
     else:
-        n_states = check_int(n_states, "n_states", minimum=1)
+        n_states = check_int(n_states, "n_states", minimum=1, maximum=MAX_STATES)
         if n_states <= largest:
             raise InputError(f"n_states must exceed the largest label ({largest}), but got {n_states}; "
                              f"leave n_states=None to infer it")
@@ -99,10 +109,15 @@ def count_transitions(labels, lag, *, n_states=None, every_frame=True, client=No
     if client is not None:
         from . import distributed as _dist
 
-        flat = _dist.count_flat(client, runs, lag, n_states, every_frame)
-    else:
-        flat = _count_flat(runs, lag, n_states, every_frame)
-    return _flat_to_csr(flat, n_states)
+        return _flat_to_csr(_dist.count_flat(client, runs, lag, n_states, every_frame), n_states)
+    return count_csr(runs, lag, n_states, every_frame)
+
+
+def count_csr(runs, lag, n_states, every_frame) -> sp.csr_matrix:
+    """Counts of checked runs as CSR: dense tally for small matrices, sorted pair codes for large ones."""
+    if n_states * n_states <= DENSE_MAX_CELLS:
+        return _flat_to_csr(_count_flat(runs, lag, n_states, every_frame), n_states)
+    return _pairs_to_csr(*_count_pairs(runs, lag, n_states, every_frame), n_states)
 
 
 #: Pair codes counted per histogram pass: bounds the temporary buffer to 32 MiB however many
@@ -142,27 +157,62 @@ def _count_flat(runs, lag, n_states, every_frame) -> np.ndarray:
 def _count_flat_serial(runs, lag, n_states, every_frame, block) -> np.ndarray:
     """Counts of all runs as one flat int64 vector of length n_states**2, on this thread.
 
-    The pair codes are written into one preallocated buffer of at most :data:`COUNT_BLOCK`
-    entries (two in-place passes per piece of a run, no temporaries, no concatenation), which
-    is counted each time it fills, so the extra memory stays bounded for any number of frames.
-    Label trajectories of molecular dynamics are sticky -- consecutive frames mostly keep their
-    state, so consecutive pair codes repeat -- and then the codes are run-length encoded
-    first, which makes the scattered histogram update (the costly part) several times shorter.
+    The pair codes come in blocks of at most ``block`` (see :func:`_code_blocks`), each counted
+    by one histogram pass into the flat vector.
+    """
+    size = n_states * n_states
+    total = np.zeros(size, dtype=np.int64)
+    for codes in _code_blocks(runs, lag, n_states, every_frame, block):
+        total += _histogram(codes, size)
+    return total
+
+
+def _count_pairs(runs, lag, n_states, every_frame):
+    """Counts of all runs as (sorted distinct pair codes, their counts), both int64.
+
+    Memory follows the number of distinct pairs seen (plus one block of codes), whatever the
+    largest label: each block is reduced to its distinct codes by sorting, and the blocks' tallies
+    are merged the same way at the end.
+    """
+    codes, counts = [], []
+    for block in _code_blocks(runs, lag, n_states, every_frame, COUNT_BLOCK):
+        u, c = _distinct_counts(block)
+        codes.append(u)
+        counts.append(c)
+    if not codes:
+        return np.empty(0, np.int64), np.empty(0, np.int64)
+    if len(codes) == 1:
+        return codes[0], counts[0]
+    u, inverse = np.unique(np.concatenate(codes), return_inverse=True)
+    return u, np.bincount(inverse, weights=np.concatenate(counts), minlength=u.size).astype(np.int64)
+
+
+def _distinct_counts(codes: np.ndarray):
+    """Sorted distinct values of ``codes`` and how often each occurs (run-length encoded first
+    when consecutive codes repeat, as they do for sticky label trajectories)."""
+    change = np.flatnonzero(codes[1:] != codes[:-1]) + 1
+    if change.size < RLE_CHANGE_FRACTION * max(codes.size - 1, 1):
+        starts = np.concatenate(([0], change))
+        values, lengths = codes[starts], np.diff(starts, append=codes.size)
+    else:
+        values, lengths = codes, None
+    u, inverse = np.unique(values, return_inverse=True)
+    counts = np.bincount(inverse, weights=lengths, minlength=u.size).astype(np.int64)
+    return u.astype(np.int64, copy=False), counts
+
+
+def _code_blocks(runs, lag, n_states, every_frame, block):
+    """Yield the flat pair codes ``i * n_states + j`` of all runs in blocks of at most ``block``.
+
+    The codes are written into one preallocated buffer (two in-place passes per piece of a run,
+    no temporaries, no concatenation), which is yielded each time it fills -- the consumer must
+    use it before asking for the next block -- so the extra memory stays bounded for any number
+    of frames. Pairs with an end labelled -1 are left out.
     """
     step = 1 if every_frame else lag
     sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
-    size = n_states * n_states
     buf = np.empty(max(min(sum(sizes), block), 1), dtype=np.intp)
-    total = None
     filled = 0
-
-    def flush():
-        nonlocal total, filled
-        if filled:
-            got = _histogram(buf[:filled], size)
-            total = got if total is None else total + got
-            filled = 0
-
     for run, m in zip(runs, sizes):
         if m == 0:
             continue
@@ -170,7 +220,8 @@ def _count_flat_serial(runs, lag, n_states, every_frame, block) -> np.ndarray:
         for lo in range(0, m, buf.size):
             hi = min(m, lo + buf.size)
             if filled + (hi - lo) > buf.size:
-                flush()
+                yield buf[:filled]
+                filled = 0
             start = run[lo * step:(hi - 1) * step + 1:step]
             end = run[lo * step + lag:(hi - 1) * step + lag + 1:step]
             view = buf[filled:filled + (hi - lo)]
@@ -183,8 +234,8 @@ def _count_flat_serial(runs, lag, n_states, every_frame, block) -> np.ndarray:
                 filled += kept
             else:
                 filled += hi - lo
-    flush()
-    return np.zeros(size, dtype=np.int64) if total is None else total
+    if filled:
+        yield buf[:filled]
 
 
 def _histogram(codes: np.ndarray, size: int) -> np.ndarray:
@@ -205,6 +256,13 @@ def _flat_to_csr(flat: np.ndarray, n_states: int) -> sp.csr_matrix:
     indptr = np.searchsorted(nz, np.arange(n_states + 1, dtype=np.int64) * n_states)
     return sp.csr_matrix((flat[nz].astype(np.int64, copy=False), nz % n_states, indptr),
                          shape=(n_states, n_states))
+
+
+def _pairs_to_csr(codes: np.ndarray, counts: np.ndarray, n_states: int) -> sp.csr_matrix:
+    """CSR from sorted distinct flat codes and their counts (row-major order is CSR order)."""
+    rows = codes // n_states
+    indptr = np.searchsorted(rows, np.arange(n_states + 1, dtype=np.int64))
+    return sp.csr_matrix((counts, codes % n_states, indptr), shape=(n_states, n_states))
 
 
 def run_count_rows(labels, lag, *, n_states=None, every_frame=True, blocks_per_run=1):

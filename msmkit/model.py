@@ -17,7 +17,7 @@ import scipy.sparse as sp
 
 from ._checks import (as_label_trajectories, as_state_set, as_transition_matrix, check_bool, check_dt, check_int,
                       check_seed, check_unit)
-from .counts import _count_flat, _flat_to_csr, _prepare, kept_states
+from .counts import _prepare, count_csr, kept_states
 from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix
 from .spectral import chain_diagnostics, eigen_decomposition, implied_timescales, obeys_detailed_balance, equilibrium_distribution
@@ -401,7 +401,7 @@ def build_model(labels, lag, *, dt: float = 1.0, unit: str = "step", reversible:
     runs, lag, n = _prepare(labels, lag, n_states)
     dt, unit = check_dt(dt), check_unit(unit)
     reversible, every_frame = check_bool(reversible, "reversible"), check_bool(every_frame, "every_frame")
-    flat = _count_flat(runs, lag, n, every_frame)
+    counts = count_csr(runs, lag, n, every_frame)
     metadata = {
         "parameters": {"lag": lag, "dt": dt, "unit": unit, "reversible": bool(reversible),
                        "every_frame": bool(every_frame), "n_states": n},
@@ -410,7 +410,7 @@ def build_model(labels, lag, *, dt: float = 1.0, unit: str = "step", reversible:
         "labels_sha256": fingerprint(runs),
         "frames_per_run": [int(r.size) for r in runs],
     }
-    return model_from_counts(_flat_to_csr(flat, n), lag, dt=dt, unit=unit, reversible=reversible,
+    return model_from_counts(counts, lag, dt=dt, unit=unit, reversible=reversible,
                              metadata=metadata)
 
 

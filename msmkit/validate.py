@@ -28,7 +28,7 @@ from ._bootstrap import (fit_sample, percentile_interval, progress_bar, resampli
                          unflatten)
 from ._checks import (_short, as_float_trajectories, as_label_trajectories, as_state_set, check_bool, check_dt,
                       check_int, check_probability, check_seed, check_unit)
-from .counts import _count_flat, run_count_rows
+from .counts import count_csr, run_count_rows
 from .errors import DiagnosticWarning, InputError
 from .model import MarkovModel, build_model, fingerprint
 
@@ -816,9 +816,9 @@ def vamp2_score_on(model, labels, k=None, *, warn: bool = True) -> float:
                          f"transition can be counted; give longer test runs")
     n_lab = max(max((int(r.max()) for r in runs if r.size), default=-1), int(model.states.max())) + 1
     every_frame = bool(model.metadata.get("parameters", {}).get("every_frame", True))
-    flat = _count_flat(runs, model.lag, n_lab, every_frame)
-    total = flat.sum()
-    C = flat.reshape(n_lab, n_lab)[np.ix_(model.states, model.states)].astype(float)
+    counts = count_csr(runs, model.lag, n_lab, every_frame)
+    total = counts.sum()
+    C = counts[model.states][:, model.states].toarray().astype(float)
     inside = C.sum()
     if inside == 0:
         raise InputError(f"labels: no transition at lag {model.lag} falls among the model's states; the test data "
