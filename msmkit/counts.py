@@ -168,10 +168,10 @@ def _count_flat_serial(runs, lag, n_states, every_frame, block) -> np.ndarray:
 
 
 def _count_pairs(runs, lag, n_states, every_frame):
-    """Counts of all runs as (sorted distinct pair codes, their counts), both int64.
+    """Counts of all runs as (sorted distinct pair codes, how often each occurs), both int64.
 
     Memory follows the number of distinct pairs seen (plus one block of codes), whatever the
-    largest label: each block is reduced to its distinct codes by sorting, and the blocks' tallies
+    largest label: each block is reduced to the distinct codes in it by sorting, and the blocks' tallies
     are merged the same way at the end.
     """
     codes, counts = [], []
