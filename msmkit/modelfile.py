@@ -199,6 +199,8 @@ def atomic_write(path: Path, write, *, overwrite: bool = True, shown=None) -> Pa
         _restore_sigterm(previous)
         if isinstance(exc, _Terminated):
             os.kill(os.getpid(), signal.SIGTERM)  # the default action, now that nothing is left behind
+        if isinstance(exc, OSError) and exc.errno is not None and exc.filename is None:
+            raise OSError(exc.errno, exc.strerror, str(shown)) from exc  # name the file (a full disk has none)
         raise
     _restore_sigterm(previous)
     return path
