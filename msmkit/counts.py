@@ -324,22 +324,25 @@ def communicating_classes(counts) -> list[np.ndarray]:
         The states (indices of ``counts``) of each set, sorted ascending.
     """
     C = sp.csr_matrix(counts)
-    n = C.shape[0]
-    n_comp, comp = csgraph.connected_components(C, directed=True, connection="strong")
-    weight = np.asarray(C.sum(axis=1)).ravel() + np.asarray(C.sum(axis=0)).ravel()
-    visited = weight > 0
+    C.eliminate_zeros()
+    # work on the visited states only: memory follows the pairs seen, not the largest label
+    visited = np.union1d(np.repeat(np.arange(C.shape[0]), np.diff(C.indptr)), C.indices)
+    if visited.size == 0:
+        return []
+    sub = C[visited][:, visited]
+    n = visited.size
+    n_comp, comp = csgraph.connected_components(sub, directed=True, connection="strong")
     count_in = np.zeros(n_comp)
     # counts inside each component: C[i, j] with comp[i] == comp[j]
-    coo = C.tocoo()
+    coo = sub.tocoo()
     same = comp[coo.row] == comp[coo.col]
     np.add.at(count_in, comp[coo.row[same]], coo.data[same])
     lowest = np.full(n_comp, n, dtype=np.int64)
     np.minimum.at(lowest, comp, np.arange(n))
-    has_states = np.bincount(comp[visited], minlength=n_comp) > 0
-    order = sorted(np.flatnonzero(has_states), key=lambda k: (-count_in[k], lowest[k]))
+    order = sorted(range(n_comp), key=lambda k: (-count_in[k], lowest[k]))
     members = np.argsort(comp, kind="stable")
     bounds = np.searchsorted(comp[members], np.arange(n_comp + 1))
-    return [members[bounds[k]:bounds[k + 1]] for k in order]
+    return [visited[members[bounds[k]:bounds[k + 1]]] for k in order]
 
 
 def kept_states(counts) -> np.ndarray:

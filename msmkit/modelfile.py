@@ -133,9 +133,9 @@ def model_arrays(model, extra_arrays=None) -> dict:
     arrays = {
         "format": np.array(FORMAT),
         "format_version": np.array(FORMAT_VERSION, dtype=np.int64),
-        "propagator": np.asarray(model.propagator, dtype=np.float64),
-        "equilibrium": np.asarray(model.equilibrium, dtype=np.float64),
-        "states": np.asarray(model.states, dtype=np.int64),
+        "propagator": _numeric(model.propagator, np.float64),
+        "equilibrium": _numeric(model.equilibrium, np.float64),
+        "states": _numeric(model.states, np.int64),
         "lag": np.asarray(model.lag),
         "dt": np.asarray(model.dt),
         "unit": np.asarray(model.unit),
@@ -161,6 +161,18 @@ def model_arrays(model, extra_arrays=None) -> dict:
                 raise InputError(f"{key} must be a numeric array, not Python objects")
             arrays[key] = arr
     return arrays
+
+
+def _numeric(value, dtype) -> np.ndarray:
+    """``value`` as an array of ``dtype`` when it holds numbers of that kind; as it is otherwise,
+    so that the checks can name what is wrong."""
+    try:
+        arr = np.asarray(value)
+    except (TypeError, ValueError):
+        return np.array(None, dtype=object)
+    if arr.dtype.kind in ("iuf" if np.dtype(dtype).kind == "f" else "iu"):
+        return arr.astype(dtype)
+    return arr
 
 
 # ----------------------------------------------------------------------------- atomic writing
@@ -461,7 +473,7 @@ def _read_member(zf, info, header, key, path) -> np.ndarray:
 
 
 def _size(nbytes: int) -> str:
-    for unit, scale in (("GiB", 1 << 30), ("MiB", 1 << 20), ("KiB", 1 << 10)):
+    for unit, scale in (("TiB", 1 << 40), ("GiB", 1 << 30), ("MiB", 1 << 20), ("KiB", 1 << 10)):
         if nbytes >= scale:
             return f"{nbytes / scale:.3g} {unit}"
     return f"{nbytes} bytes"
