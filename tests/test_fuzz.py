@@ -269,7 +269,7 @@ def test_unknown_member_is_skipped_unread(tmp_path, good_file):
 
 
 def test_zip_bomb_refused_before_decompressing(tmp_path, good_file, monkeypatch):
-    """A member inflating to 64 MiB over a limit of 16 MiB is refused from its declared size, with
+    """A member inflating to 64 MiB over a limit of 16 MiB is refused from the declared size, with
     no more memory than a few headers (the limit is lowered so that the bomb stays small)."""
     monkeypatch.setattr(modelfile, "MAX_ARRAY_BYTES", 16 << 20)
     path = _with_bomb(good_file, tmp_path / "bomb.npz", "propagator.npy",
