@@ -138,7 +138,10 @@ def _count_flat(runs, lag, n_states, every_frame) -> np.ndarray:
     """
     step = 1 if every_frame else lag
     sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
-    if sum(sizes) < PARALLEL_MIN_PAIRS or (os.cpu_count() or 1) < 2:
+    sticky = next((_is_sticky(r if every_frame else r[::lag]) for r, m in zip(runs, sizes) if m), False)
+    if sum(sizes) < PARALLEL_MIN_PAIRS or (os.cpu_count() or 1) < 2 or sticky:
+        # sticky labels are counted by stretches, a light pass over the frames that a second thread
+        # (with its own n_states**2 accumulator) does not speed up
         return _count_flat_serial(runs, lag, n_states, every_frame, COUNT_BLOCK)
     halves = ([], [])
     for run, m in zip(runs, sizes):
@@ -162,8 +165,11 @@ def _count_flat_serial(runs, lag, n_states, every_frame, block) -> np.ndarray:
     """
     size = n_states * n_states
     total = np.zeros(size, dtype=np.int64)
-    for codes in _code_blocks(runs, lag, n_states, every_frame, block):
-        total += _histogram(codes, size)
+    for codes, weights in _code_blocks(runs, lag, n_states, every_frame, block):
+        if weights is None:
+            total += _histogram(codes, size)
+        else:  # float64 sums of integer weights are exact below 2**53
+            total += np.bincount(codes, weights=weights, minlength=size).astype(np.int64)
     return total
 
 
@@ -171,12 +177,12 @@ def _count_pairs(runs, lag, n_states, every_frame):
     """Counts of all runs as (sorted distinct pair codes, how often each occurs), both int64.
 
     Memory follows the number of distinct pairs seen (plus one block of codes), whatever the
-    largest label: each block is reduced to the distinct codes in it by sorting, and the blocks' tallies
-    are merged the same way at the end.
+    largest label: each block is reduced to the distinct codes in it by sorting, and the blocks'
+    tallies are merged the same way at the end.
     """
     codes, counts = [], []
-    for block in _code_blocks(runs, lag, n_states, every_frame, COUNT_BLOCK):
-        u, c = _distinct_counts(block)
+    for block, weights in _code_blocks(runs, lag, n_states, every_frame, COUNT_BLOCK):
+        u, c = _distinct_counts(block, weights)
         codes.append(u)
         counts.append(c)
     if not codes:
@@ -187,43 +193,85 @@ def _count_pairs(runs, lag, n_states, every_frame):
     return u, np.bincount(inverse, weights=np.concatenate(counts), minlength=u.size).astype(np.int64)
 
 
-def _distinct_counts(codes: np.ndarray):
-    """Sorted distinct values of ``codes`` and how often each occurs (run-length encoded first
-    when consecutive codes repeat, as they do for sticky label trajectories)."""
-    change = np.flatnonzero(codes[1:] != codes[:-1]) + 1
-    if change.size < RLE_CHANGE_FRACTION * max(codes.size - 1, 1):
-        starts = np.concatenate(([0], change))
-        values, lengths = codes[starts], np.diff(starts, append=codes.size)
-    else:
-        values, lengths = codes, None
-    u, inverse = np.unique(values, return_inverse=True)
-    counts = np.bincount(inverse, weights=lengths, minlength=u.size).astype(np.int64)
+def _distinct_counts(codes: np.ndarray, weights=None):
+    """Sorted distinct values of ``codes`` and their total weight (1 per code by default)."""
+    u, inverse = np.unique(codes, return_inverse=True)
+    counts = np.bincount(inverse, weights=weights, minlength=u.size).astype(np.int64)
     return u.astype(np.int64, copy=False), counts
 
 
-def _code_blocks(runs, lag, n_states, every_frame, block):
-    """Yield the flat pair codes ``i * n_states + j`` of all runs in blocks of at most ``block``.
+def _is_sticky(seq: np.ndarray) -> bool:
+    """True when labels change rarely enough (judged on the first :data:`RLE_PROBE` frames) that
+    stretches of repeated pairs are worth finding: a pair changes when either end changes."""
+    probe = seq[:RLE_PROBE]
+    if probe.size < 2:
+        return False
+    return 2 * np.count_nonzero(probe[1:] != probe[:-1]) < RLE_CHANGE_FRACTION * (probe.size - 1)
 
-    The codes are written into one preallocated buffer (two in-place passes per piece of a run,
-    no temporaries, no concatenation), which is yielded each time it fills -- the consumer must
-    use it before asking for the next block -- so the extra memory stays bounded for any number
-    of frames. Pairs with an end labelled -1 are left out.
+
+def _stretches(piece: np.ndarray, d: int, n_states: int, unassigned: bool):
+    """Codes and lengths of the maximal stretches of equal pairs (piece[t], piece[t + d]).
+
+    Pair t differs from pair t - 1 exactly when piece[t] != piece[t - 1] or
+    piece[t + d] != piece[t + d - 1], so one comparison of neighbouring labels serves both ends:
+    for sticky labels this touches each frame once (1 byte of comparison result per frame) and
+    leaves a histogram over the few stretches instead of every pair.
     """
-    step = 1 if every_frame else lag
-    sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
-    buf = np.empty(max(min(sum(sizes), block), 1), dtype=np.intp)
+    m = piece.size - d
+    changed = piece[1:] != piece[:-1]
+    edge = changed[:m - 1]
+    edge |= changed[d:d + m - 1]
+    starts = np.flatnonzero(edge)
+    starts += 1
+    starts = np.concatenate(([0], starts))
+    lengths = np.diff(starts, append=m)
+    first, second = piece[starts], piece[starts + d]
+    codes = first.astype(np.intp)
+    codes *= n_states
+    codes += second
+    if unassigned:
+        keep = (first >= 0) & (second >= 0)
+        codes, lengths = codes[keep], lengths[keep]
+    return codes, lengths
+
+
+def _code_blocks(runs, lag, n_states, every_frame, block):
+    """Yield the pair codes ``i * n_states + j`` of all runs as blocks ``(codes, weights)``.
+
+    Sticky runs (see :func:`_is_sticky`) give stretches of equal pairs, with their lengths as
+    weights; other runs give one code per pair (weights None), written into one preallocated
+    buffer (in-place passes, no temporaries) that is yielded each time it fills -- the consumer
+    must use a block before asking for the next. Either way at most ``block`` codes are held, so
+    the extra memory stays bounded for any number of frames. Pairs with an end labelled -1 are
+    left out. Strided counting is sliding counting at lag 1 on every ``lag``-th frame.
+    """
+    total = sum(max(r.size - lag, 0) for r in runs)
+    buf = np.empty(max(min(total, block), 1), dtype=np.intp)
     filled = 0
-    for run, m in zip(runs, sizes):
-        if m == 0:
+    seg_codes, seg_weights, seg_filled = [], [], 0
+    for run in runs:
+        seq, d = (run, lag) if every_frame else (run[::lag], 1)
+        m = seq.size - d
+        if m <= 0:
             continue
-        unassigned = run.min() < 0
+        unassigned = bool(run.min() < 0)
+        sticky = _is_sticky(seq)
         for lo in range(0, m, buf.size):
             hi = min(m, lo + buf.size)
+            piece = seq[lo:hi + d]
+            if sticky:
+                codes, lengths = _stretches(piece, d, n_states, unassigned)
+                seg_codes.append(codes)
+                seg_weights.append(lengths)
+                seg_filled += codes.size
+                if seg_filled >= buf.size:
+                    yield np.concatenate(seg_codes), np.concatenate(seg_weights)
+                    seg_codes, seg_weights, seg_filled = [], [], 0
+                continue
             if filled + (hi - lo) > buf.size:
-                yield buf[:filled]
+                yield buf[:filled], None
                 filled = 0
-            start = run[lo * step:(hi - 1) * step + 1:step]
-            end = run[lo * step + lag:(hi - 1) * step + lag + 1:step]
+            start, end = piece[:hi - lo], piece[d:]
             view = buf[filled:filled + (hi - lo)]
             np.multiply(start, n_states, out=view, dtype=np.intp, casting="unsafe")
             np.add(view, end, out=view, casting="unsafe")
@@ -235,7 +283,9 @@ def _code_blocks(runs, lag, n_states, every_frame, block):
             else:
                 filled += hi - lo
     if filled:
-        yield buf[:filled]
+        yield buf[:filled], None
+    if seg_codes:
+        yield np.concatenate(seg_codes), np.concatenate(seg_weights)
 
 
 def _histogram(codes: np.ndarray, size: int) -> np.ndarray:
