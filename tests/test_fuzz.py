@@ -665,3 +665,29 @@ def test_symmetric_equal_row_counts_give_uniform_pi(n, diag, off):
     for reversible in (True, False):
         T, info = mk.estimate_transition_matrix(C, reversible=reversible, return_info=True)
         np.testing.assert_allclose(info.equilibrium, np.full(n, 1 / n), rtol=1e-12)
+
+
+@FUZZ
+@given(seed=st.integers(0, 2 ** 32 - 1), stay=st.floats(0.0, 0.999), lag=st.integers(1, 12),
+       every_frame=st.booleans(), n=st.sampled_from([3, 40, 3000]), holes=st.booleans())
+def test_counts_by_stretches_match_numpy(seed, stay, lag, every_frame, n, holes):
+    """Sticky and non-sticky runs (both tally paths, dense and sparse) against np.add.at over the
+    pairs (common practice)."""
+    rng = np.random.default_rng(seed)
+    runs = []
+    for size in rng.integers(lag + 2, 3000, 3):
+        jumps = rng.random(size) >= stay
+        jumps[0] = True
+        run = rng.integers(0, n, size)[np.maximum.accumulate(np.where(jumps, np.arange(size), 0))]
+        if holes:
+            run[rng.random(size) < 0.01] = -1
+        runs.append(run)
+    assume(any((r >= 0).any() for r in runs))
+    ref = np.zeros((n, n), dtype=np.int64)
+    step = 1 if every_frame else lag
+    for r in runs:
+        a, b = r[:-lag:step], r[lag::step]
+        ok = (a >= 0) & (b >= 0)
+        np.add.at(ref, (a[ok], b[ok]), 1)
+    got = mk.count_transitions(runs, lag, n_states=n, every_frame=every_frame)
+    np.testing.assert_array_equal(got.toarray(), ref)
