@@ -691,3 +691,64 @@ def test_counts_by_stretches_match_numpy(seed, stay, lag, every_frame, n, holes)
         np.add.at(ref, (a[ok], b[ok]), 1)
     got = mk.count_transitions(runs, lag, n_states=n, every_frame=every_frame)
     np.testing.assert_array_equal(got.toarray(), ref)
+
+
+# =============================================================================== dask
+
+def _tcp_server(payload: bytes):
+    """A TCP server on 127.0.0.1 that accepts, sends ``payload`` (maybe nothing) and then stays silent."""
+    import socket
+    import threading
+    sock = socket.socket()
+    sock.bind(("127.0.0.1", 0))
+    sock.listen(8)
+    held = []
+
+    def serve():
+        while True:
+            try:
+                conn, _ = sock.accept()
+            except OSError:
+                return
+            held.append(conn)
+            if payload:
+                conn.sendall(payload)
+
+    threading.Thread(target=serve, daemon=True).start()
+    return sock
+
+
+@pytest.mark.parametrize("payload, message", [
+    (b"", r"accepts connections but sent nothing within 1 s"),
+    (b"\xff" * 64, r"does not speak the dask protocol"),
+    (b"HTTP/1.1 200 OK\r\n\r\n", r"does not speak the dask protocol"),
+])
+def test_connect_to_a_server_that_is_no_scheduler(payload, message):
+    pytest.importorskip("distributed")
+    from msmkit.distributed import connect
+    sock = _tcp_server(payload)
+    try:
+        start = time.monotonic()
+        with pytest.raises(InputError, match=message):
+            connect(f"tcp://127.0.0.1:{sock.getsockname()[1]}", timeout=1)
+        assert time.monotonic() - start < 5  # before: no return within 200 s, or a MemoryError of 3 EiB
+    finally:
+        sock.close()
+
+
+def test_lost_worker_during_scatter_is_a_cluster_error():
+    """The mapping only: a scatter failing with dask's CommClosedError (what a worker killed mid-send
+    gives) becomes ClusterError. Killing a real worker at that instant is not reproduced here."""
+    distributed = pytest.importorskip("distributed")
+    from distributed.comm.core import CommClosedError
+
+    from msmkit import distributed as dist
+
+    class Dying:
+        def scatter(self, *args, **kwargs):
+            raise CommClosedError("in <TCP (closed) ...>: Stream is closed")
+
+    with pytest.raises(dist.ClusterError, match=r"sending 2 in-memory run\(s\) to the workers failed "
+                                                r"\(CommClosedError"):
+        dist._items(Dying(), [np.zeros(3, np.int32), np.ones(4, np.int32)])
+    del distributed
