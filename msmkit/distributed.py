@@ -134,7 +134,7 @@ HANDSHAKE_MAX_BYTES = 1 << 26
 
 def _probe_scheduler(address: str, timeout: float) -> None:
     """For a plain TCP address, check within ``timeout`` that the server speaks first with a
-    message of plausible size, as a dask scheduler does (it sends its handshake on accept).
+    message of plausible size, as a dask scheduler does (it sends a handshake on accept).
 
     A server that accepts and stays silent would otherwise hang the client far past ``timeout``;
     one that sends other bytes makes it read a giant length prefix (a MemoryError of exbibytes).
@@ -169,7 +169,7 @@ def _probe_scheduler(address: str, timeout: float) -> None:
                          f"or raise timeout") from None
     (size,) = struct.unpack("<Q", first)
     if size > HANDSHAKE_MAX_BYTES:
-        raise InputError(f"address: the server at {address!r} does not speak the dask protocol (its first "
+        raise InputError(f"address: the server at {address!r} does not speak the dask protocol (the first "
                          f"message claims {size} bytes); check that the port is the scheduler's")
 
 
