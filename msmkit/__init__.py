@@ -47,7 +47,7 @@ __all__ = sorted([
     "build_model",
     "check_macrostate_gap",
     "lumped_propagator",
-    "committor",
+    "splitting_probability",
     "communicating_classes",
     "count_transitions",
     "demo",
@@ -68,7 +68,7 @@ __all__ = sorted([
     "pcca_affinity",
     "transition_paths",
     "save_model",
-    "equilibrium",
+    "equilibrium_distribution",
     "suggest_lag",
     "suggest_n_macrostates",
 ])

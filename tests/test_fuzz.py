@@ -752,3 +752,9 @@ def test_lost_worker_during_scatter_is_a_cluster_error():
                                                 r"\(CommClosedError"):
         dist._items(Dying(), [np.zeros(3, np.int32), np.ones(4, np.int32)])
     del distributed
+
+
+def test_every_public_name_exists():
+    """``from msmkit import *`` must not fail on a name listed in __all__ but not defined."""
+    missing = [name for name in mk.__all__ if not hasattr(mk, name)]
+    assert missing == []
