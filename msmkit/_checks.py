@@ -19,12 +19,15 @@ __all__ = [
     "as_float_trajectories",
     "brief",
     "as_label_trajectories",
+    "check_bool",
     "check_chunk_size",
     "check_finite_frames",
     "check_dt",
     "check_int",
     "check_lag",
     "check_probability",
+    "check_seed",
+    "check_tolerance",
     "check_unit",
     "as_state_set",
     "as_transition_matrix",
@@ -56,6 +59,34 @@ def check_int(value, name: str, *, minimum: int | None = None, maximum: int | No
     if maximum is not None and value > maximum:
         raise InputError(f"{name} must be an integer not greater than {maximum}, but got {value}")
     return value
+
+
+def check_bool(value, name: str) -> bool:
+    """A switch: exactly True or False (numpy booleans too).
+
+    Strings such as "False" or "no" are refused rather than read by truthiness, which would turn
+    ``reversible="False"`` into a reversible model.
+    """
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    raise InputError(f"{name} must be True or False, but got {brief(value)}")
+
+
+def check_tolerance(value, name: str) -> float:
+    """A convergence or comparison tolerance: a finite number greater than 0."""
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real):
+        raise InputError(f"{name} must be a positive number (a tolerance), but got {brief(value)}")
+    value = float(value)
+    if not math.isfinite(value) or value <= 0:
+        raise InputError(f"{name} must be a finite number greater than 0 (a tolerance), but got {value}")
+    return value
+
+
+def check_seed(seed, name: str = "seed"):
+    """A random seed: None (fresh entropy), an integer 0 <= seed < 2**63, or a numpy Generator."""
+    if seed is None or isinstance(seed, np.random.Generator):
+        return seed
+    return check_int(seed, name, minimum=0, maximum=2 ** 63 - 1)
 
 
 def check_lag(lag, name: str = "lag") -> int:

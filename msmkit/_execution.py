@@ -67,7 +67,12 @@ def place(runs, client=None) -> Placed:
     items = list(runs)
     arrays = [i for i, r in enumerate(runs) if not (is_lazy_run(r) or isinstance(r, (str, os.PathLike)))]
     if arrays:
-        futures = client.scatter([np.asarray(runs[i]) for i in arrays], hash=False)
+        try:
+            futures = client.scatter([np.asarray(runs[i]) for i in arrays], hash=False)
+        except (OSError, TimeoutError) as err:  # dask's CommClosedError is an OSError: a worker went away
+            raise ClusterError(f"sending {len(arrays)} in-memory run(s) to the workers failed "
+                               f"({type(err).__name__}: {err}); a worker was probably lost: check the "
+                               f"cluster and run the call again") from None
         for i, f in zip(arrays, futures):
             items[i] = f
     return Placed(runs, items, client)

@@ -8,12 +8,15 @@ Sub-commands::
     msmkit info  model.npz
     msmkit report model.npz -o report.html      a self-contained HTML report of a saved model
 
-Exit codes: 0 success, 1 bad input or a failed computation (one line on stderr, no traceback,
-no output file written), 2 a malformed command line.
+Exit codes: 0 success, 1 bad input, a malformed file, a failed computation or a failed write
+(full disk, read-only folder): one line on stderr, no traceback, no output file written or
+replaced; 2 a malformed command line.
 """
 from __future__ import annotations
 
 import argparse
+import errno
+import os
 import sys
 import tempfile
 import warnings
@@ -136,8 +139,9 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
 class _Outputs:
     """Files written to a folder only once everything has been computed, each atomically."""
 
-    def __init__(self, folder):
+    def __init__(self, folder, *, force: bool = True):
         self.folder = Path(folder)
+        self.force = force
         self.files: dict[str, bytes] = {}
 
     def add_text(self, name, text):
@@ -147,13 +151,23 @@ class _Outputs:
         from .plots import figure_png
         self.files[name] = figure_png(fig, dpi=120)
 
-    def write(self) -> list[Path]:
+    def check_free(self, names) -> None:
+        """Refuse, before any work, a folder that is a file or (without force) holds outputs."""
         if self.folder.exists() and not self.folder.is_dir():
             raise InputError(f"--output {self.folder} exists and is not a folder; give a folder name")
+        if not self.force:
+            taken = [n for n in names if (self.folder / n).exists()]
+            if taken:
+                raise InputError(f"{self.folder} already holds {', '.join(taken)}; choose another folder or pass "
+                                 f"--force to overwrite")
+
+    def write(self) -> list[Path]:
+        self.check_free(self.files)
         self.folder.mkdir(parents=True, exist_ok=True)
         written = []
         for name, data in self.files.items():
-            written.append(atomic_write(self.folder / name, lambda fh, data=data: fh.write(data)))
+            written.append(atomic_write(self.folder / name, lambda fh, data=data: fh.write(data),
+                                        overwrite=self.force))
         return written
 
 
@@ -256,6 +270,8 @@ def _load(args):
 def cmd_build(args) -> int:
     from .model import build_model
     out = Path(args.output)
+    if out.suffix != ".npz":  # the name the model file gets (see save_model)
+        out = out.with_name(out.name + ".npz")
     if out.exists() and not args.force:
         raise InputError(f"-o {out} exists; choose another name or pass --force to overwrite")
     trajs, dt, unit = _load(args)
@@ -269,13 +285,19 @@ def cmd_build(args) -> int:
         spec = MDFeatures.from_options(args.features, ("phi", "psi"), None, args.periodic, args.select)
         model.metadata["md_features"] = {"spec": spec.to_dict(),
                                          "feature_names": list(trajs.feature_names)}
-    path = model.save(out, **_extras(tica, micro))
+    path = model.save(out, overwrite=args.force, **_extras(tica, micro))
     _say(args, summary_text(model).rstrip())
     _say(args, f"wrote {path}")
     return EXIT_OK
 
 
+SCAN_OUTPUTS = ("implied_timescales.png", "implied_timescales.csv", "populations.png", "populations.csv",
+                "summary.txt")
+
+
 def cmd_scan(args) -> int:
+    out = _Outputs(args.output, force=args.force)
+    out.check_free(SCAN_OUTPUTS)
     trajs, dt, unit = _load(args)
     lags = _parse_lags(args.lags)
     labels, tica, micro = _microstates(trajs, n_states=args.states, tica_lag=_tica_lag(args),
@@ -284,7 +306,6 @@ def cmd_scan(args) -> int:
                                        say=lambda text: _say(args, text))
     scan = _scan_and_choose(labels, args, lags, dt, unit)
     chosen = scan.suggested_lag if scan.suggested_lag is not None else int(scan.lags[0])
-    out = _Outputs(args.output)
     _write_scan_outputs(out, scan, chosen)
     for p in out.write():
         _say(args, f"wrote {p}")
@@ -421,6 +442,7 @@ def build_parser() -> argparse.ArgumentParser:
     common(s)
     scanning(s, "1,2,5,10,20", validates=False)
     s.add_argument("-o", "--output", required=True, help="output folder")
+    s.add_argument("--force", action="store_true", help="overwrite outputs already in the folder")
     s.set_defaults(func=cmd_scan)
 
     i = sub.add_parser("info", help="describe a saved model file", description="Check and describe a model file.")
@@ -464,6 +486,33 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print(f"msmkit {args.command}: interrupted; nothing was written", file=sys.stderr)
         return EXIT_FAILED
+    except OSError as exc:
+        print(f"msmkit {args.command}: error: {_os_error(exc)}", file=sys.stderr)
+        return EXIT_FAILED
+    except MemoryError:
+        print(f"msmkit {args.command}: error: out of memory; use fewer states, a larger --stride or fewer "
+              f"files at once", file=sys.stderr)
+        return EXIT_FAILED
+    except Exception as exc:  # a failure the library did not foresee: still one line, no traceback
+        if os.environ.get("MSMKIT_TRACEBACK"):
+            raise
+        print(f"msmkit {args.command}: error: unexpected {type(exc).__name__}: {_one_line(exc)} "
+              f"(set MSMKIT_TRACEBACK=1 to see where)", file=sys.stderr)
+        return EXIT_FAILED
+
+
+def _one_line(exc) -> str:
+    return " ".join(str(exc).split())
+
+
+def _os_error(exc: OSError) -> str:
+    """A file-system failure in words, naming the file."""
+    where = f"{exc.filename}: " if exc.filename else ""
+    if exc.errno == errno.ENOSPC:
+        return f"{where}no space left on the device; nothing was written (free some space and run again)"
+    if exc.errno in (errno.EROFS, errno.EACCES, errno.EPERM):
+        return f"{where}cannot write there ({exc.strerror}); choose a folder you can write to"
+    return f"{where}{exc.strerror or _one_line(exc)}"
 
 
 if __name__ == "__main__":  # pragma: no cover

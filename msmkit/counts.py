@@ -14,11 +14,17 @@ import scipy.sparse as sp
 from scipy.sparse import csgraph
 
 from . import _execution as execution
-from ._checks import as_label_trajectories, check_int, check_lag
+from ._checks import as_label_trajectories, check_bool, check_int, check_lag
 from .distributed import ClusterError
 from .errors import InputError
 
 __all__ = ["count_transitions", "communicating_classes", "kept_states", "run_count_rows"]
+
+#: count matrices of at most this many cells (n_states**2) are tallied densely with np.bincount (32 MiB);
+#: larger ones by sorting the pair codes, so that memory follows the pairs seen, not the largest label
+DENSE_MAX_CELLS = 1 << 22
+#: largest count matrix side: its CSR row pointers alone take 8 bytes per state (128 MiB here)
+MAX_STATES = 1 << 24
 
 #: codes inspected to decide whether run-length encoding pays off, and the change rate below which it does
 RLE_PROBE = 100_000
@@ -64,9 +70,13 @@ def prepare_counting(labels, lag, n_states):
     if largest < 0:
         raise InputError("labels hold no assigned frame: every label is -1")
     if n_states is None:
+        if largest >= MAX_STATES:
+            raise InputError(f"labels go up to {largest}, which would make a count matrix of {largest + 1} rows; "
+                             f"labels must be below {MAX_STATES}: renumber the visited states 0..n-1 first "
+                             f"(e.g. np.unique(labels, return_inverse=True))")
         n_states = largest + 1
     else:
-        n_states = check_int(n_states, "n_states", minimum=1)
+        n_states = check_int(n_states, "n_states", minimum=1, maximum=MAX_STATES)
         if n_states <= largest:
             raise InputError(f"n_states must exceed the largest label ({largest}), but got {n_states}; "
                              f"leave n_states=None to infer it")
@@ -107,14 +117,14 @@ def count_transitions(labels, lag, *, n_states=None, every_frame=True, client=No
            [1, 1]])
     """
     runs, lag, n_states = prepare_counting(labels, lag, n_states)
+    every_frame = check_bool(every_frame, "every_frame")
     parts = execution.map_groups(count_codes, runs, lag, n_states, every_frame, client=client,
                                  what="count_transitions", length=np.size)
     if len(parts) == 1:
         return codes_to_csr(*parts[0], n_states)
-    flat = np.zeros(n_states * n_states, dtype=np.int64)
-    for codes, counts in parts:
-        flat[codes] += counts
-    return flat_counts_to_csr(flat, n_states)
+    codes, inverse = np.unique(np.concatenate([c for c, _ in parts]), return_inverse=True)
+    counts = np.bincount(inverse, weights=np.concatenate([n for _, n in parts]), minlength=codes.size)
+    return codes_to_csr(codes, counts.astype(np.int64), n_states)
 
 
 def count_flat(runs, lag, n_states, every_frame=True) -> np.ndarray:
@@ -123,18 +133,32 @@ def count_flat(runs, lag, n_states, every_frame=True) -> np.ndarray:
     return _count_flat(runs, lag, n_states, every_frame)
 
 
+def count_pairs(runs, lag, n_states, every_frame=True):
+    """Counts of checked label runs as (sorted distinct flat codes ``i * n_states + j``, int64
+    counts): dense tally for small matrices, sorted pair codes for large ones, so memory follows
+    the pairs seen, never ``n_states**2``."""
+    if n_states * n_states <= DENSE_MAX_CELLS:
+        flat = _count_flat(runs, lag, n_states, every_frame)
+        codes = np.flatnonzero(flat)
+        return codes, flat[codes]
+    return _count_pairs(runs, lag, n_states, every_frame)
+
+
+def count_csr(runs, lag, n_states, every_frame=True) -> sp.csr_matrix:
+    """Counts of checked label runs as an int64 CSR matrix (memory follows the pairs seen)."""
+    return codes_to_csr(*count_pairs(runs, lag, n_states, every_frame), n_states)
+
+
 def count_codes(runs, lag, n_states, every_frame=True):
     """Kernel of :func:`count_transitions` for a group of whole runs.
 
     Returns
     -------
     (codes, counts), sizes
-        The nonzero entries of :func:`count_flat` (flat codes ``i * n_states + j``, sorted, and
-        their int64 counts) and the number of frames of each run seen (checked by the caller).
+        The nonzero counts as sorted flat codes ``i * n_states + j`` with their int64 counts
+        (:func:`count_pairs`), and the number of frames of each run seen (checked by the caller).
     """
-    flat = _count_flat(runs, lag, n_states, every_frame)
-    codes = np.flatnonzero(flat)
-    return (codes, flat[codes]), [int(np.asarray(r).size) for r in runs]
+    return count_pairs(runs, lag, n_states, every_frame), [int(np.asarray(r).size) for r in runs]
 
 
 #: Pair codes counted per histogram pass: bounds the temporary buffer to 32 MiB however many
@@ -155,7 +179,10 @@ def _count_flat(runs, lag, n_states, every_frame) -> np.ndarray:
     """
     step = 1 if every_frame else lag
     sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
-    if sum(sizes) < PARALLEL_MIN_PAIRS or (os.cpu_count() or 1) < 2:
+    sticky = next((_is_sticky(r if every_frame else r[::lag]) for r, m in zip(runs, sizes) if m), False)
+    if sum(sizes) < PARALLEL_MIN_PAIRS or (os.cpu_count() or 1) < 2 or sticky:
+        # sticky labels are counted by stretches, a light pass over the frames that a second thread
+        # (with its own n_states**2 accumulator) does not speed up
         return _count_flat_serial(runs, lag, n_states, every_frame, COUNT_BLOCK)
     halves = ([], [])
     for run, m in zip(runs, sizes):
@@ -174,37 +201,118 @@ def _count_flat(runs, lag, n_states, every_frame) -> np.ndarray:
 def _count_flat_serial(runs, lag, n_states, every_frame, block) -> np.ndarray:
     """Counts of all runs as one flat int64 vector of length n_states**2, on this thread.
 
-    The pair codes are written into one preallocated buffer of at most :data:`COUNT_BLOCK`
-    entries (two in-place passes per piece of a run, no temporaries, no concatenation), which
-    is counted each time it fills, so the extra memory stays bounded for any number of frames.
-    Label trajectories of molecular dynamics are sticky -- consecutive frames mostly keep their
-    state, so consecutive pair codes repeat -- and then the codes are run-length encoded
-    first, which makes the scattered histogram update (the costly part) several times shorter.
+    The pair codes come in blocks of at most ``block`` (see :func:`_code_blocks`), each counted
+    by one histogram pass into the flat vector.
     """
-    step = 1 if every_frame else lag
-    sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
     size = n_states * n_states
-    buf = np.empty(max(min(sum(sizes), block), 1), dtype=np.intp)
-    total = None
+    total = np.zeros(size, dtype=np.int64)
+    for codes, weights in _code_blocks(runs, lag, n_states, every_frame, block):
+        if weights is None:
+            total += _histogram(codes, size)
+        else:  # float64 sums of integer weights are exact below 2**53
+            total += np.bincount(codes, weights=weights, minlength=size).astype(np.int64)
+    return total
+
+
+def _count_pairs(runs, lag, n_states, every_frame):
+    """Counts of all runs as (sorted distinct pair codes, how often each occurs), both int64.
+
+    Memory follows the number of distinct pairs seen (plus one block of codes), whatever the
+    largest label: each block is reduced to the distinct codes in it by sorting, and the blocks'
+    tallies are merged the same way at the end.
+    """
+    codes, counts = [], []
+    for block, weights in _code_blocks(runs, lag, n_states, every_frame, COUNT_BLOCK):
+        u, c = _distinct_counts(block, weights)
+        codes.append(u)
+        counts.append(c)
+    if not codes:
+        return np.empty(0, np.int64), np.empty(0, np.int64)
+    if len(codes) == 1:
+        return codes[0], counts[0]
+    u, inverse = np.unique(np.concatenate(codes), return_inverse=True)
+    return u, np.bincount(inverse, weights=np.concatenate(counts), minlength=u.size).astype(np.int64)
+
+
+def _distinct_counts(codes: np.ndarray, weights=None):
+    """Sorted distinct values of ``codes`` and their total weight (1 per code by default)."""
+    u, inverse = np.unique(codes, return_inverse=True)
+    counts = np.bincount(inverse, weights=weights, minlength=u.size).astype(np.int64)
+    return u.astype(np.int64, copy=False), counts
+
+
+def _is_sticky(seq: np.ndarray) -> bool:
+    """True when labels change rarely enough (judged on the first :data:`RLE_PROBE` frames) that
+    stretches of repeated pairs are worth finding: a pair changes when either end changes."""
+    probe = seq[:RLE_PROBE]
+    if probe.size < 2:
+        return False
+    return 2 * np.count_nonzero(probe[1:] != probe[:-1]) < RLE_CHANGE_FRACTION * (probe.size - 1)
+
+
+def _stretches(piece: np.ndarray, d: int, n_states: int, unassigned: bool):
+    """Codes and lengths of the maximal stretches of equal pairs (piece[t], piece[t + d]).
+
+    Pair t differs from pair t - 1 exactly when piece[t] != piece[t - 1] or
+    piece[t + d] != piece[t + d - 1], so one comparison of neighbouring labels serves both ends:
+    for sticky labels this touches each frame once (1 byte of comparison result per frame) and
+    leaves a histogram over the few stretches instead of every pair.
+    """
+    m = piece.size - d
+    changed = piece[1:] != piece[:-1]
+    edge = changed[:m - 1]
+    edge |= changed[d:d + m - 1]
+    starts = np.flatnonzero(edge)
+    starts += 1
+    starts = np.concatenate(([0], starts))
+    lengths = np.diff(starts, append=m)
+    first, second = piece[starts], piece[starts + d]
+    codes = first.astype(np.intp)
+    codes *= n_states
+    codes += second
+    if unassigned:
+        keep = (first >= 0) & (second >= 0)
+        codes, lengths = codes[keep], lengths[keep]
+    return codes, lengths
+
+
+def _code_blocks(runs, lag, n_states, every_frame, block):
+    """Yield the pair codes ``i * n_states + j`` of all runs as blocks ``(codes, weights)``.
+
+    Sticky runs (see :func:`_is_sticky`) give stretches of equal pairs, with their lengths as
+    weights; other runs give one code per pair (weights None), written into one preallocated
+    buffer (in-place passes, no temporaries) that is yielded each time it fills -- the consumer
+    must use a block before asking for the next. Either way at most ``block`` codes are held, so
+    the extra memory stays bounded for any number of frames. Pairs with an end labelled -1 are
+    left out. Strided counting is sliding counting at lag 1 on every ``lag``-th frame.
+    """
+    total = sum(max(r.size - lag, 0) for r in runs)
+    buf = np.empty(max(min(total, block), 1), dtype=np.intp)
     filled = 0
-
-    def flush():
-        nonlocal total, filled
-        if filled:
-            got = _histogram(buf[:filled], size)
-            total = got if total is None else total + got
-            filled = 0
-
-    for run, m in zip(runs, sizes):
-        if m == 0:
+    seg_codes, seg_weights, seg_filled = [], [], 0
+    for run in runs:
+        seq, d = (run, lag) if every_frame else (run[::lag], 1)
+        m = seq.size - d
+        if m <= 0:
             continue
-        unassigned = run.min() < 0
+        unassigned = bool(run.min() < 0)
+        sticky = _is_sticky(seq)
         for lo in range(0, m, buf.size):
             hi = min(m, lo + buf.size)
+            piece = seq[lo:hi + d]
+            if sticky:
+                codes, lengths = _stretches(piece, d, n_states, unassigned)
+                seg_codes.append(codes)
+                seg_weights.append(lengths)
+                seg_filled += codes.size
+                if seg_filled >= buf.size:
+                    yield np.concatenate(seg_codes), np.concatenate(seg_weights)
+                    seg_codes, seg_weights, seg_filled = [], [], 0
+                continue
             if filled + (hi - lo) > buf.size:
-                flush()
-            start = run[lo * step:(hi - 1) * step + 1:step]
-            end = run[lo * step + lag:(hi - 1) * step + lag + 1:step]
+                yield buf[:filled], None
+                filled = 0
+            start, end = piece[:hi - lo], piece[d:]
             view = buf[filled:filled + (hi - lo)]
             np.multiply(start, n_states, out=view, dtype=np.intp, casting="unsafe")
             np.add(view, end, out=view, casting="unsafe")
@@ -215,8 +323,10 @@ def _count_flat_serial(runs, lag, n_states, every_frame, block) -> np.ndarray:
                 filled += kept
             else:
                 filled += hi - lo
-    flush()
-    return np.zeros(size, dtype=np.int64) if total is None else total
+    if filled:
+        yield buf[:filled], None
+    if seg_codes:
+        yield np.concatenate(seg_codes), np.concatenate(seg_weights)
 
 
 def _histogram(codes: np.ndarray, size: int) -> np.ndarray:
@@ -263,6 +373,7 @@ def run_count_rows(labels, lag, *, n_states=None, every_frame=True, blocks_per_r
     """
     placed = labels if isinstance(labels, execution.Placed) else None
     runs, lag, n_states = prepare_counting(labels if placed is None else placed.runs, lag, n_states)
+    every_frame = check_bool(every_frame, "every_frame")
     blocks_per_run = check_int(blocks_per_run, "blocks_per_run", minimum=1)
     per_run = execution.map_runs(count_rows_of_run, runs if placed is None or client is None else placed,
                                  lag, n_states, every_frame, blocks_per_run, client=client,
@@ -312,22 +423,25 @@ def communicating_classes(counts) -> list[np.ndarray]:
         The states (indices of ``counts``) of each set, sorted ascending.
     """
     C = sp.csr_matrix(counts)
-    n = C.shape[0]
-    n_comp, comp = csgraph.connected_components(C, directed=True, connection="strong")
-    weight = np.asarray(C.sum(axis=1)).ravel() + np.asarray(C.sum(axis=0)).ravel()
-    visited = weight > 0
+    C.eliminate_zeros()
+    # work on the visited states only: memory follows the pairs seen, not the largest label
+    visited = np.union1d(np.repeat(np.arange(C.shape[0]), np.diff(C.indptr)), C.indices)
+    if visited.size == 0:
+        return []
+    sub = C[visited][:, visited]
+    n = visited.size
+    n_comp, comp = csgraph.connected_components(sub, directed=True, connection="strong")
     count_in = np.zeros(n_comp)
     # counts inside each component: C[i, j] with comp[i] == comp[j]
-    coo = C.tocoo()
+    coo = sub.tocoo()
     same = comp[coo.row] == comp[coo.col]
     np.add.at(count_in, comp[coo.row[same]], coo.data[same])
     lowest = np.full(n_comp, n, dtype=np.int64)
     np.minimum.at(lowest, comp, np.arange(n))
-    has_states = np.bincount(comp[visited], minlength=n_comp) > 0
-    order = sorted(np.flatnonzero(has_states), key=lambda k: (-count_in[k], lowest[k]))
+    order = sorted(range(n_comp), key=lambda k: (-count_in[k], lowest[k]))
     members = np.argsort(comp, kind="stable")
     bounds = np.searchsorted(comp[members], np.arange(n_comp + 1))
-    return [members[bounds[k]:bounds[k + 1]] for k in order]
+    return [visited[members[bounds[k]:bounds[k + 1]]] for k in order]
 
 
 def kept_states(counts) -> np.ndarray:

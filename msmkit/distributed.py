@@ -78,12 +78,58 @@ def connect(address, *, timeout: float = 10.0, **client_options):
                          f"but got {brief(address)}")
     if isinstance(timeout, bool) or not isinstance(timeout, (int, float)) or not timeout > 0:
         raise InputError(f"timeout must be a positive number of seconds, but got {brief(timeout)}")
+    _probe_scheduler(address.strip(), timeout)
     try:
         return dist.Client(address.strip(), timeout=timeout, **client_options)
     except (OSError, TimeoutError, ValueError) as err:
         raise InputError(f"address: no dask scheduler answered at {address.strip()!r} within "
                          f"{timeout:g} s ({type(err).__name__}: {err}); start one (`dask "
                          f"scheduler`), check host and port, or raise timeout") from None
+
+
+#: a dask scheduler's first message (its handshake) is far smaller than this
+HANDSHAKE_MAX_BYTES = 1 << 26
+
+
+def _probe_scheduler(address: str, timeout: float) -> None:
+    """For a plain TCP address, check within ``timeout`` that the server speaks first with a
+    message of plausible size, as a dask scheduler does (it sends a handshake on accept).
+
+    A server that accepts and stays silent would otherwise hang the client far past ``timeout``;
+    one that sends other bytes makes it read a giant length prefix (a MemoryError of exbibytes).
+    """
+    import socket
+    import struct
+    import time
+
+    rest = address[len("tcp://"):] if address.startswith("tcp://") else address
+    if "://" in rest:
+        return  # tls, inproc, ucx, ...: left to dask
+    host, _, port = rest.rpartition(":")
+    host = host.strip("[]")
+    if not host or not port.isdigit():
+        return
+    deadline = time.monotonic() + timeout
+    try:
+        with socket.create_connection((host, int(port)), timeout=timeout) as sock:
+            first = b""
+            while len(first) < 8:
+                sock.settimeout(max(deadline - time.monotonic(), 1e-3))
+                got = sock.recv(8 - len(first))
+                if not got:
+                    raise ConnectionError("the server closed the connection without a word")
+                first += got
+    except socket.timeout:
+        raise InputError(f"address: the server at {address!r} accepts connections but sent nothing within "
+                         f"{timeout:g} s, so it is not a dask scheduler; check the port, or raise timeout") from None
+    except OSError as err:
+        raise InputError(f"address: no dask scheduler answered at {address!r} within {timeout:g} s "
+                         f"({type(err).__name__}: {err}); start one (`dask scheduler`), check host and port, "
+                         f"or raise timeout") from None
+    (size,) = struct.unpack("<Q", first)
+    if size > HANDSHAKE_MAX_BYTES:
+        raise InputError(f"address: the server at {address!r} does not speak the dask protocol (the first "
+                         f"message claims {size} bytes); check that the port is the scheduler's")
 
 
 def check_client(client) -> None:

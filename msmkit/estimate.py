@@ -18,6 +18,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from scipy.sparse import csgraph
 
+from ._checks import check_bool, check_int, check_tolerance
 from .errors import DiagnosticWarning, InputError
 
 __all__ = ["EstimationInfo", "estimate_transition_matrix", "log_likelihood"]
@@ -137,6 +138,8 @@ def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1
     the symmetric flow matrix and T_ij = x_ij / sum_k x_ik. Built this way T satisfies detailed
     balance to rounding error at every iterate, converged or not.
     """
+    reversible, accelerate = check_bool(reversible, "reversible"), check_bool(accelerate, "accelerate")
+    tol, max_iter = check_tolerance(tol, "tol"), check_int(max_iter, "max_iter", minimum=1)
     C = as_count_matrix(counts)
     if C.nnz == 0:
         raise InputError("counts hold no transitions")

@@ -29,7 +29,7 @@ import numpy as np
 import scipy.linalg as la
 import scipy.sparse as sp
 
-from ._checks import as_transition_matrix, brief
+from ._checks import as_transition_matrix, brief, check_bool
 from .defaults import ROUTE_SHARE
 from .errors import DiagnosticWarning, InputError
 
@@ -430,6 +430,7 @@ def splitting_probability(T, source, target, *, reverse_time: bool = False, pi=N
     array([0. , 0.1, 0.9, 1. ])
     """
     T = as_stochastic_matrix(T)
+    reverse_time = check_bool(reverse_time, "reverse_time")
     n = T.shape[0]
     labels = as_state_labels(states, n)
     source, target = _source_and_target(source, target, n, labels)

@@ -20,7 +20,8 @@ from ._bootstrap import StateCounts, bootstrap_interval, check_interval, fit_sam
 from ._bootstrap import warn_few_samples
 from ._bootstrap import progress_bar as _progress
 from ._bootstrap import unflatten as _unflatten
-from ._checks import as_label_trajectories, check_dt, check_int, check_probability, check_unit
+from ._checks import (as_label_trajectories, check_bool, check_dt, check_int, check_probability, check_seed,
+                      check_tolerance, check_unit)
 from ._execution import map_sample_batches, place
 from .counts import prepare_counting, run_count_rows
 from .defaults import PROCESSES
@@ -170,7 +171,9 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     n_slow = check_int(n_slow, "n_slow", minimum=1)
     confidence = check_probability(confidence, "confidence")
     interval = check_interval(interval)
-    rng = np.random.default_rng(seed)
+    reversible, every_frame = check_bool(reversible, "reversible"), check_bool(every_frame, "every_frame")
+    rtol, progress = check_tolerance(rtol, "rtol"), check_bool(progress, "progress")
+    rng = np.random.default_rng(check_seed(seed))
 
     blocks, weights, notes = resampling_plan(len(runs), n_samples, rng)
     warn_few_samples(n_samples, confidence, "lag_scan", stacklevel=2)

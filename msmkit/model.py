@@ -15,9 +15,10 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from ._checks import as_label_trajectories, as_state_set, as_transition_matrix, check_dt, check_int, check_unit
+from ._checks import (as_label_trajectories, as_state_set, as_transition_matrix, check_bool, check_dt, check_int,
+                      check_seed, check_unit)
 from ._version import __version__
-from .counts import count_flat, flat_counts_to_csr, kept_states, prepare_counting
+from .counts import count_csr, kept_states, prepare_counting
 from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix
 from .modelfile import read_model_file, save_model
@@ -231,6 +232,7 @@ class MarkovModel:
         from .macro import find_macrostates
         n_sets = check_int(n_sets, "n_sets", minimum=1, maximum=self.n_states)
         n_samples = check_int(n_samples, "n_samples", minimum=0)
+        optimize, seed = check_bool(optimize, "optimize"), check_seed(seed)
         if n_samples and labels is None:
             raise InputError("n_samples > 0 needs labels= (the label trajectories of the model) to resample")
         macro = find_macrostates(self.propagator, self.equilibrium, n_sets,
@@ -261,6 +263,7 @@ class MarkovModel:
         runs = as_label_trajectories(labels)
         n_samples = check_int(n_samples, "n_samples", minimum=1)
         warn_few_samples(n_samples, 0.95, "bootstrap_stationary")
+        seed = check_seed(seed)
         n_lab = max(int(self.states.max()) + 1, max(int(r.max()) for r in runs if r.size) + 1)
         blocks, weights, _ = resampling_plan(len(runs), n_samples, np.random.default_rng(seed))
         rows, _ = run_count_rows(runs, self.lag, n_states=n_lab, blocks_per_run=blocks)
@@ -349,18 +352,24 @@ class MarkovModel:
         """
         T = as_transition_matrix(propagator, "propagator", tol=1e-8, irreducible=True)
         dt, unit = check_dt(dt), check_unit(unit)
+        reversible = None if reversible is None else check_bool(reversible, "reversible")
         n = T.shape[0]
         labels = np.arange(n) if states is None else np.asarray(states)
         if labels.shape != (n,) or labels.dtype.kind not in "iu" or np.unique(labels).size != n:
             raise InputError(f"states must be {n} distinct integer labels, one per row of propagator")
         pi = equilibrium_distribution(T)
+        balanced = obeys_detailed_balance(T, pi, rtol=REVERSIBLE_RTOL)
         if reversible is None:
-            reversible = obeys_detailed_balance(T, pi)
+            reversible = balanced
+        elif reversible and not balanced:
+            raise InputError("reversible=True, but propagator does not obey detailed balance "
+                             "(pi_i T_ij != pi_j T_ji), so the spectrum may be complex; pass reversible=False "
+                             "or None (detect it)")
         model = cls(T, pi, labels.astype(np.int64), 1, dt, unit, bool(reversible),
                     metadata={"source": "transition matrix", "package_version": package_version(),
                               "created": now_utc()})
         model.diagnostics = chain_diagnostics(model.spectrum(REPORTED + 1), lag=1, dt=dt, unit=unit,
-                                              n_reported=min(REPORTED, n - 1))
+                                              n_reported=min(REPORTED, n - 1), connected=True)
         for line in model.diagnostics:
             warnings.warn(line, DiagnosticWarning, stacklevel=2)
         return model
@@ -382,6 +391,10 @@ def load_model(path) -> MarkovModel:
         With ``.extras`` (dict) holding any optional arrays (centers, TICA, affinity).
     """
     return MarkovModel(**read_model_file(path))
+
+
+#: relative tolerance of detailed balance for a matrix given as reversible (typed-in values carry rounding)
+REVERSIBLE_RTOL = 1e-6
 
 
 def now_utc() -> str:
@@ -438,7 +451,8 @@ def build_model(labels, lag, *, dt: float = 1.0, unit: str = "step", reversible:
     """
     runs, lag, n = prepare_counting(labels, lag, n_states)
     dt, unit = check_dt(dt), check_unit(unit)
-    flat = count_flat(runs, lag, n, every_frame)
+    reversible, every_frame = check_bool(reversible, "reversible"), check_bool(every_frame, "every_frame")
+    counts = count_csr(runs, lag, n, every_frame)
     metadata = {
         "parameters": {"lag": lag, "dt": dt, "unit": unit, "reversible": bool(reversible),
                        "every_frame": bool(every_frame), "n_states": n},
@@ -447,7 +461,7 @@ def build_model(labels, lag, *, dt: float = 1.0, unit: str = "step", reversible:
         "labels_sha256": fingerprint(runs),
         "frames_per_run": [int(r.size) for r in runs],
     }
-    return model_from_counts(flat_counts_to_csr(flat, n), lag, dt=dt, unit=unit, reversible=reversible,
+    return model_from_counts(counts, lag, dt=dt, unit=unit, reversible=reversible,
                              metadata=metadata)
 
 
@@ -496,7 +510,8 @@ def model_from_counts(counts: sp.csr_matrix, lag: int, *, dt: float, unit: str, 
         model.diagnostics += chain_diagnostics(model.spectrum(REPORTED + 1), lag=lag, dt=dt, unit=unit,
                                                changes=changes, crossings=crossings, states=model.states,
                                                dropped_states=dropped, kept_fraction=kept_fraction,
-                                               n_reported=min(REPORTED, model.n_states - 1), estimated=True)
+                                               n_reported=min(REPORTED, model.n_states - 1), estimated=True,
+                                               connected=True)
     if warn:
         for line in model.diagnostics:
             warnings.warn(line, DiagnosticWarning, stacklevel=3)

@@ -11,6 +11,8 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg as la
 
+from .errors import InputError
+
 __all__ = [
     "chain_diagnostics",
     "changes_out",
@@ -18,14 +20,16 @@ __all__ = [
     "eigen_decomposition",
     "implied_timescales",
     "obeys_detailed_balance",
-    "equilibrium",
+    "equilibrium_distribution",
 ]
 
 #: an eigenvalue this close to the unit circle counts as "on" it
 UNIT_CIRCLE_TOL = 1e-9
 #: above this many states, a few leading eigenvalues are found iteratively instead of by a full solve
 ITERATIVE_MIN_STATES = 1000
-#: states left for another state fewer times than this are flagged as poorly sampled
+#: up to this many states the stationary distribution is found by GTH elimination
+GTH_MAX_STATES = 500
+#: states whose row holds fewer transitions than this are flagged as poorly sampled
 FEW_COUNTS = 10
 #: above this share of the slowest timescale, the lag visibly coarsens first-passage times
 LAG_RESOLUTION_SHARE = 0.1
@@ -35,22 +39,74 @@ LAG_RESOLUTION_SHARE = 0.1
 FEW_CROSSINGS = 20
 
 
-def equilibrium_distribution(T: np.ndarray) -> np.ndarray:
+def equilibrium_distribution(T) -> np.ndarray:
     """Stationary distribution pi of an irreducible row-stochastic matrix: pi T = pi, sum pi = 1.
 
-    Solved as a linear system (T^T - I) pi = 0 with one equation replaced by the normalisation,
-    which is exact for irreducible chains and does not depend on eigenvector phases.
+    Up to :data:`GTH_MAX_STATES` states it is found by Grassmann-Taksar-Heyman elimination
+    (Grassmann, Taksar & Heyman, Oper. Res. 33, 1107 (1985)), which uses only off-diagonal
+    entries and never subtracts: every entry of pi keeps full relative accuracy even for very
+    sticky chains (exit probabilities of 1e-12 or less, where ``1 - T_ii`` has lost all digits).
+    Larger matrices use a linear solve with the normalisation replacing one equation.
+
+    Parameters
+    ----------
+    T : array_like, shape (n, n)
+        Row-stochastic, non-negative and irreducible.
+
+    Returns
+    -------
+    ndarray, shape (n,), dimensionless probabilities summing to 1.
     """
-    T = np.asarray(T, dtype=float)
+    from ._checks import as_transition_matrix
+    T = as_transition_matrix(T, "T", tol=1e-6)
+    return _stationary(T)
+
+
+def _stationary(T: np.ndarray) -> np.ndarray:
+    """:func:`equilibrium_distribution` for a matrix already checked."""
     n = T.shape[0]
     if n == 1:
         return np.ones(1)
+    if n <= GTH_MAX_STATES:
+        pi = _gth(T)
+        if pi is not None:
+            return pi
     A = T.T - np.eye(n)
     A[-1, :] = 1.0
     b = np.zeros(n)
     b[-1] = 1.0
-    pi = la.solve(A, b)
+    try:
+        pi = la.solve(A, b)
+    except (la.LinAlgError, ValueError):
+        pi = None
+    if pi is None or not np.all(np.isfinite(pi)):
+        pi = _gth(T)
+        if pi is None:
+            raise InputError("T has no unique stationary distribution: it is not irreducible (some states "
+                             "never reach others); restrict it to one communicating class first")
+        return pi
     pi = np.clip(pi, 0.0, None)
+    return pi / pi.sum()
+
+
+def _gth(T: np.ndarray):
+    """Grassmann-Taksar-Heyman elimination; None when a state cannot leave the remaining set
+    (a reducible chain). Cost n^3 / 3 flops in n vectorised rank-1 updates."""
+    A = np.array(T, dtype=float)
+    n = A.shape[0]
+    np.fill_diagonal(A, 0.0)
+    for k in range(n - 1, 0, -1):
+        s = A[k, :k].sum()
+        if not s > 0:
+            return None
+        A[:k, k] /= s
+        A[:k, :k] += np.outer(A[:k, k], A[k, :k])
+    pi = np.zeros(n)
+    pi[0] = 1.0
+    for k in range(1, n):
+        pi[k] = pi[:k] @ A[:k, k]
+    if not np.all(np.isfinite(pi)):
+        return None
     return pi / pi.sum()
 
 
@@ -86,11 +142,17 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
     eigenvalues : ndarray (float, or complex for a non-reversible T with a complex spectrum)
     right_vectors : ndarray, shape (n, k), only with ``vectors=True``
     """
-    T = np.asarray(T, dtype=float)
+    from ._checks import as_transition_matrix, check_bool, check_int
+    T = as_transition_matrix(T, "T", tol=1e-6)
     n = T.shape[0]
-    k = n if k is None else min(int(k), n)
+    k = n if k is None else min(check_int(k, "k", minimum=1), n)
+    vectors = check_bool(vectors, "vectors")
+    if reversible is not None:
+        reversible = check_bool(reversible, "reversible")
     if pi is None:
-        pi = equilibrium_distribution(T)
+        pi = _stationary(T)
+    else:
+        pi = _as_distribution(pi, n)
     if reversible is None:
         reversible = obeys_detailed_balance(T, pi)
     if k < n and n > ITERATIVE_MIN_STATES and k <= n // 10:
@@ -122,6 +184,19 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
     if np.isrealobj(w):
         v = v.real
     return w, v
+
+
+def _as_distribution(pi, n: int) -> np.ndarray:
+    """``pi`` as a length-n probability vector, or InputError naming it."""
+    try:
+        arr = np.array(pi, dtype=float)
+    except (TypeError, ValueError):
+        raise InputError(f"pi must be a vector of {n} probabilities, but got {pi!r:.60}") from None
+    if arr.shape != (n,):
+        raise InputError(f"pi must have one entry per state of T ({n}), but has shape {arr.shape}")
+    if not np.all(np.isfinite(arr)) or arr.min() < 0 or abs(arr.sum() - 1.0) > 1e-6:
+        raise InputError("pi must be a finite non-negative vector summing to 1 (the stationary distribution)")
+    return arr
 
 
 def _leading_eigen(T, pi, k, reversible, vectors):
@@ -166,7 +241,15 @@ def implied_timescales(eigenvalues, lag: int, dt: float = 1.0) -> np.ndarray:
 
     |lambda| >= 1 gives inf (a stationary or undecayed process); lambda = 0 gives 0.
     """
-    mag = np.abs(np.asarray(eigenvalues))
+    from ._checks import check_dt, check_lag
+    lag, dt = check_lag(lag), check_dt(dt)
+    try:
+        values = np.asarray(eigenvalues)
+        mag = np.abs(values.astype(complex if values.dtype.kind == "c" else float))
+    except (TypeError, ValueError):
+        raise InputError(f"eigenvalues must be numbers, but got {eigenvalues!r:.60}") from None
+    if not np.all(np.isfinite(mag)):
+        raise InputError("eigenvalues hold NaN or infinity; pass the eigenvalues of a transition matrix")
     with np.errstate(divide="ignore"):
         logs = np.log(np.clip(mag, 0.0, 1.0))
         out = np.where(logs < 0, -lag * dt / np.where(logs < 0, logs, -1.0), np.inf)
@@ -175,7 +258,8 @@ def implied_timescales(eigenvalues, lag: int, dt: float = 1.0) -> np.ndarray:
 
 def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, changes=None, crossings=None,
                       states=None, dropped_states=None, kept_fraction=None,
-                      n_reported: int | None = None, estimated: bool = False) -> list[str]:
+                      n_reported: int | None = None, estimated: bool = False,
+                      connected: bool = False) -> list[str]:
     """Plain-language findings about a model that a user must not miss.
 
     Parameters
@@ -202,6 +286,9 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, changes=No
         The model was estimated from data at this lag: a lag above a tenth of the slowest
         timescale is flagged, since first-passage times are then coarsened by the lag (a matrix
         given as the dynamics itself has no such lag).
+    connected : bool, default False
+        The chain is known to be irreducible (every state reaches every other). A second
+        eigenvalue at 1 then means a process too slow to resolve, not parts that never exchange.
 
     Returns
     -------
@@ -216,8 +303,14 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, changes=No
         others = w[1:][on_circle]
         if np.any(np.abs(others.real - 1.0) < UNIT_CIRCLE_TOL) and np.all(np.abs(np.imag(others)) < UNIT_CIRCLE_TOL) \
                 and np.all(others.real > 0):
-            found.append("More than one eigenvalue equals 1: the kept states split into parts that never "
-                         "exchange at this lag, so there is no unique equilibrium; check connectivity.")
+            if connected:
+                found.append(f"An eigenvalue other than the stationary one lies within {UNIT_CIRCLE_TOL:g} of 1 "
+                             "although every kept state reaches every other: the slowest process takes more "
+                             f"than about {1 / UNIT_CIRCLE_TOL:.0e} lag times, far beyond what the data resolve; "
+                             "that timescale and the populations across the barrier are poorly determined.")
+            else:
+                    found.append("More than one eigenvalue equals 1: the kept states split into parts that never "
+                             "exchange at this lag, so there is no unique equilibrium; check connectivity.")
         else:
             found.append("Periodic chain: an eigenvalue lies on the unit circle away from 1 "
                          f"({_fmt(others[0])}), so T^n does not settle to equilibrium. Timescales and "

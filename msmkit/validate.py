@@ -26,10 +26,10 @@ import scipy.linalg as la
 
 from ._bootstrap import (fit_sample, percentile_interval, progress_bar, resampling_plan, sample_rows,
                          unflatten)
-from ._checks import (brief, as_float_trajectories, as_label_trajectories, as_state_set, check_dt, check_int,
-                      check_probability, check_unit)
+from ._checks import (brief, as_float_trajectories, as_label_trajectories, as_state_set, check_bool, check_dt,
+                      check_int, check_probability, check_seed, check_unit)
 from ._execution import map_sample_batches, place
-from .counts import count_flat, run_count_rows
+from .counts import count_csr, run_count_rows
 from .defaults import CK_MULTIPLES
 from .errors import DiagnosticWarning, InputError
 from .model import MarkovModel, build_model, fingerprint
@@ -297,6 +297,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
     n_samples = check_int(n_samples, "n_samples", minimum=0)
     confidence = check_probability(confidence, "confidence")
     tolerance = check_probability(tolerance, "tolerance")
+    seed = check_seed(seed)
     _check_reach(runs, model, multiples)
     notes = []
     sets, how = _resolve_sets(model, sets, n_sets)
@@ -968,9 +969,9 @@ def vamp2_score_on(model, labels, k=None, *, warn: bool = True) -> float:
                          f"transition can be counted; give longer test runs")
     n_lab = max(max((int(r.max()) for r in runs if r.size), default=-1), int(model.states.max())) + 1
     every_frame = bool(model.metadata.get("parameters", {}).get("every_frame", True))
-    flat = count_flat(runs, model.lag, n_lab, every_frame)
-    total = flat.sum()
-    C = flat.reshape(n_lab, n_lab)[np.ix_(model.states, model.states)].astype(float)
+    counts = count_csr(runs, model.lag, n_lab, every_frame)
+    total = counts.sum()
+    C = counts[model.states][:, model.states].toarray().astype(float)
     inside = C.sum()
     if inside == 0:
         raise InputError(f"labels: no transition at lag {model.lag} falls among the model's states; the test data "
@@ -1145,7 +1146,8 @@ def cross_validate(trajs, n_states=None, lags=1, *, n_folds=5, k=None, reversibl
     if len(lag_list) > 1:
         notes.append("VAMP-2 scores fall with the lag for any model; compare candidates at the same lag.")
 
-    rng = np.random.default_rng(seed)
+    reversible = check_bool(reversible, "reversible")
+    rng = np.random.default_rng(check_seed(seed))
     folds = np.array_split(rng.permutation(len(runs)), n_folds)
     n_rows = 1 if candidates is None else len(candidates)
     scores = np.full((n_rows, len(lag_list), n_folds), np.nan)

@@ -1,6 +1,9 @@
 """The msmkit command line: the whole job end to end, and clean failures on bad input."""
+import errno
+import os
 import subprocess
 import sys
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -147,3 +150,112 @@ def test_options_a_command_does_not_use_are_refused(capsys, tmp_path):
         main(["scan", "x.npy", "--multiples", "3", "-o", str(tmp_path / "o")])
     assert exc.value.code == 2
     assert "--multiples" in capsys.readouterr().err
+
+
+# --------------------------------------------------------------------------- faults: one line, exit 1
+
+def _one_error_line(capsys) -> str:
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "error:" in err and "Traceback" not in err, err
+    return err
+
+
+BUILD = ["build", "{runs}/*.npy", "--lag", "2", "--states", "5", "-q", "-o", "{out}"]
+
+
+def _build_args(demo_files, out):
+    return [a.format(runs=demo_files, out=out) for a in BUILD]
+
+
+@pytest.mark.parametrize("code, word", [(errno.ENOSPC, "no space left"), (errno.EROFS, "cannot write there"),
+                                        (errno.EACCES, "cannot write there")])
+def test_write_failures_are_one_line(demo_files, tmp_path, capsys, monkeypatch, code, word):
+    """A full disk (the failing fsync) or a read-only / forbidden folder: one line, exit 1, and no file or
+    temporary left (running as root, a chmod would not stop the write, so the OS error is injected)."""
+    import msmkit.modelfile as mf
+
+    def failing(*args, **kwargs):
+        raise OSError(code, os.strerror(code))
+
+    monkeypatch.setattr(mf.os, "fsync", failing)
+    assert main(_build_args(demo_files, tmp_path / "m.npz")) == 1
+    err = _one_error_line(capsys)
+    assert word in err and str(tmp_path / "m.npz") in err
+    assert os.listdir(tmp_path) == []
+
+
+def test_folder_that_cannot_hold_a_temporary_is_one_line(demo_files, tmp_path, capsys, monkeypatch):
+    import msmkit.modelfile as mf
+
+    def refused(*args, dir=None, **kwargs):
+        raise OSError(errno.EROFS, os.strerror(errno.EROFS), dir)
+
+    monkeypatch.setattr(mf.tempfile, "mkstemp", refused)
+    assert main(_build_args(demo_files, tmp_path / "m.npz")) == 1
+    assert "cannot write there" in _one_error_line(capsys)
+
+
+def _zip_method_99(good: Path, dst: Path) -> Path:
+    raw = bytearray(good.read_bytes())
+    for sig, off in ((b"PK\x03\x04", 8), (b"PK\x01\x02", 10)):
+        pos = raw.find(sig)
+        raw[pos + off: pos + off + 2] = (99).to_bytes(2, "little")
+    dst.write_bytes(bytes(raw))
+    return dst
+
+
+MALFORMED = {
+    "random bytes": lambda good, dst: dst.write_bytes(os.urandom(300)) and dst,
+    "truncated": lambda good, dst: dst.write_bytes(good.read_bytes()[:500]) and dst,
+    "empty": lambda good, dst: dst.write_bytes(b"") or dst,
+    "text": lambda good, dst: dst.write_text("{\"format\": \"msmkit-model\"}") and dst,
+    "unsupported compression": _zip_method_99,
+    "folder": lambda good, dst: dst.mkdir() or dst,
+}
+
+
+@pytest.mark.parametrize("case", list(MALFORMED))
+def test_info_on_malformed_model_files(case, tmp_path, capsys):
+    good = mk.MarkovModel.from_transition_matrix([[0.9, 0.1], [0.2, 0.8]]).save(tmp_path / "good.npz")
+    bad = MALFORMED[case](good, tmp_path / "bad.npz")
+    assert main(["info", str(bad)]) == 1
+    assert "bad.npz" in _one_error_line(capsys)
+
+
+def test_unforeseen_failure_is_still_one_line(demo_files, tmp_path, capsys, monkeypatch):
+    import msmkit.model as mm
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("something\nunexpected")
+
+    monkeypatch.setattr(mm, "build_model", broken)
+    assert main(_build_args(demo_files, tmp_path / "m.npz")) == 1
+    err = _one_error_line(capsys)
+    assert "unexpected RuntimeError: something unexpected" in err and "MSMKIT_TRACEBACK" in err
+
+
+def test_build_without_suffix_does_not_overwrite(demo_files, tmp_path, capsys):
+    """``-o model`` writes model.npz, so the existence check must look at model.npz."""
+    (tmp_path / "model.npz").write_bytes(b"precious")
+    assert main(_build_args(demo_files, tmp_path / "model")) == 1
+    assert "--force" in _one_error_line(capsys)
+    assert (tmp_path / "model.npz").read_bytes() == b"precious"
+    assert main(_build_args(demo_files, tmp_path / "model") + ["--force"]) == 0
+    assert mk.load_model(tmp_path / "model.npz").lag == 2
+
+
+def test_scan_into_a_folder_with_outputs_needs_force(demo_files, tmp_path, capsys):
+    out = tmp_path / "scan"
+    out.mkdir()
+    (out / "summary.txt").write_text("earlier results")
+    args = ["scan", str(demo_files / "*.npy"), "--lags", "1,2", "--states", "5", "--samples", "0", "-q", "-o", str(out)]
+    assert main(args) == 1
+    err = _one_error_line(capsys)
+    assert "summary.txt" in err and "--force" in err
+    assert (out / "summary.txt").read_text() == "earlier results" and os.listdir(out) == ["summary.txt"]
+    assert main(args + ["--force"]) == 0
+    assert (out / "summary.txt").read_text().startswith("msmkit model summary")
+    other = tmp_path / "other"
+    other.mkdir()
+    (other / "notes.md").write_text("unrelated")  # a folder without our outputs is fine
+    assert main(args[:-1] + [str(other)]) == 0
