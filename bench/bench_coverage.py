@@ -28,7 +28,7 @@ METHODS = (("pct", "percentile", False), ("bc", "bc", False), ("bca", "bca", Fal
 
 
 def four_state_chain() -> np.ndarray:
-    """Reversible: symmetric flows normalised by rows; slow exchange between {0, 1} and {2, 3}."""
+    """Reversible: symmetric flows normalized by rows; slow exchange between {0, 1} and {2, 3}."""
     X = np.array([[900.0, 30, 2, 0], [30, 500, 5, 1], [2, 5, 600, 40], [0, 1, 40, 800]])
     return X / X.sum(axis=1, keepdims=True)
 

@@ -45,7 +45,7 @@ def simulate(T, pi, n_runs, n_frames, rng):
 
 def slowest_timescales(Ts, pis):
     """Slowest implied timescale -1 / ln(lambda_2) (lag 1, in steps) of each reversible matrix,
-    from the symmetrised matrices; NaN where lambda_2 <= 0."""
+    from the symmetrized matrices; NaN where lambda_2 <= 0."""
     s = np.sqrt(pis)
     A = s[:, :, None] * Ts / s[:, None, :]
     lam2 = np.linalg.eigvalsh(0.5 * (A + np.transpose(A, (0, 2, 1))))[:, -2]

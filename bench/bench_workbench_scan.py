@@ -1,6 +1,6 @@
 """The workbench's lag sweep at 3000 microstates: the demo scenario clustered into 3000 states,
 6 lags x (1 + 20 bootstrap samples), run through the same LagPanel.scan the workbench button calls.
-Prints the wall time (target: under a minute on 2 cores) and its ratio to 6 single-lag
+Prints the wall time (target: under a minute on 2 cores) and the ratio to 6 single-lag
 build_model calls measured in the same run."""
 import argparse
 import time

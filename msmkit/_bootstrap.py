@@ -3,7 +3,7 @@
 Counts are computed once per lag and per resampling unit (:func:`msmkit.counts.run_count_rows`);
 a bootstrap sample is a vector of multiplicities over the units, so all samples at one lag are
 one sparse product ``weights @ rows``. Every resampling function of the package (lag scans,
-Chapman-Kolmogorov tests) draws the weights here, so the same seed gives the same resampled
+Chapman–Kolmogorov tests) draws the weights here, so the same seed gives the same resampled
 runs everywhere.
 
 References

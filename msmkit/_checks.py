@@ -213,7 +213,7 @@ def as_transition_matrix(T, name: str = "T", *, tol: float = 1e-6, irreducible: 
     if dev.max() > tol:
         i = int(np.argmax(dev))
         raise InputError(f"{name} must be row-stochastic (every row sums to 1), but row {i} sums to "
-                         f"{arr[i].sum():.6g}; normalise the rows first")
+                         f"{arr[i].sum():.6g}; normalize the rows first")
     if irreducible:
         from scipy.sparse import csgraph
         n_comp, _ = csgraph.connected_components(sp.csr_matrix(arr > 0), directed=True, connection="strong")

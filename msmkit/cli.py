@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .defaults import CK_MULTIPLES, PROCESSES
+from .defaults import BOOTSTRAP_SAMPLES, CK_MULTIPLES, CK_SAMPLES, PROCESSES
 from .errors import DiagnosticWarning, InputError, ModelFileError
 from .modelfile import atomic_write
 
@@ -43,7 +43,7 @@ def _microstates(trajs, *, n_states, tica_lag, tica_dim, stride, seed, progress,
                  say=None):
     """Trajectories -> (label trajectories, fitted TICA or None, fitted Microstates).
 
-    Without TICA, ``scale="standard"`` clusters features standardised to unit variance (the
+    Without TICA, ``scale="standard"`` clusters features standardized to unit variance (the
     model file then stores ``feature_mean`` and ``feature_scale``); with ``"none"`` a caution
     goes to ``say`` when the features' spreads differ by more than SPREAD_RATIO_CAUTION.
     """
@@ -93,7 +93,7 @@ def _parse_lags(text: str) -> list[int]:
 
 
 def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> str:
-    """A short plain-text report of a model, and of the scan, macrostates and Chapman-Kolmogorov
+    """A short plain-text report of a model, and of the scan, macrostates and Chapman–Kolmogorov
     test that go with it when given."""
     lines = [
         "msmkit model summary",
@@ -123,7 +123,7 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
         lines += ["    " + line for line in mfpt.to_string(float_format=lambda v: f"{v:.4g}").splitlines()]
         lines.append(f"    {mfpt.attrs['caption']}")
     if ck is not None:
-        lines.append(f"  Chapman-Kolmogorov test: {'passed' if ck.passed else ck.verdict.upper()}")
+        lines.append(f"  Chapman–Kolmogorov test: {'passed' if ck.passed else ck.verdict.upper()}")
         lines.append(f"    {ck.criterion}")
     if model.diagnostics:
         lines.append("  diagnostics:")
@@ -131,7 +131,7 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
     else:
         lines.append("  diagnostics:       none")
     lines.append("  caution: a model is only as good as the sampling behind it; validate the model "
-                 "(Chapman-Kolmogorov test) before trusting the kinetics.")
+                 "(Chapman–Kolmogorov test) before trusting the kinetics.")
     return "\n".join(lines) + "\n"
 
 
@@ -193,7 +193,7 @@ def _write_scan_outputs(out: _Outputs, scan, chosen):
 
 
 def _validate(model, labels, args, out: _Outputs):
-    """Macrostates (suggested number), the Chapman-Kolmogorov test and the lag-flow view."""
+    """Macrostates (suggested number), the Chapman–Kolmogorov test and the lag-flow view."""
     from .plots import plot_chapman_kolmogorov, plot_lag_flow
     from .validate import chapman_kolmogorov, lag_flow
     n_sets, reason = model.suggest_n_macrostates()
@@ -201,7 +201,7 @@ def _validate(model, labels, args, out: _Outputs):
     macro = model.find_macrostates(n_sets)
     longest = max(len(r) for r in labels)
     multiples = max(1, min(args.multiples, (longest - 1) // model.lag))
-    ck = chapman_kolmogorov(model, labels, n_sets=n_sets, multiples=multiples, n_samples=args.samples,
+    ck = chapman_kolmogorov(model, labels, n_sets=n_sets, multiples=multiples, n_samples=args.ck_samples,
                             seed=args.seed, progress=not args.quiet)
     out.add_figure("chapman_kolmogorov.png", plot_chapman_kolmogorov(ck))
     out.add_text("chapman_kolmogorov.csv", ck.table().to_csv(index=False))
@@ -399,7 +399,7 @@ def build_parser() -> argparse.ArgumentParser:
             sp.add_argument("--frames", metavar="START:STOP:STEP",
                             help="MD files: frame range and step read from each file, e.g. 0:5000:10")
             sp.add_argument("--scale", choices=("standard", "none"), default="standard",
-                            help="without --tica-dim: cluster features standardised to unit variance "
+                            help="without --tica-dim: cluster features standardized to unit variance "
                                  "(standard, default) or as they are (none)")
         sp.add_argument("--states", type=_positive_int, default=100, help="number of k-means microstates (default %(default)s)")
         sp.add_argument("--tica-dim", type=int, default=None,
@@ -411,12 +411,15 @@ def build_parser() -> argparse.ArgumentParser:
 
     def scanning(sp, default_lags, *, validates):
         sp.add_argument("--lags", default=default_lags, help=f"comma-separated lags in frames (default {default_lags})")
-        sp.add_argument("--samples", type=int, default=20, help="bootstrap samples per lag (default %(default)s; 0 = none)")
+        sp.add_argument("--samples", type=int, default=BOOTSTRAP_SAMPLES,
+                        help="bootstrap samples per lag for the intervals (default %(default)s; 0 = none)")
         sp.add_argument("--timescales", type=_positive_int, default=PROCESSES, help="slow processes to follow (default %(default)s)")
         if not validates:
             return
         sp.add_argument("--multiples", type=_positive_int, default=CK_MULTIPLES,
                         help="Chapman–Kolmogorov test up to this multiple of the lag (default %(default)s)")
+        sp.add_argument("--ck-samples", type=int, default=CK_SAMPLES,
+                        help="bootstrap samples of the Chapman–Kolmogorov test (default %(default)s)")
 
     d = sub.add_parser("demo", help="run the whole job headless on the demo scenario",
                        description="Demo scenario -> TICA -> microstates -> lag scan -> chosen model; writes "

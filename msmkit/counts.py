@@ -34,7 +34,7 @@ RLE_CHANGE_FRACTION = 0.35
 def _pair_codes(run: np.ndarray, lag: int, n_states: int, every_frame: bool) -> np.ndarray:
     """Flat codes ``i * n_states + j`` of the counted pairs (i at t, j at t + lag) of one run.
 
-    Pairs with either end labelled -1 are left out. Returns an intp array.
+    Pairs with either end labeled -1 are left out. Returns an intp array.
     """
     if run.size <= lag:
         return np.empty(0, dtype=np.intp)
@@ -283,7 +283,7 @@ def _code_blocks(runs, lag, n_states, every_frame, block):
     weights; other runs give one code per pair (weights None), written into one preallocated
     buffer (in-place passes, no temporaries) that is yielded each time it fills -- the consumer
     must use a block before asking for the next. Either way at most ``block`` codes are held, so
-    the extra memory stays bounded for any number of frames. Pairs with an end labelled -1 are
+    the extra memory stays bounded for any number of frames. Pairs with an end labeled -1 are
     left out. Strided counting is sliding counting at lag 1 on every ``lag``-th frame.
     """
     total = sum(max(r.size - lag, 0) for r in runs)
@@ -316,7 +316,7 @@ def _code_blocks(runs, lag, n_states, every_frame, block):
             view = buf[filled:filled + (hi - lo)]
             np.multiply(start, n_states, out=view, dtype=np.intp, casting="unsafe")
             np.add(view, end, out=view, casting="unsafe")
-            if unassigned:  # leave out pairs with an end labelled -1
+            if unassigned:  # leave out pairs with an end labeled -1
                 keep = (start >= 0) & (end >= 0)
                 kept = int(np.count_nonzero(keep))
                 view[:kept] = view[keep]

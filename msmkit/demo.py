@@ -70,7 +70,7 @@ FEATURE_NAMES = ("progress", "twist", "end_to_end_nm", "contacts", "gyration_nm"
 BASIN_NAMES = ("unfolded", "intermediate", "folded")
 
 # The invented landscape (energies in kT): three Gaussian wells on a gentle quartic bowl.
-# Columns: centre progress, centre twist, width along progress, width along twist, depth.
+# Columns: center progress, center twist, width along progress, width along twist, depth.
 _WELLS = np.array([
     [-1.5, 0.6, 0.55, 0.50, 5.0],   # unfolded
     [0.1, -0.5, 0.38, 0.32, 5.0],   # intermediate
@@ -155,7 +155,7 @@ def reference_timescales(k: int = 3, spacing: float = 0.05) -> np.ndarray:
     b = np.concatenate([q.ravel() for p, q in pairs] + [p.ravel() for p, q in pairs])
     rate = 1.0 / spacing ** 2  # D = 1 in integrator units
     out = np.bincount(a, weights=rate * np.exp(-(v[b] - v[a]) / 2), minlength=v.size)
-    # Symmetrised generator pi^(1/2) K pi^(-1/2): off-diagonal entries are all D/h^2.
+    # Symmetrized generator pi^(1/2) K pi^(-1/2): off-diagonal entries are all D/h^2.
     sym = sp.csc_matrix((np.full(a.size, rate), (a, b)), shape=(v.size, v.size)) - sp.diags(out)
     w = eigsh(sym, k=k + 1, sigma=1e-9, which="LM", return_eigenvectors=False)
     w = np.sort(w)[::-1][1:]
@@ -163,14 +163,14 @@ def reference_timescales(k: int = 3, spacing: float = 0.05) -> np.ndarray:
 
 
 # Stacked constants for the integrator: axis 0 is (progress, twist), axis 1 the wells.
-_CENTRES = np.stack([_X0, _Y0])          # (2, 3, 1)
+_CENTERS = np.stack([_X0, _Y0])          # (2, 3, 1)
 _INV2W2 = np.stack([_AX, _AY])           # (2, 3, 1)
 _BOWL_W = _BOWL * np.array([[1.0], [2.0]])
 
 
 def _energy_and_force(p):
     """V (kT) and force -grad V at positions p of shape (2, n_runs)."""
-    d = p[:, None, :] - _CENTRES
+    d = p[:, None, :] - _CENTERS
     e = _DEPTH * np.exp(-(d * d * _INV2W2).sum(axis=0))
     p2 = p * p
     v = (_BOWL_W * p2 * p2).sum(axis=0) - e.sum(axis=0)

@@ -31,7 +31,7 @@ class EstimationInfo:
     Attributes
     ----------
     method : str
-        "row-normalised" or "reversible-mle".
+        "row-normalized" or "reversible-mle".
     iterations : int
         Evaluations of the fixed-point map (0 for the non-reversible estimate).
     converged : bool
@@ -101,11 +101,11 @@ def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1
         Transition counts C[i, j] at one lag; must be strongly connected.
     reversible : bool, default True
         Enforce detailed balance pi_i T_ij = pi_j T_ji (reversible MLE); otherwise rows of C
-        are normalised (non-reversible MLE).
+        are normalized (non-reversible MLE).
     tol : float, default 1e-12
         Convergence of the reversible iteration: the largest residual of the stationarity
         equations, max_i |sum_j x_ij / pi_i - 1| (the relative change one plain step would make
-        to pi_i, before normalisation), below ``tol``.
+        to pi_i, before normalization), below ``tol``.
     max_iter : int
         Cap on evaluations of the fixed-point map; a DiagnosticWarning is issued if reached.
     accelerate : bool, default True
@@ -132,7 +132,7 @@ def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1
     -----
     The reversible estimate iterates on the stationary vector (Trendelkamp-Schroer et al. 2015)
 
-        pi_i <- sum_j (c_ij + c_ji) / (c_i / pi_i + c_j / pi_j),   normalised,
+        pi_i <- sum_j (c_ij + c_ji) / (c_i / pi_i + c_j / pi_j),   normalized,
 
     with c_i the row sums of C; at the fixed point x_ij = (c_ij + c_ji) / (c_i/pi_i + c_j/pi_j) is
     the symmetric flow matrix and T_ij = x_ij / sum_k x_ik. Built this way T satisfies detailed
@@ -148,7 +148,7 @@ def estimate_transition_matrix(counts, *, reversible=True, tol=1e-12, max_iter=1
     if not reversible:
         T = np.asarray(sp.diags(1.0 / row) @ C.toarray())
         pi = _stationary_nonreversible(T)
-        info = EstimationInfo("row-normalised", 0, True, log_likelihood(C, T), pi)
+        info = EstimationInfo("row-normalized", 0, True, log_likelihood(C, T), pi)
         return (T, info) if return_info else T
     T, info = _reversible_mle(C, row, tol=tol, max_iter=max_iter, accelerate=accelerate, initial=initial)
     if warn and not info.converged:

@@ -979,8 +979,8 @@ def assign_files(model, files, *, topology=None, frames=None) -> list:
     """Microstate labels of new MD files, computed as for the saved model.
 
     The model file must carry the feature description (``metadata["md_features"]``, written
-    by ``msmkit build`` on MD files) and the cluster centres; the stored feature scaling and
-    TICA projection are applied before each frame goes to the nearest centre.
+    by ``msmkit build`` on MD files) and the cluster centers; the stored feature scaling and
+    TICA projection are applied before each frame goes to the nearest center.
 
     Parameters
     ----------
@@ -996,14 +996,14 @@ def assign_files(model, files, *, topology=None, frames=None) -> list:
     Returns
     -------
     list of int32 arrays
-        One label trajectory per file (microstate indices, as the centres are numbered).
+        One label trajectory per file (microstate indices, as the centers are numbered).
     """
     from .mdfeatures import MDFeatures
 
     spec = model.metadata.get("md_features")
     if not spec or "centers" not in model.extras:
         raise InputError("model: the model file holds no feature description or cluster "
-                         "centres; build it from MD files (msmkit build ... --topology) to "
+                         "centers; build it from MD files (msmkit build ... --topology) to "
                          "assign new trajectories with it")
     trajs = load_trajectories(files, topology=topology, frames=frames,
                               features=MDFeatures.from_dict(spec["spec"]))

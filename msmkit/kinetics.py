@@ -43,7 +43,7 @@ __all__ = [
     "transition_paths",
 ]
 
-#: tolerance on row sums of T and on the normalisation / stationarity of pi
+#: tolerance on row sums of T and on the normalization / stationarity of pi
 _STOCHASTIC_TOL = 1e-6
 #: routes found at most when no ``max_paths`` is given (a DiagnosticWarning says when hit)
 DEFAULT_MAX_PATHS = 1000

@@ -9,7 +9,7 @@ References
 Deuflhard & Weber, Linear Algebra Appl. 398, 161 (2005): robust Perron cluster analysis
 (PCCA+), the inner simplex algorithm and the feasibility conditions.
 Röblitz & Weber, Adv. Data Anal. Classif. 7, 147 (2013): the crispness objective, the
-optimisation over the free entries of the transformation matrix, Schur vectors for
+optimization over the free entries of the transformation matrix, Schur vectors for
 non-reversible chains, and the Galerkin projection onto the affinity.
 """
 from __future__ import annotations
@@ -36,7 +36,7 @@ __all__ = [
     "suggest_n_macrostates",
 ]
 
-#: beyond this many sets the (n_sets - 1)^2 free parameters are not optimised (too slow)
+#: beyond this many sets the (n_sets - 1)^2 free parameters are not optimized (too slow)
 MAX_OPTIMISED_SETS = 20
 #: eigenvalues closer than this are treated as degenerate when choosing the subspace
 _DEGENERATE = 1e-10
@@ -129,7 +129,7 @@ def _feasible(A: np.ndarray, X: np.ndarray) -> np.ndarray:
     """Complete the free block A[1:, 1:] to a feasible transformation matrix.
 
     Rows of X A must sum to 1 (A[1:, 0] from the zero row sums of A[1:]) and be non-negative
-    (A[0, j] lifts the smallest entry of column j to 0); finally the first row is normalised
+    (A[0, j] lifts the smallest entry of column j to 0); finally the first row is normalized
     to sum 1 (Röblitz & Weber 2013, Sec. 3.3).
     """
     A = A.copy()
@@ -181,7 +181,7 @@ def _pcca(T: np.ndarray, pi: np.ndarray, m: int, reversible: bool, optimize: boo
             B[1:, 1:] = res.x.reshape(m - 1, m - 1)
             A = _feasible(B, X)
     elif optimize and m > MAX_OPTIMISED_SETS:
-        warnings.warn(f"PCCA+ with {m} sets: the {(m - 1) ** 2} free parameters were not optimised "
+        warnings.warn(f"PCCA+ with {m} sets: the {(m - 1) ** 2} free parameters were not optimized "
                       f"(more than {MAX_OPTIMISED_SETS} sets); affinity come from the inner "
                       f"simplex vertices and may be fuzzier than necessary", DiagnosticWarning,
                       stacklevel=3)
@@ -213,7 +213,7 @@ def pcca_affinity(T, pi, n_sets: int, *, reversible: bool | None = None,
     The leading ``n_sets`` right eigenvectors of T (Schur vectors for a non-reversible T),
     orthonormal in the pi-weighted inner product, are mapped by a linear transformation A onto
     affinity chi = X A that are non-negative and sum to 1 in every row. A starts from the
-    inner simplex algorithm and is optimised for crispness (Nelder-Mead on the free entries),
+    inner simplex algorithm and is optimized for crispness (Nelder-Mead on the free entries),
     then made feasible.
 
     Parameters
@@ -227,7 +227,7 @@ def pcca_affinity(T, pi, n_sets: int, *, reversible: bool | None = None,
     reversible : bool, optional
         Use the symmetric eigenproblem (detailed balance). Default: test detailed balance.
     optimize : bool
-        Optimise the crispness objective (default). False keeps the feasible inner-simplex
+        Optimize the crispness objective (default). False keeps the feasible inner-simplex
         solution, which is faster and often close.
 
     Returns
@@ -620,7 +620,7 @@ def find_macrostates(T, pi, n_sets: int, *, states=None, time_per_step: float = 
     reversible : bool, optional
         Symmetric eigenproblem; default: test detailed balance.
     optimize : bool
-        Optimise the PCCA+ crispness objective (default True).
+        Optimize the PCCA+ crispness objective (default True).
     population_samples : array_like, shape (n_samples, n_sets), optional
         Macrostate populations of resampled models, already matched to these macrostates.
 

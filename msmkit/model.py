@@ -143,7 +143,7 @@ class MarkovModel:
 
     def modes(self, k: int | None = None) -> np.ndarray:
         """Right eigenvectors (columns) belonging to :meth:`eigenvalues`; for a reversible model
-        normalised so that sum_i pi_i r_i^2 = 1."""
+        normalized so that sum_i pi_i r_i^2 = 1."""
         return self._decomposition(k)[1]
 
     def relaxation_times(self, k: int | None = None) -> np.ndarray:
@@ -214,7 +214,7 @@ class MarkovModel:
         n_sets : int
             Number of macrostates.
         optimize : bool
-            Optimise the affinity (the published objective); False keeps the inner-simplex guess.
+            Optimize the affinity (the published objective); False keeps the inner-simplex guess.
         labels : label trajectories, optional
             The data of the model; with ``n_samples`` > 0 the macrostate populations get
             bootstrap intervals (whole runs resampled, affinity held fixed).

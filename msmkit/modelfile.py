@@ -18,7 +18,7 @@ unit                   str
 reversible             bool
 metadata               JSON string (parameters, version, creation time, fingerprint, ...)
 optional: centers (k, d), tica_mean (f,), tica_components (d, f), affinity (n, m),
-          feature_mean (f,), feature_scale (f,) (features standardised before clustering)
+          feature_mean (f,), feature_scale (f,) (features standardized before clustering)
 
 Limits
 ------

@@ -14,7 +14,7 @@ __all__ = ["ck_deviations", "figure_png", "plot_chapman_kolmogorov", "plot_chapm
            "plot_cross_validation", "plot_kinetics_maps", "plot_lag_flow", "plot_macrostate_network",
            "plot_populations", "plot_state_map", "plot_timescales", "PALETTE"]
 
-#: the project's colours for successive processes / series
+#: the project's colors for successive processes / series
 PALETTE = ("#0f5c8c", "#c44536", "#4d8b31", "#b5851b", "#6b4c9a", "#2f8f8f", "#8c5a3c", "#5a5a5a")
 UNRESOLVED = "#9aa5b1"
 
@@ -46,8 +46,8 @@ def figure_png(fig, dpi: int = 96) -> bytes:
     return buf.getvalue()
 
 
-#: colours of successive processes in the implied-timescale figure, slowest first
-PROCESS_COLOURS = ("#1d3557", "#2a9d8f", "#c7851f", "#8e3b8a", "#b5452b", "#6b7f2a", "#4a6fa5", "#7a6a58")
+#: colors of successive processes in the implied-timescale figure, slowest first
+PROCESS_COLORS = ("#1d3557", "#2a9d8f", "#c7851f", "#8e3b8a", "#b5452b", "#6b7f2a", "#4a6fa5", "#7a6a58")
 #: the resolvability line t = tau and the lag markers
 _GUIDE = "#3b3b3b"
 _CHOSEN = "#d1495b"
@@ -100,7 +100,7 @@ def _dodge(n_processes: int, factor: float = 1.05) -> np.ndarray:
 def plot_timescales(scan, *, processes=None, selected_lag=None, width=6.4, height=4.8):
     """Implied timescales against lag time, on log axes with physical units.
 
-    One colour per process (slowest first), a point per scanned lag with a vertical bar for the
+    One color per process (slowest first), a point per scanned lag with a vertical bar for the
     bootstrap interval; the processes are set slightly apart along the lag axis (a factor
     :func:`_dodge`) so that their bars do not hide each other. A point is hollow where the value
     cannot be taken at face value: at or below the lag time, or with an interval wider than the
@@ -146,16 +146,16 @@ def plot_timescales(scan, *, processes=None, selected_lag=None, width=6.4, heigh
             ha="left", va="top", fontsize=7.5, color=_GUIDE, zorder=1)
 
     for p in range(k):
-        colour = PROCESS_COLOURS[p % len(PROCESS_COLOURS)]
+        color = PROCESS_COLORS[p % len(PROCESS_COLORS)]
         px = x * offsets[p]
         bars = shown[:, p] & np.isfinite(lo[:, p]) & np.isfinite(hi[:, p])
         if bars.any():
-            ax.vlines(px[bars], lo[bars, p], hi[bars, p], color=colour, lw=1.3, zorder=2)
+            ax.vlines(px[bars], lo[bars, p], hi[bars, p], color=color, lw=1.3, zorder=2)
         firm, weak = shown[:, p] & ~unclear[:, p], shown[:, p] & unclear[:, p]
         name = f"process {p + 1}" + (" (slowest)" if p == 0 else "")
-        ax.plot(px[firm], ts[firm, p], ls="none", marker="o", ms=5.5, color=colour, zorder=3, label=name,
+        ax.plot(px[firm], ts[firm, p], ls="none", marker="o", ms=5.5, color=color, zorder=3, label=name,
                 gid="timescale points")
-        ax.plot(px[weak], ts[weak, p], ls="none", marker="o", ms=5.5, mfc="white", mec=colour, mew=1.3,
+        ax.plot(px[weak], ts[weak, p], ls="none", marker="o", ms=5.5, mfc="white", mec=color, mew=1.3,
                 zorder=3, label=f"_{name}, not resolved", gid="timescale points")
     if unclear[shown].any():
         ax.plot([], [], ls="none", marker="o", ms=5.5, mfc="white", mec=_GUIDE, mew=1.3,
@@ -221,22 +221,22 @@ def plot_populations(model, *, temperature=None, max_states: int = 60, width=6.4
 
 # --------------------------------------------------------------------------- validation figures
 
-#: colour of the fixed point, lag-0 corner and other reference marks
+#: color of the fixed point, lag-0 corner and other reference marks
 _INK = "#222222"
 
 
-def _verdict_colour(ok: bool) -> str:
+def _verdict_color(ok: bool) -> str:
     return PALETTE[2] if ok else PALETTE[1]
 
 
-#: colours of |z| in the Chapman-Kolmogorov summary: calm blues up to the pass threshold, then
-#: warm colours; the break sits at the threshold (the middle of the scale)
-DEVIATION_COLOURS = (("#f3f1ea", "#a9c8cf", "#3f7f94"), ("#f2c14e", "#d9772b", "#9e2a2b"))
+#: colors of |z| in the Chapman–Kolmogorov summary: calm blues up to the pass threshold, then
+#: warm colors; the break sits at the threshold (the middle of the scale)
+DEVIATION_COLORS = (("#f3f1ea", "#a9c8cf", "#3f7f94"), ("#f2c14e", "#d9772b", "#9e2a2b"))
 
 
 def _deviation_map():
     from matplotlib.colors import LinearSegmentedColormap
-    calm, warm = DEVIATION_COLOURS
+    calm, warm = DEVIATION_COLORS
     nodes = [(0.0, calm[0]), (0.25, calm[1]), (0.4999, calm[2]), (0.5, warm[0]), (0.75, warm[1]), (1.0, warm[2])]
     return LinearSegmentedColormap.from_list("msmkit_deviation", nodes).with_extremes(bad="#d9d9d9")
 
@@ -248,7 +248,7 @@ def _critical_z(confidence: float) -> float:
 
 
 def ck_deviations(ck):
-    """How far the data lie from the model in each cell of a Chapman-Kolmogorov test, in units
+    """How far the data lie from the model in each cell of a Chapman–Kolmogorov test, in units
     of the uncertainty of the estimate.
 
     z = (estimate - model) / sigma, with sigma the half of the bootstrap interval on the side
@@ -299,14 +299,14 @@ def _signed(v: float, digits: int) -> str:
 
 
 def plot_chapman_kolmogorov(ck, *, width=None, height=None):
-    """Chapman-Kolmogorov test in one table: how far data and model disagree, per set pair and lag.
+    """Chapman–Kolmogorov test in one table: how far data and model disagree, per set pair and lag.
 
     Rows are pairs of sets "a → b" (start in set a, be in set b), grouped by a; columns are the
     multiples k of the model's lag. Each cell prints z = (estimate − model) / σ from
-    :func:`ck_deviations` and is coloured by |z|: blues up to the pass threshold, warm colours
+    :func:`ck_deviations` and is colored by |z|: blues up to the pass threshold, warm colors
     beyond it. Cells the test could only judge by the tolerance (too few data for an interval)
     are hatched and print the difference Δ = estimate − model instead; without any interval
-    (no bootstrap) every cell prints Δ and is coloured by |Δ| against the tolerance. Cells with
+    (no bootstrap) every cell prints Δ and is colored by |Δ| against the tolerance. Cells with
     no estimate print "n/a"; failing cells are framed. The threshold and the verdict are in the
     title; :func:`plot_chapman_kolmogorov_pair` draws one pair in detail.
 
@@ -330,13 +330,13 @@ def plot_chapman_kolmogorov(ck, *, width=None, height=None):
     failed = (~ck.within & np.isfinite(ck.estimated))[:, a, b].T
     judged = int(np.isfinite(ck.estimated).sum())
     by_sigma = bool(np.isfinite(z).any())
-    if by_sigma:  # colour |z|; cells judged by the tolerance are the hatched exceptions
+    if by_sigma:  # color |z|; cells judged by the tolerance are the hatched exceptions
         shade, limit, hatch = np.abs(z), critical, tol
         scale = "|z| = |estimate − model| / σ  [σ of the estimate]"
         what = "cell: z = (estimate − model) / σ of the estimate"
         rule = (f"fails when |z| > {critical:.3g}, i.e. the model lies outside the {100 * ck.confidence:g}% "
                 f"bootstrap interval")
-    else:  # no interval anywhere: colour |Δ| against the tolerance
+    else:  # no interval anywhere: color |Δ| against the tolerance
         shade, limit, hatch = np.where(tol, np.abs(diff), np.nan), ck.tolerance, np.zeros_like(tol)
         scale = "|Δ| = |estimate − model|  [probability]"
         what = "cell: Δ = estimate − model (probability); no bootstrap interval, so no σ"
@@ -389,7 +389,7 @@ def plot_chapman_kolmogorov(ck, *, width=None, height=None):
 
     verdict = "passed" if ck.passed else "failed"
     fig.suptitle(f"Chapman–Kolmogorov test {verdict}: {int(failed.sum())} of {judged} cells fail "
-                 f"(model at τ = {ck.lag * ck.dt:g} {ck.unit})", fontsize=10.5, color=_verdict_colour(ck.passed))
+                 f"(model at τ = {ck.lag * ck.dt:g} {ck.unit})", fontsize=10.5, color=_verdict_color(ck.passed))
     ax.set_title(f"{what}\n{rule}", fontsize=8)
     notes = []
     if hatch.any():
@@ -403,7 +403,7 @@ def plot_chapman_kolmogorov(ck, *, width=None, height=None):
 
 
 def plot_chapman_kolmogorov_pair(ck, a, b, *, width=5.8, height=3.9):
-    """One pair of sets of a Chapman-Kolmogorov test in detail: model against data over time.
+    """One pair of sets of a Chapman–Kolmogorov test in detail: model against data over time.
 
     The probability to be in set b a time t after starting in set a (from the model's
     stationary weights inside a): the model's prediction T(τ)^k as a line from t = 0 (1 when
@@ -431,18 +431,18 @@ def plot_chapman_kolmogorov_pair(ck, a, b, *, width=5.8, height=3.9):
     est, lo, hi = ck.estimated[:, a, b], ck.lower[:, a, b], ck.upper[:, a, b]
     pred = ck.predicted[:, a, b]
     fig, ax = _new_figure(width, height)
-    model_colour, data_colour = PROCESS_COLOURS[0], PROCESS_COLOURS[4]
-    ax.plot(np.concatenate([[0.0], t]), np.concatenate([[1.0 if a == b else 0.0], pred]), color=model_colour,
+    model_color, data_color = PROCESS_COLORS[0], PROCESS_COLORS[4]
+    ax.plot(np.concatenate([[0.0], t]), np.concatenate([[1.0 if a == b else 0.0], pred]), color=model_color,
             lw=1.8, marker="s", ms=3.5, zorder=2, label="model: T(τ)^k")
     bars = np.isfinite(lo) & np.isfinite(hi) & ~ck.used_tolerance[:, a, b]
     if bars.any():
-        ax.vlines(t[bars], lo[bars], hi[bars], color=data_colour, lw=1.4, zorder=3,
+        ax.vlines(t[bars], lo[bars], hi[bars], color=data_color, lw=1.4, zorder=3,
                   label=f"{100 * ck.confidence:g}% bootstrap interval")
     by_tol = ck.used_tolerance[:, a, b] & np.isfinite(est)
     if by_tol.any():
-        ax.vlines(t[by_tol], est[by_tol] - ck.tolerance, est[by_tol] + ck.tolerance, color=data_colour, lw=1.2,
+        ax.vlines(t[by_tol], est[by_tol] - ck.tolerance, est[by_tol] + ck.tolerance, color=data_color, lw=1.2,
                   linestyles="dashed", zorder=3, label=f"no interval: ± tolerance {ck.tolerance:g}")
-    ax.plot(t, est, ls="none", marker="D", ms=5, color=data_colour, zorder=4, label="data: estimated at lag kτ")
+    ax.plot(t, est, ls="none", marker="D", ms=5, color=data_color, zorder=4, label="data: estimated at lag kτ")
     miss = ~ck.within[:, a, b] & np.isfinite(est)
     if miss.any():
         ax.plot(t[miss], est[miss], ls="none", marker="o", ms=12, mfc="none", mec=_INK, mew=1.3, zorder=5,
@@ -526,16 +526,16 @@ def plot_lag_flow(flows, *, full_square=False, max_labels=8, width=6.0, height=6
     fig, ax = _new_figure(width, height)
     lags, est, lo, hi = _merged_data_path(flows)
     has_ci = bool(np.any(np.isfinite(lo[1:])))
-    colours = [PALETTE[(0, 2, 4, 5, 6, 7, 3)[j % 7]] for j in range(len(flows))]
+    colors = [PALETTE[(0, 2, 4, 5, 6, 7, 3)[j % 7]] for j in range(len(flows))]
 
     ax.plot([fp[0], 1.0], [fp[1], 1.0], ls="--", lw=1.1, color=UNRESOLVED, zorder=1,
             label="path of a single relaxation process")
-    for f, colour in zip(flows, colours):
+    for f, color in zip(flows, colors):
         p = f.predicted
         for i in range(1, len(f.lags)):
             ax.plot([p[i, 0], f.estimated[i, 0]], [p[i, 1], f.estimated[i, 1]], ls=":", lw=0.8, color=_INK,
                     alpha=0.6, zorder=2)
-        ax.plot(p[:, 0], p[:, 1], color=colour, lw=1.7, marker="o", ms=3.5, zorder=3,
+        ax.plot(p[:, 0], p[:, 1], color=color, lw=1.7, marker="o", ms=3.5, zorder=3,
                 label=f"model at τ = {f.lags[1] * f.dt:g} {unit}: T(τ)^k" + ("" if f.coincide else " (parts)"))
     if has_ci:
         xerr = np.abs(np.vstack([est[:, 0] - lo[:, 0], hi[:, 0] - est[:, 0]]))
@@ -568,9 +568,9 @@ def plot_lag_flow(flows, *, full_square=False, max_labels=8, width=6.0, height=6
     ax.set_xlim(max(0.0, low[0] - pad[0]), high[0] + pad[0])
     ax.set_ylim(max(0.0, low[1] - pad[1]), high[1] + pad[1])
     _point_off_view(ax, fp)
-    for f, colour in zip(flows, colours):
+    for f, color in zip(flows, colors):
         for i in range(len(f.lags) - 1):
-            _arrow(ax, f.predicted[i], f.predicted[i + 1], colour)
+            _arrow(ax, f.predicted[i], f.predicted[i + 1], color)
     for i in range(len(lags) - 1):
         _arrow(ax, est[i], est[i + 1], PALETTE[1])
     _label_lags(ax, est[1:], lags[1:] * first.dt, unit, max_labels)
@@ -578,7 +578,7 @@ def plot_lag_flow(flows, *, full_square=False, max_labels=8, width=6.0, height=6
     ax.set_ylabel(f"p{b}{b}(t): probability to be in set {b} a lag t after being there")
     ok = all(f.coincide for f in flows)
     ax.set_title(f"Lag flow of sets {a} and {b}: " + ("data and model paths coincide" if ok else "paths part"),
-                 fontsize=10, color=_verdict_colour(ok))
+                 fontsize=10, color=_verdict_color(ok))
     ax.grid(True, color="#e4e4e4", lw=0.6)
     ax.legend(fontsize=7.5, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncols=2, frameon=False)
     return fig
@@ -610,7 +610,7 @@ def _point_off_view(ax, fp):
 
 def _label_lags(ax, points, times, unit, max_labels):
     """Write lag times beside the data points: the longest lag always, others where they do not
-    crowd an already labelled point (5 % of the axis span), at most ``max_labels``."""
+    crowd an already labeled point (5 % of the axis span), at most ``max_labels``."""
     span = np.array([np.diff(ax.get_xlim())[0], np.diff(ax.get_ylim())[0]])
     chosen = []
     for i in [len(points) - 1, *range(len(points) - 1)]:
@@ -623,7 +623,7 @@ def _label_lags(ax, points, times, unit, max_labels):
                     color=PALETTE[1])
 
 
-def _arrow(ax, start, end, colour):
+def _arrow(ax, start, end, color):
     """An arrow head in the middle of the segment start -> end (direction of increasing lag),
     drawn only where the segment is long enough on screen (2 % of the view) to carry one."""
     start, end = np.asarray(start, float), np.asarray(end, float)
@@ -632,7 +632,7 @@ def _arrow(ax, start, end, colour):
     if np.hypot(*(_fraction(ax, end) - _fraction(ax, start))) < 0.02:
         return
     ax.annotate("", xy=start + 0.6 * (end - start), xytext=start + 0.4 * (end - start),
-                arrowprops=dict(arrowstyle="-|>", color=colour, lw=1.0, mutation_scale=10), zorder=5)
+                arrowprops=dict(arrowstyle="-|>", color=color, lw=1.0, mutation_scale=10), zorder=5)
 
 
 def plot_cross_validation(cv, *, width=6.4, height=4.2):
@@ -651,13 +651,13 @@ def plot_cross_validation(cv, *, width=6.4, height=4.2):
     if cv.n_states is not None:
         x = cv.n_states.astype(float)
         for j, lag in enumerate(cv.lags):
-            colour = PALETTE[j % len(PALETTE)]
+            color = PALETTE[j % len(PALETTE)]
             ax.plot(np.repeat(x, cv.scores.shape[-1]), cv.scores[:, j].ravel(), ls="none", marker=".", ms=4,
-                    color=colour, alpha=0.35)
-            ax.errorbar(x, mean[:, j], yerr=spread[:, j], color=colour, marker="o", ms=5, capsize=3, lw=1.5,
+                    color=color, alpha=0.35)
+            ax.errorbar(x, mean[:, j], yerr=spread[:, j], color=color, marker="o", ms=5, capsize=3, lw=1.5,
                         label=f"lag {lag * cv.dt:g} {cv.unit}")
             best = int(np.nanargmax(mean[:, j]))
-            ax.plot([x[best]], [mean[best, j]], ls="none", marker="o", ms=13, mfc="none", mec=colour, mew=1.5,
+            ax.plot([x[best]], [mean[best, j]], ls="none", marker="o", ms=13, mfc="none", mec=color, mew=1.5,
                     label="highest mean" if j == 0 else None)
         if x.max() / x.min() >= 8:
             ax.set_xscale("log")
@@ -680,8 +680,8 @@ def plot_cross_validation(cv, *, width=6.4, height=4.2):
 
 # --------------------------------------------------------------------------- microstates
 
-#: colour map of the density map (light = low free energy)
-STATE_MAP_COLOURS = "cividis_r"
+#: color map of the density map (light = low free energy)
+STATE_MAP_COLORS = "cividis_r"
 
 
 def plot_state_map(coords, centers, counts, *, names=("coordinate 1", "coordinate 2"), bins: int | None = None,
@@ -723,7 +723,7 @@ def plot_state_map(coords, centers, counts, *, names=("coordinate 1", "coordinat
         with np.errstate(divide="ignore"):
             energy = np.log(hist.max()) - np.log(hist)
         energy[hist == 0] = np.nan
-        mesh = left.pcolormesh(xe, ye, energy.T, cmap=STATE_MAP_COLOURS, shading="flat", rasterized=True)
+        mesh = left.pcolormesh(xe, ye, energy.T, cmap=STATE_MAP_COLORS, shading="flat", rasterized=True)
         fig.colorbar(mesh, ax=left, label="−ln(frame density) [kT]", shrink=0.9)
         left.scatter(centers[:, 0], centers[:, 1], s=26, c="white", edgecolors=PALETTE[1], linewidths=1.1,
                      label="microstate centers", zorder=3)
@@ -772,10 +772,10 @@ def plot_kinetics_maps(centers, model, macrostates, paths, *, names=("coordinate
     """The kinetics on the state map: macrostates, the committor, and a slow eigenvector.
 
     Each microstate center of the model's kept states is a dot in the first two coordinates,
-    the dot area proportional to the stationary population. Left: coloured by macrostate
-    (largest membership), numbered at their population-weighted mean. Middle: coloured by the
+    the dot area proportional to the stationary population. Left: colored by macrostate
+    (largest membership), numbered at their population-weighted mean. Middle: colored by the
     committor toward the target of ``paths`` (probability to reach the target before the source).
-    Right: coloured by right eigenvector ``mode`` (1 = slowest process): states of opposite
+    Right: colored by right eigenvector ``mode`` (1 = slowest process): states of opposite
     sign exchange population in that process.
 
     Parameters
@@ -807,8 +807,8 @@ def plot_kinetics_maps(centers, model, macrostates, paths, *, names=("coordinate
     fig = _figure_class()(figsize=(width, height), layout="constrained")
     axes = fig.subplots(1, 3, sharex=True, sharey=True)
     owner = np.asarray(macrostates.macro_index)
-    colours = np.array([PALETTE[j % len(PALETTE)] for j in owner])
-    axes[0].scatter(xy[:, 0], xy[:, 1], s=size, c=colours, edgecolors="white", linewidths=0.6, zorder=2)
+    colors = np.array([PALETTE[j % len(PALETTE)] for j in owner])
+    axes[0].scatter(xy[:, 0], xy[:, 1], s=size, c=colors, edgecolors="white", linewidths=0.6, zorder=2)
     for j in range(macrostates.n_sets):
         inside = owner == j
         if inside.any():
@@ -860,7 +860,7 @@ def plot_macrostate_network(paths, *, positions=None, labels=None, min_share: fl
     Returns
     -------
     matplotlib.figure.Figure
-        Disc area is proportional to the stationary population, disc colour is the committor
+        Disc area is proportional to the stationary population, disc color is the committor
         (0 at the source, 1 at the target), arrow width is proportional to the net current
         and the number on it is the share of the total reactive flux it carries.
     """
@@ -913,6 +913,6 @@ def plot_macrostate_network(paths, *, positions=None, labels=None, min_share: fl
     ax.set_yticks([])
     for side in ax.spines.values():
         side.set_visible(False)
-    ax.set_title("Net reactive current between macrostates (share of the total flux); colour: committor",
+    ax.set_title("Net reactive current between macrostates (share of the total flux); color: committor",
                  fontsize=9.5)
     return fig

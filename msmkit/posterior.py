@@ -34,7 +34,7 @@ T_00 ~ Beta(C_00 + b + 1, C_01 + b + 1) and T_11 ~ Beta(C_11 + b + 1, C_10 + b +
 independently (b = 0: uniform prior on each row; b -> -1: posterior mean of each row -> the
 maximum-likelihood value).
 
-Why the moves are valid although the density of unnormalised X cannot be normalised: in log
+Why the moves are valid although the density of unnormalised X cannot be normalized: in log
 coordinates y = log x the density f(X) prod x (f the density above) does not change along
 (1, ..., 1) (the density has degree 0), so it is a flat density of the scale times the posterior of the
 direction. Every move is an exact conditional draw or a Metropolis-Hastings step with a
@@ -190,7 +190,7 @@ class _FluxChain:
 
 
 def _matchings(i: np.ndarray, j: np.ndarray, labels: np.ndarray) -> list[np.ndarray]:
-    """Split the pairs (i, j) into groups in which no state occurs twice (greedy edge colouring).
+    """Split the pairs (i, j) into groups in which no state occurs twice (greedy edge coloring).
 
     Returns a list of arrays of ``labels`` (the positions of the pairs in the flux vector)."""
     used: list[set] = []
@@ -243,7 +243,7 @@ def _prepare(counts, burn_in, thin, prior_count, initial, seed):
     if not isinstance(prior_count, numbers.Real) or isinstance(prior_count, bool) \
             or not np.isfinite(prior_count) or prior_count <= -1:
         raise InputError(f"prior_count must be a number > -1 (default -0.5), got {prior_count!r}; "
-                         f"at -1 or below the posterior of a pair seen in one direction only cannot be normalised")
+                         f"at -1 or below the posterior of a pair seen in one direction only cannot be normalized")
     chain = _FluxChain(C, prior_count, _initial_matrix(C, initial), np.random.default_rng(seed))
     return chain, burn_in, thin
 

@@ -2,7 +2,7 @@
 
 TICA finds the linear combinations of features that decorrelate most slowly: the solutions of
 the generalised eigenvalue problem ``C(tau) v = lambda C(0) v`` with ``C(0)`` the covariance of
-the features and ``C(tau)`` the symmetrised time-lagged covariance. The eigenvalue of a
+the features and ``C(tau)`` the symmetrized time-lagged covariance. The eigenvalue of a
 component is the autocorrelation of that component at lag ``tau``, and ``-tau / ln(lambda)``
 the relaxation time.
 
@@ -123,12 +123,12 @@ def lagged_moments(block: np.ndarray, lag: int, shift: np.ndarray, *,
         exactly once (see :func:`run_moments`).
     """
     m = block.shape[0]
-    centred = np.array(block, dtype=np.float64)  # one float64 copy, shifted in place
-    centred -= shift
-    starts, ends = centred[:max(0, m - lag)], centred[lag:]
+    centerd = np.array(block, dtype=np.float64)  # one float64 copy, shifted in place
+    centerd -= shift
+    starts, ends = centerd[:max(0, m - lag)], centerd[lag:]
     moments = LaggedMoments(
         lag=int(lag), shift=shift, n_frames=m,
-        frame_sum=centred.sum(axis=0), frame_outer=centred.T @ centred,
+        frame_sum=centerd.sum(axis=0), frame_outer=centerd.T @ centerd,
         n_pairs=len(ends), pair_start_sum=starts.sum(axis=0), pair_end_sum=ends.sum(axis=0),
         pair_cross=starts.T @ ends)
     if context is not None and len(context) and m:
@@ -138,7 +138,7 @@ def lagged_moments(block: np.ndarray, lag: int, shift: np.ndarray, *,
         n_cross = min(c - first, m - (first + lag - c))
         if n_cross > 0:
             cs = np.asarray(context[first:first + n_cross], dtype=np.float64) - shift
-            ce = centred[first + lag - c:first + lag - c + n_cross]
+            ce = centerd[first + lag - c:first + lag - c + n_cross]
             d = len(shift)
             moments = moments + LaggedMoments(int(lag), shift, 0, np.zeros(d), np.zeros((d, d)),
                                               n_cross, cs.sum(axis=0), ce.sum(axis=0), cs.T @ ce)
@@ -175,10 +175,10 @@ def run_moments(run, lag: int, shift: np.ndarray, chunk_size: int | None = None,
 
 
 def tica_covariances(moments: LaggedMoments):
-    """Mean, instantaneous covariance C(0) and symmetrised lagged covariance C(tau).
+    """Mean, instantaneous covariance C(0) and symmetrized lagged covariance C(tau).
 
-    The mean and C(0) are taken over all frames; C(tau) over all pairs, centred with the same
-    mean and symmetrised, ``(C + C^T) / 2``, which enforces time-reversal symmetry [2]_ [3]_.
+    The mean and C(0) are taken over all frames; C(tau) over all pairs, centerd with the same
+    mean and symmetrized, ``(C + C^T) / 2``, which enforces time-reversal symmetry [2]_ [3]_.
 
     Returns
     -------
@@ -278,11 +278,11 @@ class TICA:
     mean_ : ndarray (n_features,)
         Mean over all frames used.
     covariance_, lagged_covariance_ : ndarray (n_features, n_features)
-        C(0) and symmetrised C(lag).
+        C(0) and symmetrized C(lag).
     eigenvalues_ : ndarray (dim_,)
         Autocorrelations of the kept components at the lag, descending.
     components_ : ndarray (dim_, n_features)
-        Rows are the kept components (weights on centred features, unit variance).
+        Rows are the kept components (weights on centerd features, unit variance).
     relaxation_times_ : ndarray (dim_,)
         Relaxation times ``-lag / ln(eigenvalue)`` in frames (NaN for eigenvalues <= 0).
     cumulative_kinetic_variance_ : ndarray

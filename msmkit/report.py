@@ -97,7 +97,7 @@ def report_html(model, *, scan=None, ck=None, macrostates=None, settings=None,
     scan : LagScan, optional
         The lag scan the model was chosen from (timescale figure and table with intervals).
     ck : CKResult, optional
-        A Chapman-Kolmogorov test of the model (figure, verdict and table with intervals).
+        A Chapman–Kolmogorov test of the model (figure, verdict and table with intervals).
     macrostates : Macrostates, optional
         Macrostates of the model (populations with intervals when computed from labels, and
         mean first-passage times).
@@ -197,7 +197,7 @@ def _summary_section(model, scan, ck, macro):
         items.append(f"Lag scan over {len(scan.lags)} lags: " + (
             f"suggested lag {_frames(scan.suggested_lag)}." if scan.suggested_lag is not None else "no lag suggested."))
     if ck is not None:
-        items.append(f"Chapman-Kolmogorov test on {ck.n_sets} sets: {'passed' if ck.passed else 'FAILED'}.")
+        items.append(f"Chapman–Kolmogorov test on {ck.n_sets} sets: {'passed' if ck.passed else 'FAILED'}.")
     if macro is not None:
         items.append(f"{macro.n_sets} macrostates (PCCA+), crispness {macro.crispness:.3g}.")
     return ["<h2>Summary</h2><ul>" + "".join(f"<li>{_e(x)}</li>" for x in items) + "</ul>"]
@@ -294,7 +294,7 @@ def _ck_section(ck):
             "interval of the estimate": [_interval(a, b) for a, b in zip(df["lower"], df["upper"])],
             "within": ["yes" if w else "NO" for w in df["within"]]}
     sets = "; ".join(f"set {j}: {len(s)} states" for j, s in enumerate(ck.members))
-    return ["<h2>Chapman-Kolmogorov test</h2>",
+    return ["<h2>Chapman–Kolmogorov test</h2>",
             f"<div class='{'note' if ck.passed else 'caution'}'>{_e(ck.criterion)}</div>",
             _figure(plot_chapman_kolmogorov(ck), "Predicted (model) against estimated (data) set-to-set "
                                                  "probabilities at multiples of the lag."),

@@ -46,7 +46,7 @@ def equilibrium_distribution(T) -> np.ndarray:
     (Grassmann, Taksar & Heyman, Oper. Res. 33, 1107 (1985)), which uses only off-diagonal
     entries and never subtracts: every entry of pi keeps full relative accuracy even for very
     sticky chains (exit probabilities of 1e-12 or less, where ``1 - T_ii`` has lost all digits).
-    Larger matrices use a linear solve with the normalisation replacing one equation.
+    Larger matrices use a linear solve with the normalization replacing one equation.
 
     Parameters
     ----------
@@ -120,7 +120,7 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
                         reversible: bool | None = None, vectors: bool = False):
     """Eigenvalues (and right eigenvectors) of T sorted by magnitude, largest first.
 
-    For a reversible T (detailed balance with ``pi``) the matrix is symmetrised as
+    For a reversible T (detailed balance with ``pi``) the matrix is symmetrized as
     D^1/2 T D^-1/2 with D = diag(pi) and solved with a symmetric solver: the spectrum is real
     and the solve stable. Otherwise a general solver is used and complex eigenvalues may appear.
 
@@ -134,7 +134,7 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
     reversible : bool, optional
         Use the symmetric path; default: test detailed balance.
     vectors : bool
-        Also return right eigenvectors (columns), normalised so that sum_i pi_i r_i^2 = 1 in the
+        Also return right eigenvectors (columns), normalized so that sum_i pi_i r_i^2 = 1 in the
         reversible case.
 
     Returns
@@ -201,7 +201,7 @@ def _as_distribution(pi, n: int) -> np.ndarray:
 
 def _leading_eigen(T, pi, k, reversible, vectors):
     """The k largest-magnitude eigenpairs by ARPACK (implicitly restarted Lanczos / Arnoldi) on a
-    sparse copy of the (symmetrised) matrix: far cheaper than a full dense solve when k << n.
+    sparse copy of the (symmetrized) matrix: far cheaper than a full dense solve when k << n.
     Falls back to the dense solver if ARPACK does not converge."""
     import scipy.sparse as sp
     import scipy.sparse.linalg as sla
@@ -352,7 +352,7 @@ def chain_diagnostics(eigenvalues, *, lag: int, dt: float, unit: str, changes=No
                          f"the slowest process (split by the sign of the eigenvector) only {crossings:.3g} "
                          f"time(s) at this lag, among {total:.3g} change(s) between distinct states in all. "
                          f"Fewer than {FEW_CROSSINGS} crossings leave the timescale, the populations of the "
-                         f"two sides and every test of the model (Chapman-Kolmogorov included) without "
+                         f"two sides and every test of the model (Chapman–Kolmogorov included) without "
                          f"support; collect more or longer runs.")
     if dropped_states is not None and len(dropped_states):
         shown = ", ".join(str(int(s)) for s in np.asarray(dropped_states)[:8]) + (" ..." if len(dropped_states) > 8 else "")

@@ -76,7 +76,7 @@ def _brute_force(x: np.ndarray, centers: np.ndarray) -> np.ndarray:
 
 
 class _Assigner:
-    """Nearest-center labelling prepared once for a set of centers (see module docstring)."""
+    """Nearest-center labeling prepared once for a set of centers (see module docstring)."""
 
     def __init__(self, centers: np.ndarray, n_threads: int | None = None):
         centers = np.asarray(centers, dtype=np.float64)
@@ -221,7 +221,7 @@ def nearest_center(frames, centers, *, chunk_size=None, n_threads=None) -> np.nd
                        check_chunk_size(chunk_size, centers.shape[1]))
 
 
-#: Frames labelled per call of the assigner: its temporaries (distances, indices, a float64
+#: Frames labeled per call of the assigner: its temporaries (distances, indices, a float64
 #: copy: about 80 bytes a frame) stay near 20 MB whatever the chunk size.
 ASSIGN_BLOCK = 1 << 18
 

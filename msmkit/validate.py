@@ -1,7 +1,7 @@
-"""Validation of Markov models: the Chapman-Kolmogorov test, the lag-flow view, VAMP-2 scores and
+"""Validation of Markov models: the Chapman–Kolmogorov test, the lag-flow view, VAMP-2 scores and
 cross-validation of model choices.
 
-The Chapman-Kolmogorov test asks whether the model at lag tau predicts the data at longer lags:
+The Chapman–Kolmogorov test asks whether the model at lag tau predicts the data at longer lags:
 for sets of states A and B, the probability to be in B a time k tau after being in A, predicted
 by T(tau)^k, is compared with the same probability estimated directly from the data at lag
 k tau. The lag flow draws the same numbers for two sets as a path in the plane of their
@@ -10,7 +10,7 @@ functions capture; scored on held-out runs it compares numbers of microstates.
 
 References
 ----------
-Prinz et al., J. Chem. Phys. 134, 174105 (2011), Sec. IV.D: the Chapman-Kolmogorov test.
+Prinz et al., J. Chem. Phys. 134, 174105 (2011), Sec. IV.D: the Chapman–Kolmogorov test.
 Efron, Ann. Stat. 7, 1 (1979): the bootstrap.
 Wu & Noe, J. Nonlinear Sci. 30, 23 (2020): VAMP scores, VAMP-2.
 McGibbon & Pande, J. Chem. Phys. 142, 124105 (2015): variational cross-validation of model choices.
@@ -30,7 +30,7 @@ from ._checks import (brief, as_float_trajectories, as_label_trajectories, as_st
                       check_int, check_probability, check_seed, check_unit)
 from ._execution import map_sample_batches, place
 from .counts import count_csr, run_count_rows
-from .defaults import CK_MULTIPLES
+from .defaults import CK_MULTIPLES, CK_SAMPLES
 from .errors import DiagnosticWarning, InputError
 from .model import MarkovModel, build_model, fingerprint
 from .spectral import FEW_CROSSINGS, slow_crossings
@@ -57,7 +57,7 @@ CV_PROCESSES = 5
 
 
 # =============================================================================================
-# Chapman-Kolmogorov test
+# Chapman–Kolmogorov test
 # =============================================================================================
 
 @dataclass(eq=False)
@@ -203,14 +203,14 @@ class CKResult:
         return df
 
 
-def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MULTIPLES, n_samples=20, seed=None,
+def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MULTIPLES, n_samples=CK_SAMPLES, seed=None,
                        confidence=0.95, tolerance=0.05, progress=False, client=None, cancel=None) -> CKResult:
-    """Chapman-Kolmogorov test: does T(tau)^k predict the data at lag k tau?
+    """Chapman–Kolmogorov test: does T(tau)^k predict the data at lag k tau?
 
     For each pair of sets (a, b) and k = 1..``multiples``, compares
 
     * predicted: p0_a T(tau)^k 1_b, with p0_a the model's stationary distribution restricted to
-      set a and normalised, 1_b the indicator of set b;
+      set a and normalized, 1_b the indicator of set b;
     * estimated: p0_a T(k tau) 1_b, with T(k tau) estimated from ``labels`` at lag k tau on the
       model's kept states (the largest connected set among them at that lag; same estimator,
       reversible or not, and same counting as the model). States lost at the longer lag are
@@ -336,7 +336,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
     lost = []
     support_counts = None
     placed = place(runs, client)  # label arrays sent to the workers once, for every multiple of the lag
-    bar = progress_bar(K * (1 + n_samples), progress, "Chapman-Kolmogorov test", cancel)
+    bar = progress_bar(K * (1 + n_samples), progress, "Chapman–Kolmogorov test", cancel)
     try:
         for k in range(1, K + 1):
             rows, _ = run_count_rows(placed, k * model.lag, n_states=n_lab, every_frame=every_frame,
@@ -362,7 +362,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
                 if client is not None:
                     samples[k - 1] = map_sample_batches(
                         _ck_samples, sampled, n_lab, model.states, model.reversible, initial,
-                        pi, M, client=client, what=f"Chapman-Kolmogorov samples at {k} lags", bar=bar)
+                        pi, M, client=client, what=f"Chapman–Kolmogorov samples at {k} lags", bar=bar)
                 else:
                     samples[k - 1] = _ck_samples(sampled, n_lab, model.states, model.reversible,
                                                  initial, pi, M, bar)
@@ -550,7 +550,7 @@ def _resolve_sets(model, sets, n_sets):
 
 
 def _start_rows(pi, M) -> np.ndarray:
-    """(m, n): stationary weights inside each set, normalised (NaN rows for sets without weight)."""
+    """(m, n): stationary weights inside each set, normalized (NaN rows for sets without weight)."""
     W = (M * pi[:, None]).T
     total = W.sum(axis=1, keepdims=True)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -668,7 +668,7 @@ class LagFlow:
     Attributes
     ----------
     pair : tuple of int
-        Indices (a, b) of the two sets in the Chapman-Kolmogorov result.
+        Indices (a, b) of the two sets in the Chapman–Kolmogorov result.
     members : list of ndarray of int
         Original labels of the states of sets a and b.
     lags : ndarray of int, shape (K + 1,)
@@ -680,7 +680,7 @@ class LagFlow:
     lower, upper : ndarray, shape (K + 1, 2)
         Bootstrap interval of ``estimated`` (NaN without bootstrap).
     within : ndarray of bool, shape (K + 1,)
-        Both predicted coordinates pass the Chapman-Kolmogorov criterion at that lag.
+        Both predicted coordinates pass the Chapman–Kolmogorov criterion at that lag.
     fixed_point : ndarray, shape (2,)
         (pi_a, pi_b), the stationary probabilities of the two sets: where both paths end.
     coincide : bool
@@ -744,7 +744,7 @@ class LagFlow:
         return df
 
 
-def lag_flow(source, labels=None, *, pair=(0, 1), sets=None, n_sets=None, multiples=None, n_samples=20,
+def lag_flow(source, labels=None, *, pair=(0, 1), sets=None, n_sets=None, multiples=None, n_samples=CK_SAMPLES,
              seed=None, confidence=0.95, tolerance=0.05, progress=False) -> LagFlow:
     """How two sets relax toward equilibrium as the lag grows: data against the model.
 
@@ -786,13 +786,13 @@ def lag_flow(source, labels=None, *, pair=(0, 1), sets=None, n_sets=None, multip
         given = [name for name, value in (("labels", labels), ("sets", sets), ("n_sets", n_sets),
                                           ("multiples", multiples)) if value is not None]
         if given:
-            raise InputError(f"{', '.join(given)} cannot be given with a Chapman-Kolmogorov result: the sets and "
+            raise InputError(f"{', '.join(given)} cannot be given with a Chapman–Kolmogorov result: the sets and "
                              f"lags are fixed; pass the model instead to choose them")
         ck = source
     elif isinstance(source, MarkovModel):
         if labels is None:
             raise InputError("labels are needed with a model: pass the label trajectories the model was "
-                             "built from (or pass a Chapman-Kolmogorov result instead of the model)")
+                             "built from (or pass a Chapman–Kolmogorov result instead of the model)")
         runs = as_label_trajectories(labels)
         note = None
         if multiples is None:
@@ -947,7 +947,7 @@ def vamp2_score_on(model, labels, k=None, *, warn: bool = True) -> float:
     model : MarkovModel
         The model trained on other data.
     labels : label trajectories
-        The test data, labelled with the same microstates.
+        The test data, labeled with the same microstates.
     k : int, optional
         Number of non-stationary singular functions; default all.
     warn : bool
@@ -975,7 +975,7 @@ def vamp2_score_on(model, labels, k=None, *, warn: bool = True) -> float:
     inside = C.sum()
     if inside == 0:
         raise InputError(f"labels: no transition at lag {model.lag} falls among the model's states; the test data "
-                         f"must be labelled with the same microstates as the model")
+                         f"must be labeled with the same microstates as the model")
     if warn and inside < 0.9 * total:
         warnings.warn(f"{100 * (1 - inside / total):.3g}% of the test transitions involve states outside the "
                       f"model's kept set and are left out of the score", DiagnosticWarning, stacklevel=2)

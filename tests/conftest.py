@@ -36,7 +36,7 @@ def _sample_chain(T, n_steps, *, n_runs=1, seed=0, start=None):
 
 
 def _stationary(T):
-    """Left eigenvector of T for the eigenvalue closest to 1, normalised to sum 1 (scipy.linalg.eig,
+    """Left eigenvector of T for the eigenvalue closest to 1, normalized to sum 1 (scipy.linalg.eig,
     a general-purpose reference library)."""
     w, vl = la.eig(np.asarray(T, dtype=float), left=True, right=False)
     p = np.real(vl[:, np.argmin(np.abs(w - 1))])

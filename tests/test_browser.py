@@ -1,7 +1,7 @@
 """The workbench in a real JupyterLab, driven in headless Chromium by Playwright.
 
 Opens example_notebooks/01_workbench.ipynb, runs it, clusters, scans, moves the lag slider with
-the keyboard, checks that the plot and the table changed, saves, runs the Chapman-Kolmogorov test
+the keyboard, checks that the plot and the table changed, saves, runs the Chapman–Kolmogorov test
 (a verdict in words must appear), cancels a long scan, writes the HTML report and opens it in
 Chromium (the figures in it must load), re-clusters and checks that Save no longer claims a model, and
 loads the saved file. The inputs must fit the workbench at 1024 px.
@@ -206,7 +206,7 @@ def test_workbench_in_jupyterlab(lab):
             page.wait_for_function("() => document.querySelector('.msmkit-save-status').innerText.includes('Saved')")
             _shot(page, "3-populations")
 
-            # Step 4: run the Chapman-Kolmogorov test; a verdict in words and the figure appear.
+            # Step 4: run the Chapman–Kolmogorov test; a verdict in words and the figure appear.
             page.locator(".msmkit-steps .lm-TabBar-tab", has_text="Validate").click()
             page.locator(".msmkit-validate-button").click()
             page.wait_for_function(
@@ -243,7 +243,7 @@ def test_workbench_in_jupyterlab(lab):
             report_page.wait_for_load_state("load")
             sizes = report_page.evaluate("() => Array.from(document.images).map(i => i.complete ? i.naturalWidth : 0)")
             assert len(sizes) >= 3 and min(sizes) > 300, sizes
-            assert report_page.locator("h2", has_text="Chapman-Kolmogorov test").count() == 1
+            assert report_page.locator("h2", has_text="Chapman–Kolmogorov test").count() == 1
             if SHOTS:
                 report_page.screenshot(path=str(Path(SHOTS) / "6-report.png"), full_page=False)
             report_page.close()

@@ -47,7 +47,7 @@ def test_lag_scan_asks_once_per_lag_and_sample(runs):
 def test_chapman_kolmogorov_stops_between_units(runs):
     model = mk.build_model(runs, lag=1)
     flag = SetAfter(2)
-    with pytest.raises(Cancelled, match="Chapman-Kolmogorov"):
+    with pytest.raises(Cancelled, match="Chapman–Kolmogorov"):
         mk.chapman_kolmogorov(model, runs, n_sets=2, multiples=3, n_samples=5, cancel=flag)
     done = threading.Event()
     done.set()

@@ -41,7 +41,7 @@ def test_demo_writes_every_output(demo_output):
     assert model.unit == demo.UNIT and model.dt == demo.DT
     assert model.extras["affinity"].shape == (model.n_states, 3)
     summary = (demo_output / "summary.txt").read_text()
-    assert "Chapman-Kolmogorov test" in summary and "macrostates (PCCA+): 3" in summary
+    assert "Chapman–Kolmogorov test" in summary and "macrostates (PCCA+): 3" in summary
     assert "computed at lag resolution" in summary  # the passage times say how coarse they are
 
 

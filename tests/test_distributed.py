@@ -74,7 +74,7 @@ def npy_runs(tmp_path, ou_runs):
 
 def _tica_reference(runs, lag):
     """TICA from the definition (Perez-Hernandez et al., J. Chem. Phys. 139, 015102 (2013)):
-    mean and C(0) over all frames, C(tau) over all pairs within runs, symmetrised, and the
+    mean and C(0) over all frames, C(tau) over all pairs within runs, symmetrized, and the
     generalised symmetric eigenproblem solved by scipy.linalg.eigh."""
     x = np.concatenate(runs)
     mean = x.mean(axis=0)
@@ -250,7 +250,7 @@ def test_lag_scan_bootstrap_is_the_same(backend, sample_chain, reversible_chain)
                        **backend)
     for lag, ts in zip(scan.lags, scan.timescales):
         C = _count_reference(runs, lag, 3).astype(float)
-        w = np.sort(np.abs(la.eigvals(C / C.sum(axis=1, keepdims=True))))[::-1]  # MLE: row-normalised
+        w = np.sort(np.abs(la.eigvals(C / C.sum(axis=1, keepdims=True))))[::-1]  # MLE: row-normalized
         np.testing.assert_allclose(ts, -lag / np.log(w[1:3]), rtol=1e-9)
     memory = mk.lag_scan(runs, [1, 2, 5], n_samples=12, seed=7, reversible=False, n_processes=2)
     np.testing.assert_array_equal(scan.samples, memory.samples)

@@ -7,7 +7,7 @@ External references:
   self-consistent iteration x_ij <- (c_ij + c_ji) / (c_i/x_i + c_j/x_j) that solves them
   (Bowman, Beauchamp, Boxer & Pande, J. Chem. Phys. 131, 124101 (2009); Prinz et al. 2011,
   Sec. IV.D) -- implemented here independently of the code under test;
-- every two-state chain obeys detailed balance, and symmetric counts give a row-normalised
+- every two-state chain obeys detailed balance, and symmetric counts give a row-normalized
   estimate that is already reversible, so in both cases the reversible and non-reversible MLEs
   coincide (common practice);
 - scipy.linalg.eig for the eigenvalue 1 and the stationary vector.
@@ -105,9 +105,9 @@ def test_reversible_mle_properties(C):
     assert np.min(np.abs(la.eigvals(T) - 1)) < 1e-10
     # no probability where neither c_ij nor c_ji was observed
     assert np.all(T[(C + C.T) == 0] == 0)
-    # it maximises the likelihood among reversible matrices: better than the symmetrised-counts
-    # estimate (C + C^T row-normalised, reversible by construction), no better than the
-    # unconstrained maximum (row-normalised C)
+    # it maximises the likelihood among reversible matrices: better than the symmetrized-counts
+    # estimate (C + C^T row-normalized, reversible by construction), no better than the
+    # unconstrained maximum (row-normalized C)
     S = (C + C.T).astype(float)
     ll = log_likelihood(C, T)
     ll_sym = log_likelihood(C, S / S.sum(axis=1, keepdims=True))
@@ -143,7 +143,7 @@ def test_symmetric_counts_give_row_normalised_estimate(C):
 def test_nonreversible_mle_is_row_normalised(C):
     T, info = estimate_transition_matrix(C, reversible=False, return_info=True)
     np.testing.assert_allclose(T, C / C.sum(axis=1, keepdims=True), rtol=1e-14, atol=0)
-    assert info.method == "row-normalised" and info.iterations == 0 and info.converged
+    assert info.method == "row-normalized" and info.iterations == 0 and info.converged
     np.testing.assert_allclose(info.equilibrium, ref_stationary(T), rtol=1e-7, atol=1e-14)
 
 

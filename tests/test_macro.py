@@ -113,7 +113,7 @@ def test_crispness_equals_objective_computed_from_memberships():
 
 
 def test_optimisation_improves_crispness():
-    # The optimisation starts from the feasible inner-simplex solution (Röblitz & Weber 2013,
+    # The optimization starts from the feasible inner-simplex solution (Röblitz & Weber 2013,
     # Sec. 3.4) and must raise the objective on a fuzzy chain; it is bounded by m.
     T, pi, _ = block_chain([4, 5, 3, 4], 0.1, 3)
     chi0 = pcca_affinity(T, pi, 4, optimize=False)

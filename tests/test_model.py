@@ -56,7 +56,7 @@ def test_two_state_model_closed_form(a, b):
 
 def test_two_state_from_data_by_hand():
     # 0 0 1 1 1 0 0 1 at lag 1: C = [[2, 2], [1, 2]] (counted by hand); for two states the
-    # reversible and non-reversible MLEs coincide: T = C row-normalised (common practice)
+    # reversible and non-reversible MLEs coincide: T = C row-normalized (common practice)
     labels = [np.array([0, 0, 1, 1, 1, 0, 0, 1])]
     for reversible in (True, False):
         model = quiet(build_model, labels, 1, dt=0.1, unit="ns", reversible=reversible)
@@ -153,12 +153,12 @@ def double_well(x):
 
 
 def smoluchowski_reference(n_cells, half_width=2.5):
-    """Symmetrised generator of overdamped diffusion (D = kT/gamma = 1) on a fine grid.
+    """Symmetrized generator of overdamped diffusion (D = kT/gamma = 1) on a fine grid.
 
     Finite volumes with Scharfetter-Gummel fluxes: the hop rate from cell i to the neighbouring cell j is
     D/h^2 * B(V_j - V_i) with the Bernoulli function B(z) = z / (e^z - 1), which obeys detailed
     balance with exp(-V) exactly and tends to the Smoluchowski operator as h -> 0. Returns cell
-    centres, the diagonal and off-diagonal of the symmetrised (tridiagonal) generator, and the
+    centers, the diagonal and off-diagonal of the symmetrized (tridiagonal) generator, and the
     Boltzmann weights of the cells.
     """
     edges = np.linspace(-half_width, half_width, n_cells + 1)
@@ -341,7 +341,7 @@ def test_model_on_three_state_changes_says_the_sampling_cannot_support_it():
     np.testing.assert_array_equal(per_state, [2, 1])
     assert crossings == 3
     line = next(d for d in model.diagnostics if d.startswith("The sampling cannot support this model"))
-    assert "only 3 time(s)" in line and "Chapman-Kolmogorov" in line
+    assert "only 3 time(s)" in line and "Chapman–Kolmogorov" in line
     assert any("2 state(s) are left for another state fewer than 10 times" in d for d in model.diagnostics)
 
 
@@ -507,7 +507,7 @@ def test_splitting_probability_backward_in_time_on_a_model():
 
 
 def test_passage_times_are_said_to_be_at_lag_resolution(sample_chain, reversible_chain):
-    # The model at lag tau of a Markov chain is T^tau (Chapman-Kolmogorov, common practice): its
+    # The model at lag tau of a Markov chain is T^tau (Chapman–Kolmogorov, common practice): its
     # first-passage time 0 -> 2 only sees multiples of tau and comes out longer than the exact
     # one of T at lag 1 (numpy.linalg.solve of (I - T_cc) m = 1, Kemeny & Snell 1960).
     T = reversible_chain

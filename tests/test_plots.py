@@ -9,7 +9,7 @@ External references:
   from memory), so a central 95 % interval spans 2 x 1.96 sigma of a normal estimate;
 - a percentile interval contains the model value exactly when the model lies no further from the
   estimate than the half of the interval on that side (definition of an interval, common practice);
-- Chapman-Kolmogorov data of a Markov chain agree with the model; a lumped projection of a
+- Chapman–Kolmogorov data of a Markov chain agree with the model; a lumped projection of a
   Markov chain is in general not Markovian, so the test fails on it (Prinz et al. 2011,
   Sec. IV.D; Kemeny & Snell, Finite Markov Chains (1960), Ch. 6 (from memory)).
 """
@@ -170,7 +170,7 @@ def test_timescales_figure_without_bootstrap_and_one_process(sample_chain):
     assert figure_png(fig).startswith(PNG_SIGNATURE)
 
 
-# --------------------------------------------------------------------------- Chapman-Kolmogorov
+# --------------------------------------------------------------------------- Chapman–Kolmogorov
 
 def true_chain():
     X = np.array([[900.0, 30, 2], [30, 500, 25], [2, 25, 400]])  # detailed balance by construction
@@ -243,9 +243,9 @@ def test_ck_summary_prints_z_computed_from_the_result(markov_ck):
     assert ax.get_xlabel() == "lag multiple k and lag time kτ [ns]"
     assert "fails when |z| > 1.96" in ax.get_title() and "95% bootstrap interval" in ax.get_title()
     assert fig.get_suptitle().startswith("Chapman–Kolmogorov test passed: 0 of 45 cells fail")
-    colourbar = fig.axes[1]
-    assert "[σ of the estimate]" in colourbar.get_ylabel()
-    assert "1.96 pass limit" in [t.get_text() for t in colourbar.get_yticklabels()]
+    colorbar = fig.axes[1]
+    assert "[σ of the estimate]" in colorbar.get_ylabel()
+    assert "1.96 pass limit" in [t.get_text() for t in colorbar.get_yticklabels()]
     assert figure_png(fig).startswith(PNG_SIGNATURE)
 
 

@@ -7,7 +7,7 @@ References used by the checks:
 - exact algebra: detailed balance and row sums of every sample;
 - large counts: the posterior concentrates at the maximum-likelihood estimate with a spread
   shrinking as 1/sqrt(N) (common practice, Bernstein-von Mises);
-- three states: self-normalised importance sampling of the same posterior density written out
+- three states: self-normalized importance sampling of the same posterior density written out
   in full here, with Dirichlet proposals drawn by numpy (independent of the sampler's moves).
 """
 from __future__ import annotations
@@ -75,7 +75,7 @@ def test_large_counts_concentrate_at_the_mle():
                        [0.10, 0.85, 0.05],
                        [0.05, 0.10, 0.85]])
     X = mk.equilibrium_distribution(T_true)[:, None] * T_true
-    X = 0.5 * (X + X.T)  # a reversible chain (common practice: symmetrise the flux)
+    X = 0.5 * (X + X.T)  # a reversible chain (common practice: symmetrize the flux)
     sds, shifts = [], []
     for N in (2_000, 32_000):
         C = np.round(N * X)
@@ -122,8 +122,8 @@ def _log_density(C, prior_count):
 
 
 def _posterior_means_by_importance(C, prior_count, n_draws, rng):
-    """Self-normalised importance sampling of that density with a multivariate-t proposal (5 degrees
-    of freedom) centred at the mode (scipy.optimize) with the finite-difference Hessian as scale."""
+    """Self-normalized importance sampling of that density with a multivariate-t proposal (5 degrees
+    of freedom) centerd at the mode (scipy.optimize) with the finite-difference Hessian as scale."""
     from scipy import optimize
     logp, matrices, d = _log_density(C, prior_count)
     mode = optimize.minimize(lambda y: -logp(y[None])[0], np.zeros(d), method="BFGS").x
@@ -144,7 +144,7 @@ def _posterior_means_by_importance(C, prior_count, n_draws, rng):
     pi = xr / xr.sum(axis=1, keepdims=True)
     mean_T = np.einsum("s,sij->ij", w, T)
     mean_pi = w @ pi
-    # delta-method standard error of a self-normalised estimate (common practice)
+    # delta-method standard error of a self-normalized estimate (common practice)
     se_T = np.sqrt(np.einsum("s,sij->ij", w ** 2, (T - mean_T) ** 2))
     se_pi = np.sqrt(w ** 2 @ (pi - mean_pi) ** 2)
     return mean_T, mean_pi, se_T, se_pi, 1.0 / np.sum(w ** 2)

@@ -28,7 +28,7 @@ def ou_runs(rates, n_frames, n_runs, seed, mixing=None):
 
 
 def reference_covariances(runs, lag):
-    """C(0) and symmetrised C(lag) written out from the definitions on the full data."""
+    """C(0) and symmetrized C(lag) written out from the definitions on the full data."""
     allx = np.concatenate(runs)
     mu = allx.mean(axis=0)
     c0 = (allx - mu).T @ (allx - mu) / len(allx)

@@ -91,14 +91,14 @@ def test_report_holds_figures_tables_diagnostics_and_provenance(analysis, tmp_pa
     page = parse(text)
     # self-contained: every image is inline PNG, nothing is fetched
     assert page.links and all(x.startswith("data:image/png;base64,") for x in page.links)
-    assert len(page.images) >= 3  # populations, implied timescales, Chapman-Kolmogorov
+    assert len(page.images) >= 3  # populations, implied timescales, Chapman–Kolmogorov
     from PIL import Image
     for img in page.images:
         png = base64.b64decode(img["src"].split(",", 1)[1])
         assert png[:8] == PNG_SIGNATURE
         w, h = Image.open(io.BytesIO(png)).size
         assert w > 300 and h > 200
-    for h in ("Settings", "Diagnostics and cautions", "Lag scan", "Chapman-Kolmogorov test", "Macrostates",
+    for h in ("Settings", "Diagnostics and cautions", "Lag scan", "Chapman–Kolmogorov test", "Macrostates",
               "Provenance"):
         assert h in page.headings
     # the scan table: every row of LagScan.table(), interval included

@@ -97,7 +97,7 @@ def test_reversible_spectrum_matches_scipy(T):
     w, R = eigen_decomposition(T, pi, vectors=True)
     assert np.isrealobj(w) and np.isrealobj(R)
     np.testing.assert_allclose(w, np.real(ref_eigenvalues(T)), atol=1e-10)
-    # right eigenvectors: T r = lambda r, normalised sum_i pi_i r_i^2 = 1, pi-orthogonal
+    # right eigenvectors: T r = lambda r, normalized sum_i pi_i r_i^2 = 1, pi-orthogonal
     np.testing.assert_allclose(T @ R, R * w[None, :], atol=1e-9)
     np.testing.assert_allclose(R.T @ (pi[:, None] * R), np.eye(T.shape[0]), atol=1e-8)
     # the first right eigenvector of a stochastic matrix is constant

@@ -1,8 +1,8 @@
-"""Tests of msmkit.validate (Chapman-Kolmogorov test, lag flow, VAMP-2, cross-validation) and of the
+"""Tests of msmkit.validate (Chapman–Kolmogorov test, lag flow, VAMP-2, cross-validation) and of the
 figures in msmkit.plots.
 
 External references:
-- Chapman-Kolmogorov equation T(k tau) = T(tau)^k holds for data sampled from a Markov chain; a
+- Chapman–Kolmogorov equation T(k tau) = T(tau)^k holds for data sampled from a Markov chain; a
   lumped projection of a Markov chain is in general not Markovian, so the test must fail on it
   (Prinz et al., J. Chem. Phys. 134, 174105 (2011), Sec. IV.D; lumpability: Kemeny & Snell,
   Finite Markov Chains (1960), Ch. 6 (from memory));
@@ -83,7 +83,7 @@ def start_distribution(model, labels_of_set):
     return p0 / p0.sum()
 
 
-# --------------------------------------------------------------------------- Chapman-Kolmogorov
+# --------------------------------------------------------------------------- Chapman–Kolmogorov
 
 def test_ck_passes_on_markov_data(markov_ck, markov_model, markov_runs):
     assert isinstance(markov_ck, CKResult)
@@ -356,7 +356,7 @@ def test_lag_flow_from_a_model_runs_the_test(markov_model, markov_runs):
 
 
 def test_lag_flow_bad_inputs(markov_ck, markov_model, markov_runs):
-    with pytest.raises(InputError, match=r"labels, multiples cannot be given with a Chapman-Kolmogorov result"):
+    with pytest.raises(InputError, match=r"labels, multiples cannot be given with a Chapman–Kolmogorov result"):
         lag_flow(markov_ck, markov_runs, multiples=3)
     with pytest.raises(InputError, match=r"labels are needed with a model"):
         lag_flow(markov_model)
@@ -374,7 +374,7 @@ def test_lag_flow_bad_inputs(markov_ck, markov_model, markov_runs):
 
 def test_vamp2_of_exact_chain_is_one_plus_squared_eigenvalues():
     # integer symmetric X: counts = N diag(pi) T exactly, with T = X / rowsum, pi = rowsum / N;
-    # both estimators return T itself (reversible MLE of symmetric counts = row normalisation)
+    # both estimators return T itself (reversible MLE of symmetric counts = row normalization)
     X = np.array([[900, 30, 2, 0], [30, 500, 25, 4], [2, 25, 400, 60], [0, 4, 60, 300]])
     T = X / X.sum(axis=1, keepdims=True)
     lam = np.sort(np.abs(la.eigvals(T)))[::-1]  # scipy reference
@@ -435,7 +435,7 @@ HIDDEN = np.array([[0.97, 0.02, 0.01], [0.02, 0.96, 0.02], [0.01, 0.03, 0.96]])
 
 @pytest.fixture(scope="module")
 def blob_runs(sample_chain):
-    """Frames drawn around three well separated centres (spread 0.5) chosen by a 3-state chain:
+    """Frames drawn around three well separated centers (spread 0.5) chosen by a 3-state chain:
     three microstates describe the dynamics exactly."""
     hidden = sample_chain(HIDDEN, 300, n_runs=10, seed=0)
     rng = np.random.default_rng(1000)

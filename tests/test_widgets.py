@@ -791,7 +791,7 @@ def test_save_report_button_writes_the_analysis(trajs, tmp_path):
     bench.reporter.button.click()
     text = (tmp_path / "m.html").read_text(encoding="utf-8")
     assert "Wrote the report" in status_text(bench.reporter.status)
-    assert "Chapman-Kolmogorov test" in text and "<h2>Macrostates</h2>" in text
+    assert "Chapman–Kolmogorov test" in text and "<h2>Macrostates</h2>" in text
     assert text.count("data:image/png;base64,") >= 3
     assert "preparation: microstates.n_states" in text
     bench.reporter.button.click()  # exists, overwrite off: kept
@@ -801,7 +801,7 @@ def test_save_report_button_writes_the_analysis(trajs, tmp_path):
     bench.select_lag(next(x for x in (1, 2) if x != tested))  # another model: the test is not for it
     bench.reporter.button.click()
     again = (tmp_path / "m.html").read_text(encoding="utf-8")
-    assert "<h2>Chapman-Kolmogorov test</h2>" not in again and "<h2>Lag scan</h2>" in again
+    assert "<h2>Chapman–Kolmogorov test</h2>" not in again and "<h2>Lag scan</h2>" in again
     bench.make_states(n_states=6)  # re-clustering: nothing to report any more
     assert "A report needs a model" in status_text(bench.reporter.status)
 
@@ -839,7 +839,7 @@ def test_kinetics_step_draws_network_and_maps(trajs):
     assert not panel.network_plot.outputs and not panel.maps_plot.outputs
 
 
-def test_kinetics_maps_colour_the_public_numbers(trajs):
+def test_kinetics_maps_color_the_public_numbers(trajs):
     from msmkit.plots import plot_kinetics_maps
 
     coords = list(TICA(10, dim=2).fit(trajs).transform(trajs))

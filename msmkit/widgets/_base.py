@@ -73,7 +73,7 @@ def set_value(widget, value, name: str) -> None:
 
 
 def stage(bar, done: int, total: int, what: str) -> None:
-    """Show ``done`` of ``total`` stages on a progress bar, labelled ``what``."""
+    """Show ``done`` of ``total`` stages on a progress bar, labeled ``what``."""
     bar.layout.visibility = "visible"
     bar.bar_style = ""
     bar.max = total
@@ -449,7 +449,7 @@ class SetPair(widgets.HBox):
         return None if not self.first.options else (self.first.value, self.second.value)
 
     def set_sets(self, populations, pair) -> None:
-        """Offer sets 0..m-1 (labelled with their populations) and choose ``pair``."""
+        """Offer sets 0..m-1 (labeled with their populations) and choose ``pair``."""
         options = [(f"{j} (population {p:.3g})", j) for j, p in enumerate(populations)]
         self._syncing = True
         try:

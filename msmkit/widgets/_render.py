@@ -33,7 +33,7 @@ TABLE_STYLE = ("<style>.msmkit-table{border-collapse:collapse;font-size:90%}"
                ".msmkit-table tbody tr:nth-child(odd){background:#f4f6f8}</style>")
 
 _KINDS = {
-    # kind: (border colour, background, heading)
+    # kind: (border color, background, heading)
     "info": ("#0f5c8c", "#eef5fa", ""),
     "ok": ("#4d8b31", "#f0f7ec", ""),
     "warning": ("#b5851b", "#fcf6e8", "Warning"),

@@ -5,7 +5,7 @@ import numpy as np
 import traitlets
 
 from .._checks import check_dt, check_int, check_unit
-from ..defaults import PROCESSES
+from ..defaults import BOOTSTRAP_SAMPLES, PROCESSES
 from ..errors import InputError
 from ..lagscan import lag_scan
 from ..plots import plot_timescales
@@ -105,7 +105,7 @@ class LagPanel(Step):
     model = traitlets.Any(None)
 
     def __init__(self, labels=None, *, dt: float = 1.0, unit: str = "step", lags=None, n_processes: int = PROCESSES,
-                 n_samples: int = 20, seed: int = 0, progress: bool = True):
+                 n_samples: int = BOOTSTRAP_SAMPLES, seed: int = 0, progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-lags")
         self.dt, self.unit = check_dt(dt), check_unit(unit)
         self.labels = None

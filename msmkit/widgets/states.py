@@ -38,7 +38,7 @@ class StatesPanel(Step):
         Number of microstates.
     method : {"kmeans", "minibatch"}
     stride : int, default 1
-        Cluster on every ``stride``-th frame (all frames are labelled).
+        Cluster on every ``stride``-th frame (all frames are labeled).
     seed : int, default 0
     progress : bool, default True
         Count units of work (lags, bootstrap samples) on the progress bar, not only stages.

@@ -4,7 +4,7 @@ from __future__ import annotations
 import traitlets
 
 from .._checks import check_int
-from ..defaults import CK_MULTIPLES
+from ..defaults import CK_MULTIPLES, CK_SAMPLES
 from ..errors import InputError
 from ..plots import plot_chapman_kolmogorov, plot_lag_flow
 from ..validate import chapman_kolmogorov, lag_flow
@@ -22,7 +22,7 @@ VERDICT_CAUTION = ("The test compares the model with the same data it was built 
 
 
 class ValidationPanel(Step):
-    """The Chapman-Kolmogorov test of the chosen model on macrostates, and the lag flow.
+    """The Chapman–Kolmogorov test of the chosen model on macrostates, and the lag flow.
 
     Parameters
     ----------
@@ -49,7 +49,7 @@ class ValidationPanel(Step):
 
     ck = traitlets.Any(None)
 
-    def __init__(self, model=None, labels=None, *, n_sets=None, multiples: int = CK_MULTIPLES, n_samples: int = 20,
+    def __init__(self, model=None, labels=None, *, n_sets=None, multiples: int = CK_MULTIPLES, n_samples: int = CK_SAMPLES,
                  seed: int = 0, progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-validate")
         self.model = None
@@ -122,7 +122,7 @@ class ValidationPanel(Step):
 
     # -- actions -----------------------------------------------------------------------------
     def run(self, n_sets=None, multiples=None, n_samples=None, *, seed=None):
-        """Run the Chapman-Kolmogorov test with the panel's settings; given arguments replace them.
+        """Run the Chapman–Kolmogorov test with the panel's settings; given arguments replace them.
 
         Returns
         -------
@@ -149,7 +149,7 @@ class ValidationPanel(Step):
                                     cancel=self._cancel_point(units + 1, what="testing"))
             self._stage(units, units + 1, "drawing")
             flow = lag_flow(ck, pair=(0, 1))
-            _render.show_figure(self.ck_plot, plot_chapman_kolmogorov(ck), alt="Chapman-Kolmogorov test")
+            _render.show_figure(self.ck_plot, plot_chapman_kolmogorov(ck), alt="Chapman–Kolmogorov test")
             _render.show_figure(self.flow_plot, plot_lag_flow(flow), alt="lag flow")
         self.ck, self.flow = ck, flow
         self.pair.set_sets(ck.set_populations, flow.pair)

@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 
 from .._checks import check_dt, check_unit
-from ..defaults import CK_MULTIPLES, PROCESSES
+from ..defaults import BOOTSTRAP_SAMPLES, CK_MULTIPLES, CK_SAMPLES, PROCESSES
 from ..errors import InputError
 from . import _render
 from ._base import FileRow, action, on_click, report, widgets
@@ -28,7 +28,7 @@ class Workbench(widgets.VBox):
     Each step is a panel in a tab; the save row below the tabs writes the chosen model. Every
     button is also a method (:meth:`make_states`, :meth:`scan`, :meth:`select_lag`,
     :meth:`validate`, :meth:`kinetics`, :meth:`save`, :meth:`save_report`); the chosen model is
-    :attr:`model`, the last Chapman-Kolmogorov test :attr:`ck` and the macrostates
+    :attr:`model`, the last Chapman–Kolmogorov test :attr:`ck` and the macrostates
     :attr:`macrostates`. Buttons compute in a background thread: each long step has a Cancel
     button (Kernel -> Interrupt cancels too), and :meth:`wait` waits for them from code.
 
@@ -49,7 +49,7 @@ class Workbench(widgets.VBox):
         Number of macrostates of the validation and kinetics steps (default: the model's
         suggestion).
     multiples, ck_samples
-        Lag multiples and bootstrap samples of the Chapman-Kolmogorov test (see
+        Lag multiples and bootstrap samples of the Chapman–Kolmogorov test (see
         :class:`ValidationPanel`).
     file_name : str
         Default name of the saved model file.
@@ -64,8 +64,8 @@ class Workbench(widgets.VBox):
 
     def __init__(self, trajs, *, dt=None, unit=None, features=None, use_tica: bool = True, tica_lag: int = 10,
                  tica_dim: int = 2, n_states: int = 100, method: str = "kmeans", stride: int = 1, seed: int = 0,
-                 lags=None, n_processes: int = PROCESSES, n_samples: int = 20, temperature=300.0, n_sets=None,
-                 multiples: int = CK_MULTIPLES, ck_samples: int = 20, file_name: str = "msmkit_model.npz",
+                 lags=None, n_processes: int = PROCESSES, n_samples: int = BOOTSTRAP_SAMPLES, temperature=300.0, n_sets=None,
+                 multiples: int = CK_MULTIPLES, ck_samples: int = CK_SAMPLES, file_name: str = "msmkit_model.npz",
                  progress: bool = True):
         super().__init__()
         self.add_class("msmkit-workbench")
@@ -181,7 +181,7 @@ class Workbench(widgets.VBox):
 
     @property
     def ck(self):
-        """The last Chapman-Kolmogorov test of the chosen model (None before one)."""
+        """The last Chapman–Kolmogorov test of the chosen model (None before one)."""
         return self.validation_panel.ck
 
     @property
@@ -218,7 +218,7 @@ class Workbench(widgets.VBox):
         return self.lag_panel.select_lag(lag)
 
     def validate(self, n_sets=None, multiples=None, n_samples=None, *, seed=None):
-        """Step 4: the Chapman-Kolmogorov test of the chosen model (see :meth:`ValidationPanel.run`).
+        """Step 4: the Chapman–Kolmogorov test of the chosen model (see :meth:`ValidationPanel.run`).
 
         ``n_sets`` defaults to the field, preset to the model's suggested number of macrostates;
         ``multiples`` and ``n_samples`` to the fields. Returns the test result (also :attr:`ck`).
@@ -276,7 +276,7 @@ class Workbench(widgets.VBox):
 
     def save_report(self, path=None, *, overwrite=None):
         """Write a self-contained HTML report (:func:`msmkit.write_report`) of the chosen model
-        with the lag scan, the last Chapman-Kolmogorov test and the macrostates of this model,
+        with the lag scan, the last Chapman–Kolmogorov test and the macrostates of this model,
         and the settings the microstates were made with.
 
         Parameters
@@ -310,7 +310,7 @@ class Workbench(widgets.VBox):
                 macro = None
             written = write_report(Path(name), model, scan=self.scan_result, ck=ck, macrostates=macro,
                                    settings=self._provenance()[1], overwrite=self.reporter.overwrite.value)
-        parts = ["the lag scan"] + (["the Chapman-Kolmogorov test"] if ck is not None else []) + (
+        parts = ["the lag scan"] + (["the Chapman–Kolmogorov test"] if ck is not None else []) + (
             ["the macrostates"] if macro is not None else [])
         report(self.reporter.status, f"Wrote the report of the model at lag {frames(model.lag)} with "
                                      f"{' and '.join(parts)} to {written.resolve()} (open it in a browser).", caught)
