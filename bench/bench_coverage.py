@@ -20,6 +20,7 @@ import numpy as np
 import scipy.linalg as la
 
 import msmkit as mk
+from _chains import sample_chain
 from msmkit._bootstrap import bootstrap_interval
 
 #: (name, interval method, expanded for few runs)
@@ -60,19 +61,6 @@ def truth(T: np.ndarray, k: int):
     return -1.0 / np.log(np.abs(w[order[1:k + 1]])), pi / pi.sum()
 
 
-def simulate(T, n_steps, n_runs, rng, pi):
-    """Runs from the stationary distribution, advanced together by inverse-CDF sampling."""
-    cum = np.cumsum(T, axis=1)
-    cum[:, -1] = np.inf
-    s = rng.choice(T.shape[0], size=n_runs, p=pi)
-    out = np.empty((n_runs, n_steps), dtype=np.int32)
-    u = rng.random((n_steps, n_runs))
-    for t in range(n_steps):
-        out[:, t] = s
-        s = (u[t][:, None] >= cum[s]).sum(axis=1)
-    return list(out)
-
-
 def replicate(T, runs, lag, k, n_samples, seed):
     """Estimates, bootstrap samples and jackknife values of (timescales, populations), or None
     when the model does not keep every state."""
@@ -103,7 +91,7 @@ def study(name, T, *, n_runs, n_steps, lag, k, n_reps, n_samples, sizes, confide
     used = 0
     start = time.perf_counter()
     for rep in range(n_reps):
-        runs = simulate(T, n_steps, n_runs, rng, true_pi)
+        runs = sample_chain(T, true_pi, n_runs, n_steps, rng)
         got = replicate(T, runs, lag, k, max(sizes), seed=rep)
         if got is None:
             continue

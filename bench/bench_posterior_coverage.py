@@ -16,6 +16,7 @@ import time
 import numpy as np
 
 import msmkit as mk
+from _chains import sample_chain
 from _timing import best_time
 
 FLUX = np.array([[1000, 60, 2, 0],
@@ -30,19 +31,6 @@ def true_chain():
     return T, pi, slowest_timescales(T[None], pi[None])[0]
 
 
-def simulate(T, pi, n_runs, n_frames, rng):
-    """Runs of the chain T started from the equilibrium pi (inverse-CDF steps, all runs at once)."""
-    cum = np.cumsum(T, axis=1)
-    cum[:, -1] = np.inf
-    s = rng.choice(len(pi), size=n_runs, p=pi)
-    out = np.empty((n_runs, n_frames), dtype=np.int32)
-    u = rng.random((n_frames, n_runs))
-    for t in range(n_frames):
-        out[:, t] = s
-        s = (u[t][:, None] >= cum[s]).sum(axis=1)
-    return list(out)
-
-
 def slowest_timescales(Ts, pis):
     """Slowest implied timescale -1 / ln(lambda_2) (lag 1, in steps) of each reversible matrix,
     from the symmetrized matrices; NaN where lambda_2 <= 0."""
@@ -55,7 +43,7 @@ def slowest_timescales(Ts, pis):
 
 def replicate(T, pi, t_true, n_runs, n_frames, n_samples, rng, prior_count=None):
     """One simulated data set: (covered?, interval width / truth) for [timescale, pi_0 .. pi_n-1]."""
-    runs = simulate(T, pi, n_runs, n_frames, rng)
+    runs = sample_chain(T, pi, n_runs, n_frames, rng)
     C = mk.count_transitions(runs, 1)
     keep = mk.kept_states(C)
     if keep.size < T.shape[0]:
@@ -128,7 +116,7 @@ def main():
         print(f"{'pooled':<20} {cov.mean():9.3f}")
     T, pi, _ = true_chain()
     cases = [("4 states, 10 runs x 1000 frames",
-              mk.count_transitions(simulate(T, pi, a.runs, 1000, np.random.default_rng(1)), 1)),
+              mk.count_transitions(sample_chain(T, pi, a.runs, 1000, np.random.default_rng(1)), 1)),
              ("100-state double well", double_well_counts())]
     print("\nposterior sample (default thin 5) against one reversible MLE fit of the same counts:")
     for name, C in cases:

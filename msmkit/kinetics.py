@@ -295,12 +295,8 @@ def mean_passage_time(T, pi, source, target, *, states=None, time_per_step: floa
 
     Notes
     -----
-    Computed at lag resolution: a model at lag tau sees the trajectory only every tau, so a passage counts
-    when the target is occupied at a multiple of tau; visits shorter than the lag are missed
-    and the result is a multiple-of-tau view of the dynamics. Mean first-passage times from a
-    model at lag tau are therefore resolved only to about tau and tend to come out too long
-    (by a lag or more when the lag is not small against the time itself); compare the values
-    of models at several lags before quoting one.
+    Computed at lag resolution, like :func:`hitting_steps` (see the Notes there): resolved only to
+    about one lag tau, and too long by up to a lag or more; compare models at several lags.
 
     References
     ----------
@@ -344,12 +340,8 @@ def passage_time_matrix(T, pi, sets, *, states=None, time_per_step: float = 1.0)
 
     Notes
     -----
-    Computed at lag resolution: a model at lag tau sees the trajectory only every tau, so a passage counts
-    when the target is occupied at a multiple of tau; visits shorter than the lag are missed
-    and the result is a multiple-of-tau view of the dynamics. Mean first-passage times from a
-    model at lag tau are therefore resolved only to about tau and tend to come out too long
-    (by a lag or more when the lag is not small against the time itself); compare the values
-    of models at several lags before quoting one.
+    Computed at lag resolution, like :func:`hitting_steps` (see the Notes there): resolved only to
+    about one lag tau, and too long by up to a lag or more; compare models at several lags.
 
     References
     ----------

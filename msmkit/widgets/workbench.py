@@ -250,17 +250,7 @@ class Workbench(widgets.VBox):
         Path
         """
         with action(self.saver.status, "Saving", buttons=[self.saver.button]) as caught:
-            if path is not None:
-                self.saver.name.value = str(path)
-            if overwrite is not None:
-                self.saver.overwrite.value = bool(overwrite)
-            model = self.model
-            if model is None:
-                raise InputError("there is no model to save yet: make microstates (step 1), then scan and "
-                                 "choose a lag (step 2)")
-            name = self.saver.name.value.strip()
-            if not name:
-                raise InputError("model file: give a file name")
+            model, name = self._target(self.saver, path, overwrite, "save", "model file")
             extras, preparation = self._provenance()
             macro = self.macrostates
             if macro is not None and np.array_equal(macro.states, model.states):
@@ -273,6 +263,21 @@ class Workbench(widgets.VBox):
         report(self.saver.status, f"Saved the model at lag {frames(model.lag)}{with_sets} to {written.resolve()} "
                                   f"(load it with msmkit.load_model).", caught)
         return written
+
+    def _target(self, row, path, overwrite, verb: str, what: str):
+        """The chosen model and the file name of a save row (``path`` and ``overwrite``, when
+        given, are set on the row first so that the row shows what was written)."""
+        if path is not None:
+            row.name.value = str(path)
+        if overwrite is not None:
+            row.overwrite.value = bool(overwrite)
+        if self.model is None:
+            raise InputError(f"there is no model to {verb} yet: make microstates (step 1), then scan and "
+                             f"choose a lag (step 2)")
+        name = row.name.value.strip()
+        if not name:
+            raise InputError(f"{what}: give a file name")
+        return self.model, name
 
     def save_report(self, path=None, *, overwrite=None):
         """Write a self-contained HTML report (:func:`msmkit.write_report`) of the chosen model
@@ -293,17 +298,7 @@ class Workbench(widgets.VBox):
         from ..report import write_report
 
         with action(self.reporter.status, "Writing the report", buttons=[self.reporter.button]) as caught:
-            if path is not None:
-                self.reporter.name.value = str(path)
-            if overwrite is not None:
-                self.reporter.overwrite.value = bool(overwrite)
-            model = self.model
-            if model is None:
-                raise InputError("there is no model to report yet: make microstates (step 1), then scan and "
-                                 "choose a lag (step 2)")
-            name = self.reporter.name.value.strip()
-            if not name:
-                raise InputError("report file: give a file name")
+            model, name = self._target(self.reporter, path, overwrite, "report", "report file")
             ck = self.ck if self.ck is not None and int(self.ck.lag) == int(model.lag) else None
             macro = self.macrostates
             if macro is not None and not np.array_equal(macro.states, model.states):
