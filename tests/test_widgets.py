@@ -92,14 +92,30 @@ def test_features_without_tica(trajs, tmp_path):
                       n_samples=0, progress=False)
     micro = bench.make_states()
     assert micro.centers_.shape == (8, 2)
-    ref = Microstates(8, seed=0).fit([np.asarray(r)[:, :2] for r in trajs])
-    np.testing.assert_allclose(micro.centers_, ref.centers_)
+    # default without TICA: features standardized over all frames (numpy mean and population sd)
+    raw = np.concatenate([np.asarray(r)[:, :2] for r in trajs])
+    mean, sd = raw.mean(axis=0), raw.std(axis=0)
+    ref = Microstates(8, seed=0).fit([(np.asarray(r)[:, :2] - mean) / sd for r in trajs])
+    np.testing.assert_allclose(micro.centers_, ref.centers_, rtol=1e-6, atol=1e-9)
+    assert "(standardized)" in status_text(bench.states_panel.status)
     bench.scan()
     path = bench.save(tmp_path / "plain.npz")
     with np.load(path, allow_pickle=False) as data:
         assert "tica_mean" not in data.files and "centers" in data.files
+        np.testing.assert_allclose(data["feature_mean"], mean, rtol=1e-10)
+        np.testing.assert_allclose(data["feature_scale"], sd, rtol=1e-10)
         prep = json.loads(str(data["metadata"]))["preparation"]
-    assert prep["features"] == ["progress", "twist"] and prep["tica"] is None
+    assert prep["features"] == ["progress", "twist"] and prep["tica"] is None and prep["scale"] == "standard"
+    # the other choice: the features as they are
+    micro = bench.make_states(scale="none")
+    ref = Microstates(8, seed=0).fit([np.asarray(r)[:, :2] for r in trajs])
+    np.testing.assert_allclose(micro.centers_, ref.centers_)
+    assert bench.states_panel.feature_scaling is None
+    with pytest.raises(InputError, match="scale"):
+        bench.make_states(scale="unit")
+    # with TICA the choice does not apply (TICA coordinates do not depend on feature units)
+    bench.states_panel.use_tica.value = True
+    assert bench.states_panel.scale.disabled
 
 
 def test_warnings_are_shown_in_the_panel():
@@ -369,9 +385,10 @@ def test_validate_button_gives_the_public_ck_test(wb):
     assert ck.passed == want.passed
     verdict = status_text(panel.verdict)
     assert want.criterion in verdict
-    assert verdict.count("Passed:" if want.passed else "Failed:") == 1
-    assert ("msmkit-ok" if want.passed else "msmkit-failed") in panel.verdict.value
-    assert ("passed" if want.passed else "failed") in status_text(panel.status)
+    assert verdict.count(f"{want.verdict.capitalize()}:") == 1
+    assert {"passed": "msmkit-ok", "failed": "msmkit-failed",
+            "inconclusive": "msmkit-inconclusive"}[want.verdict] in panel.verdict.value
+    assert want.verdict in status_text(panel.status)
     assert png_of(panel.ck_plot)[:4] == b"\x89PNG"
 
     flow = lag_flow(want, pair=(0, 1))
@@ -854,3 +871,166 @@ def test_kinetics_maps_color_the_public_numbers(trajs):
     np.testing.assert_allclose(left.collections[0].get_offsets(), micro.centers_[model.states][:, :2])
     with pytest.raises(InputError, match="kept states"):
         plot_kinetics_maps(micro.centers_[:3], model, macro, flux)
+
+
+# -- issue 14: verdict styles, feature scaling, kinetic variance, reversible switch, figures ----------
+
+def rare_switching_runs(seed=0):
+    """Two blocks of two states each, fast inside a block and crossing between the blocks a few
+    times only: a Chapman–Kolmogorov test of two sets has too few changes to decide."""
+    rng = np.random.default_rng(seed)
+    runs = []
+    for _ in range(4):
+        block, out = int(rng.integers(2)), []
+        for _ in range(1500):
+            if rng.random() < 0.001:
+                block = 1 - block
+            out.append(2 * block + int(rng.integers(2)))
+        runs.append(np.array(out))
+    return runs
+
+
+def test_inconclusive_verdict_has_its_own_style():
+    from msmkit.validate import chapman_kolmogorov
+    from msmkit.widgets import ValidationPanel
+
+    runs = rare_switching_runs()
+    model = mk.build_model(runs, lag=1)
+    want = chapman_kolmogorov(model, runs, n_sets=2, multiples=3, n_samples=10, seed=0)
+    assert want.verdict == "inconclusive"  # the library's judgement (fewer than 20 changes between the sets)
+    panel = ValidationPanel(model, runs, n_sets=2, multiples=3, n_samples=10, progress=False)
+    ck = panel.run()
+    assert ck.verdict == "inconclusive"
+    assert "msmkit-inconclusive" in panel.verdict.value
+    assert "msmkit-failed" not in panel.verdict.value and "msmkit-ok" not in panel.verdict.value
+    assert "inconclusive" in status_text(panel.status)
+    assert _render._KINDS["inconclusive"] != _render._KINDS["failed"]
+
+
+def test_lag_help_speaks_of_intervals_not_bands(wb):
+    texts = [wb.lag_panel.n_samples.tooltip, wb.lag_panel.children[0].value, LagPanel.__doc__]
+    assert not any("band" in t for t in texts)
+    assert "interval" in wb.lag_panel.n_samples.tooltip
+
+
+def test_kinetic_variance_guide_follows_the_tica_spectrum(wb, trajs):
+    """The guide shows sum_{i<=k} lambda_i^2 / sum_i lambda_i^2, with lambda the solutions of the
+    generalized eigenproblem C(tau) v = lambda C(0) v (scipy.linalg.eigh, covariances from numpy;
+    published definition of the kinetic variance, Noe & Clementi, JCTC 11, 5002 (2015))."""
+    import scipy.linalg
+
+    lag = wb.states_panel.tica_lag.value
+    x = [np.asarray(r, dtype=float) for r in trajs]
+    mean = np.concatenate(x).mean(axis=0)
+    a = np.concatenate([r[:-lag] for r in x]) - mean
+    b = np.concatenate([r[lag:] for r in x]) - mean
+    c0 = (a.T @ a + b.T @ b) / (2 * len(a))
+    ct = (a.T @ b + b.T @ a) / (2 * len(a))
+    lam = np.sort(scipy.linalg.eigh(ct, c0, eigvals_only=True))[::-1]
+    cum = np.cumsum(lam ** 2) / np.sum(lam ** 2)
+    np.testing.assert_allclose(wb.tica.cumulative_kinetic_variance_, cum, rtol=2e-3, atol=2e-3)
+    dim = wb.tica.dim_
+    text = status_text(wb.states_panel.variance_note)
+    got = float(text.split("kept hold")[1].split("%")[0])
+    assert abs(got - 100 * cum[dim - 1]) < 0.3  # printed to 3 digits; the covariances above agree to 2e-3
+    need95 = int(np.searchsorted(cum, 0.95) + 1)
+    assert f"and {need95} coordinates" in text
+    fig = wb.states_panel.figure("kinetic variance")
+    (line,) = [ln for ln in fig.axes[0].get_lines() if ln.get_label() == "cumulative"]
+    np.testing.assert_allclose(line.get_ydata(), wb.tica.cumulative_kinetic_variance_)
+    assert png_of(wb.states_panel.variance_plot)[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_without_tica_there_is_no_kinetic_variance_guide(trajs):
+    panel = StatesPanel(trajs, use_tica=False, n_states=5, progress=False)
+    panel.make_states()
+    assert panel.variance_note.value == "" and not panel.variance_plot.outputs
+    assert panel.figure_names == ["microstate map"]
+
+
+def test_reversible_switch_reaches_the_estimate(wb):
+    labels = wb.labels
+    panel = LagPanel(labels, dt=demo.DT, unit=demo.UNIT, lags=LAGS, n_samples=0, progress=False)
+    assert panel.reversible.value is True
+    scan = panel.scan(reversible=False)
+    assert panel.reversible.value is False
+    for lag in LAGS:
+        want = mk.build_model(labels, lag, dt=demo.DT, unit=demo.UNIT, reversible=False)
+        got = scan.model(lag)
+        assert got.reversible is False
+        np.testing.assert_allclose(got.propagator, want.propagator, rtol=1e-10, atol=1e-12)
+    ref = lag_scan(labels, LAGS, dt=demo.DT, unit=demo.UNIT, n_samples=0, reversible=False)
+    np.testing.assert_allclose(scan.timescales, ref.timescales, equal_nan=True)
+    assert "Non-reversible model" in status_text(panel.diagnostics)
+    scan = panel.scan(reversible=True)
+    assert all(scan.model(lag).reversible for lag in LAGS)
+    assert "Reversible model" in status_text(panel.diagnostics)
+    with pytest.raises(InputError, match="reversible"):
+        panel.scan(reversible="yes")
+
+
+def test_non_reversible_model_goes_through_validation_and_kinetics(trajs):
+    bench = Workbench(trajs, n_states=12, lags=[1, 2, 5], n_samples=0, reversible=False, progress=False)
+    bench.make_states()
+    bench.scan()
+    assert bench.model.reversible is False
+    ck = bench.validate(n_sets=2, multiples=2, n_samples=4)
+    assert ck.verdict in ("passed", "failed", "inconclusive")
+    summary = bench.kinetics(n_sets=2)
+    assert np.isfinite(summary.flux.rate_constant)
+
+
+def test_figures_save_as_png_and_svg(wb, tmp_path):
+    import xml.etree.ElementTree as ET
+
+    panel = wb.lag_panel
+    assert panel.figure_names == ["implied timescales"]
+    png = panel.save_figure(tmp_path / "ts.png")
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG spec, sec. 5.2)
+    svg = panel.save_figure(tmp_path / "ts.svg")
+    root = ET.parse(svg).getroot()
+    assert root.tag == "{http://www.w3.org/2000/svg}svg"
+    assert "Saved the implied timescales figure" in status_text(panel.figure_row.status)
+    # no suffix: PNG; the figure shows the chosen lag
+    plain = panel.save_figure(tmp_path / "plain")
+    assert plain.name == "plain.png" and plain.read_bytes()[:4] == b"\x89PNG"
+    # the button writes what the row says; an existing file is kept without overwrite
+    panel.figure_row.name.value = str(tmp_path / "ts.png")
+    before = png.read_bytes()
+    panel.figure_row.button.click()
+    assert "exists" in status_text(panel.figure_row.status) and "msmkit-error" in panel.figure_row.status.value
+    assert png.read_bytes() == before
+    panel.figure_row.overwrite.value = True
+    panel.figure_row.button.click()
+    assert "Saved" in status_text(panel.figure_row.status)
+    # every step's figures, by name
+    states = wb.states_panel
+    assert states.figure_names == ["microstate map", "kinetic variance"]
+    states.figure_row.which.value = "kinetic variance"
+    assert states.figure_row.name.value == "kinetic_variance.png"
+    out = states.save_figure(tmp_path / "kv.svg", figure="kinetic variance")
+    ET.parse(out)
+
+
+def test_bad_figure_paths_give_messages(wb, tmp_path):
+    panel = wb.lag_panel
+    row_ = panel.figure_row
+    for bad, words in ((tmp_path / "missing" / "x.png", "does not exist"), (tmp_path / "x.pdf", ".png or .svg"),
+                       ("   ", "give a file name")):
+        row_.name.value = str(bad)
+        row_.button.click()  # a message, no traceback
+        assert words in status_text(row_.status) and "msmkit-error" in row_.status.value
+        with pytest.raises(InputError, match="figure file|does not exist"):
+            panel.save_figure(bad)
+    # the write itself fails (a folder where the file should go): a message, nothing left behind
+    (tmp_path / "taken.png").mkdir()
+    with pytest.raises(InputError, match="cannot write"):
+        panel.save_figure(tmp_path / "taken.png", overwrite=True)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["taken.png"]
+    assert "cannot write" in status_text(row_.status)
+    row_.overwrite.value = False
+    fresh = LagPanel(None, progress=False)
+    with pytest.raises(InputError, match="not drawn yet"):
+        fresh.save_figure(tmp_path / "none.png")
+    with pytest.raises(InputError, match="figure must be one of"):
+        panel.save_figure(tmp_path / "y.png", figure="nonsense")

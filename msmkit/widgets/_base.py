@@ -11,13 +11,16 @@ import threading
 import warnings
 import weakref
 
+from pathlib import Path
+
 from .._checks import check_int, require_optional
 from ..errors import Cancelled, InputError
+from ..modelfile import atomic_write
 from . import _render
 
 widgets = require_optional("ipywidgets", "lab", "The msmkit workbench")
 
-__all__ = ["FileRow", "MacrostateCount", "SetPair", "Step", "action", "on_click", "parse_int_list", "report", "row",
+__all__ = ["FigureRow", "FileRow", "MacrostateCount", "SetPair", "Step", "action", "on_click", "parse_int_list", "report", "row",
            "widgets"]
 
 #: width of the descriptions in front of the input fields
@@ -197,6 +200,8 @@ class Step(widgets.VBox):
         self.cancel_button.on_click(lambda _: self.cancel())
         self._buttons = []
         self._plots = []
+        self._figures = {}  # name -> (Output showing it, Figure or a function drawing it)
+        self.figure_row = None
         self._thread = None
         self._cancel = threading.Event()
         self._job_lock = threading.Lock()
@@ -287,6 +292,75 @@ class Step(widgets.VBox):
     def _report(self, done: str, warnings_, extra=(), *, status=None):
         report(self.status if status is None else status, done, warnings_, extra)
 
+    # -- figures -----------------------------------------------------------------------------
+    def _figure_row(self, names) -> "FigureRow":
+        """The row that saves this panel's figures (``names``: what they are called, in order)."""
+        self.figure_row = FigureRow(tuple(names))
+        self._buttons.append(self.figure_row.button)
+        on_click(self.figure_row.button, self.save_figure)  # a quick write: no background thread
+        return self.figure_row
+
+    def _show_figure(self, out, fig, name: str) -> None:
+        """Show ``fig`` in ``out`` and keep it for :meth:`save_figure` under ``name``."""
+        _render.show_figure(out, fig, alt=name)
+        self._figures[name] = (out, fig)
+
+    def _keep_figure(self, name: str, out, draw) -> None:
+        """Remember that ``out`` shows the figure ``draw()`` makes (drawn only when saved)."""
+        self._figures[name] = (out, draw)
+
+    @property
+    def figure_names(self) -> list:
+        """Names of the figures this panel shows now (those :meth:`save_figure` can write)."""
+        return [name for name, (out, _) in self._figures.items() if out.outputs]
+
+    def figure(self, name=None):
+        """The matplotlib Figure shown under ``name`` (default: the first one shown)."""
+        shown = self.figure_names
+        if name is None:
+            if not shown:
+                raise InputError("there is no figure to save yet: compute this step first")
+            name = shown[0]
+        if name not in shown:
+            known = list(self.figure_row.which.options) if self.figure_row is not None else list(self._figures)
+            if name in known:
+                raise InputError(f"figure {name!r} is not drawn yet: compute this step first")
+            raise InputError(f"figure must be one of {known}, but got {name!r}")
+        made = self._figures[name][1]
+        return made() if callable(made) else made
+
+    def save_figure(self, path=None, figure=None, *, overwrite=None):
+        """Write a figure of this step to a PNG or SVG file, chosen by the file name's suffix.
+
+        Parameters
+        ----------
+        path : str or Path, optional
+            Default: the figure row's file name field. ``.png`` is appended when there is no
+            suffix; other suffixes than ``.png`` and ``.svg`` are refused.
+        figure : str, optional
+            Which figure (see :attr:`figure_names`); default: the one chosen in the row.
+        overwrite : bool, optional
+            Default: the row's overwrite switch (off: an existing file is kept and an error shown).
+
+        Returns
+        -------
+        Path
+        """
+        row_ = self.figure_row
+        with self._action("Saving the figure", status=row_.status):
+            if figure is not None:
+                if figure not in row_.which.options:
+                    raise InputError(f"figure must be one of {list(row_.which.options)}, but got {figure!r}")
+                row_.which.value = figure
+            if path is not None:
+                row_.name.value = str(path)
+            if overwrite is not None:
+                row_.overwrite.value = bool(overwrite)
+            fig = self.figure(row_.which.value)
+            written = write_figure(fig, row_.name.value, overwrite=row_.overwrite.value)
+        self._report(f"Saved the {row_.which.value} figure to {written.resolve()}.", [], status=row_.status)
+        return written
+
 
 class _CancelPoint:
     """The cancel flag handed to a library function: each question is one unit of work done."""
@@ -369,6 +443,59 @@ class FileRow(widgets.VBox):
         self.status.add_class("msmkit-status")
         self.status.add_class(f"{css_class}-status")
         super().__init__([row([self.name, self.overwrite, self.button]), self.status])
+
+
+#: figure file formats, chosen by the suffix of the file name
+FIGURE_FORMATS = (".png", ".svg")
+
+
+def write_figure(fig, path, *, overwrite: bool = False) -> Path:
+    """Write ``fig`` atomically as PNG or SVG (by the suffix of ``path``; ``.png`` when there is
+    none); InputError for a bad name, an existing file without ``overwrite`` or a folder that
+    cannot be written."""
+    text = str(path).strip()
+    if not text:
+        raise InputError("figure file: give a file name ending in .png or .svg")
+    target = Path(text).expanduser()
+    if not target.suffix:
+        target = target.with_name(target.name + ".png")
+    kind = target.suffix.lower()
+    if kind not in FIGURE_FORMATS:
+        raise InputError(f"figure file: {target.name} must end in .png or .svg (the suffix chooses the format)")
+    if target.exists() and not overwrite:
+        raise InputError(f"{target} exists; choose another name or tick 'overwrite'")
+    if not target.parent.is_dir():
+        raise InputError(f"cannot write {target}: folder {target.parent} does not exist")
+    try:
+        atomic_write(target, lambda fh: fig.savefig(fh, format=kind[1:], dpi=_render.DPI), overwrite=bool(overwrite))
+    except OSError as err:
+        raise InputError(f"cannot write {target}: {err.strerror or err}; choose another folder or name") from None
+    return target
+
+
+class FigureRow(FileRow):
+    """Which figure, a file name (.png or .svg), an overwrite switch and a Save figure button."""
+
+    def __init__(self, names):
+        names = tuple(names)
+        super().__init__(_figure_file(names[0], ".png"), description="figure file", button_text="Save figure",
+                         css_class="msmkit-figure", tooltip="Write the chosen figure; the file name's suffix "
+                                                            "(.png or .svg) chooses the format")
+        self.which = field(widgets.Dropdown, names[0], "figure", options=names, width="330px")
+        self.which.add_class("msmkit-figure-choice")
+        self.which.observe(self._chosen, names="value")
+        self.children = [row([self.which, self.name, self.overwrite, self.button]), self.status]
+
+    def _chosen(self, change):
+        """Follow the chosen figure in the file name while it is one this row proposed."""
+        current = Path(self.name.value.strip())
+        if current.stem == _figure_file(change["old"], "").strip():
+            self.name.value = str(current.with_name(_figure_file(change["new"], current.suffix or ".png")))
+
+
+def _figure_file(name: str, suffix: str) -> str:
+    """'Chapman–Kolmogorov test' -> 'chapman_kolmogorov_test.png'."""
+    return re.sub(r"[^a-z0-9]+", "_", name.lower()).strip("_") + suffix
 
 
 class MacrostateCount:

@@ -39,6 +39,7 @@ _KINDS = {
     "warning": ("#b5851b", "#fcf6e8", "Warning"),
     "error": ("#c44536", "#fbeeec", "Could not do that"),
     "failed": ("#c44536", "#fbeeec", ""),  # a result that fails a test (not an error of use)
+    "inconclusive": ("#6b7a8f", "#f1f3f6", ""),  # a test the data cannot decide: neither passed nor failed
 }
 
 
@@ -66,7 +67,8 @@ def clear(out) -> None:
 
 
 def message_html(lines, kind: str = "info") -> str:
-    """A boxed message (``kind`` one of info, ok, warning, error, failed); ``lines`` is a string or a
+    """A boxed message (``kind`` one of info, ok, warning, error, failed,
+    inconclusive); ``lines`` is a string or a
     list of strings, shown escaped, one paragraph or bullet each."""
     if isinstance(lines, str):
         lines = [lines]

@@ -152,7 +152,8 @@ class KineticsPanel(Step):
         ])
         self.children = [intro, settings, self.n_sets.reason, self.status, self.populations_html, self.passage_html,
                          self.cautions, widgets.HTML("<b>Reactive flux and routes</b>"), self.pair,
-                         self.flux_summary, self.network_plot, self.maps_plot, self.routes_note, self.pathways_html]
+                         self.flux_summary, self.network_plot, self.maps_plot, self.routes_note, self.pathways_html,
+                         self._figure_row(["macrostate network", "kinetics maps"])]
         self.set_model(model)
 
     # -- inputs ------------------------------------------------------------------------------
@@ -289,11 +290,11 @@ class KineticsPanel(Step):
         """The network of macrostates and, with centers, the pictures on the state map."""
         macro = result.macrostates
         lumped = result.flux.lump(macro.members)
-        _render.show_figure(self.network_plot, plot_macrostate_network(lumped), alt="macrostate network")
+        self._show_figure(self.network_plot, plot_macrostate_network(lumped), "macrostate network")
         if self.centers is not None and self.centers.shape[0] > int(np.max(self.model.states)):
             fig = plot_kinetics_maps(self.centers[self.model.states], self.model, macro, result.flux,
                                      names=self.coordinate_names, pair=(result.source, result.target))
-            _render.show_figure(self.maps_plot, fig, alt="macrostates, committor and slowest eigenvector")
+            self._show_figure(self.maps_plot, fig, "kinetics maps")
         else:
             _render.clear(self.maps_plot)
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 import traitlets
 
-from .._checks import check_dt, check_int, check_unit
+from .._checks import check_bool, check_dt, check_int, check_unit
 from ..defaults import BOOTSTRAP_SAMPLES, PROCESSES
 from ..errors import InputError
 from ..lagscan import lag_scan
@@ -89,9 +89,14 @@ class LagPanel(Step):
         Lags to scan, in frames (default 1, 2, 5, ... up to a twentieth of the longest run).
     n_processes : int, default 4
         How many of the slowest timescales to follow.
-    n_samples : int, default 20
-        Bootstrap samples for the uncertainty bands (0: none).
+    n_samples : int, default 200 (``msmkit.defaults.BOOTSTRAP_SAMPLES``)
+        Bootstrap samples for the intervals (error bars) of the timescales (0: none).
     seed : int, default 0
+    reversible : bool, default True
+        Estimate reversible models (detailed balance, the usual choice for equilibrium
+        simulations); False: non-reversible maximum-likelihood models (runs driven out of
+        equilibrium, or to see whether detailed balance matters). The Chapman–Kolmogorov test
+        uses the model's estimator.
     progress : bool, default True
 
     Attributes
@@ -105,7 +110,8 @@ class LagPanel(Step):
     model = traitlets.Any(None)
 
     def __init__(self, labels=None, *, dt: float = 1.0, unit: str = "step", lags=None, n_processes: int = PROCESSES,
-                 n_samples: int = BOOTSTRAP_SAMPLES, seed: int = 0, progress: bool = True):
+                 n_samples: int = BOOTSTRAP_SAMPLES, seed: int = 0, reversible: bool = True,
+                 progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-lags")
         self.dt, self.unit = check_dt(dt), check_unit(unit)
         self.labels = None
@@ -120,9 +126,15 @@ class LagPanel(Step):
         self.n_processes = field(widgets.IntText, int(n_processes), "timescales shown",
                                  "How many of the slowest processes to follow")
         self.n_samples = field(widgets.IntText, int(n_samples), "bootstrap samples",
-                               "Resampled data sets for the uncertainty bands (0: no bands)")
+                               "Resampled data sets for the error bars (95% intervals) of the timescales (0: none)")
         self.n_samples.add_class("msmkit-lag-samples")
         self.seed = field(widgets.IntText, int(seed), "seed", "Seed of the resampling")
+        self.reversible = widgets.Checkbox(value=bool(reversible), description="reversible (detailed balance)",
+                                           style={"description_width": DESCRIPTION_WIDTH},
+                                           layout=widgets.Layout(width="350px"))
+        self.reversible.tooltip = ("On: models that obey detailed balance (equilibrium runs). Off: "
+                                   "non-reversible maximum-likelihood models.")
+        self.reversible.add_class("msmkit-reversible")
         self.scan_button = button("Scan lags", "msmkit-scan-button", "Estimate a model at every lag", icon="line-chart")
         self._on_click(self.scan_button, self.scan)
 
@@ -145,10 +157,11 @@ class LagPanel(Step):
             "smallest lag from which they stay constant. Timescales below the line t = τ are "
             "faster than the lag and cannot be resolved."))
         settings = row([widgets.VBox([self.lags, self.n_processes]),
-                                 widgets.VBox([self.n_samples, self.seed])])
+                                 widgets.VBox([self.n_samples, self.seed, self.reversible])])
         self._plots = [self.plot]
         self.children = [intro, settings, widgets.HBox([self.scan_button, self.cancel_button, self.progress_bar]),
-                         self.status, self.plot, self.suggestion, self.slider, self.diagnostics]
+                         self.status, self.plot, self.suggestion, self.slider, self.diagnostics,
+                         self._figure_row(["implied timescales"])]
         if labels is not None:
             self.set_labels(labels)
 
@@ -173,7 +186,7 @@ class LagPanel(Step):
         return None if self.model is None else int(self.model.lag)
 
     # -- actions -----------------------------------------------------------------------------
-    def scan(self, lags=None, n_samples=None, *, n_processes=None, seed=None):
+    def scan(self, lags=None, n_samples=None, *, n_processes=None, seed=None, reversible=None):
         """Run the lag scan with the panel's settings; given arguments replace them first.
 
         The suggested lag is chosen (or the smallest one when none is suggested).
@@ -189,6 +202,8 @@ class LagPanel(Step):
             for name, value in (("n_samples", n_samples), ("n_processes", n_processes), ("seed", seed)):
                 if value is not None:
                     set_value(getattr(self, name), check_int(value, name), name)
+            if reversible is not None:
+                self.reversible.value = check_bool(reversible, "reversible")
             if self.labels is None:
                 raise InputError("there are no microstates yet: make them first (step 1, Cluster)")
             wanted = parse_int_list(self.lags.value, "lags")
@@ -197,6 +212,7 @@ class LagPanel(Step):
             result = lag_scan(self.labels, wanted, dt=self.dt, unit=self.unit,
                               n_processes=check_int(self.n_processes.value, "timescales shown", minimum=1),
                               n_samples=self.n_samples.value, seed=self.seed.value,
+                              reversible=self.reversible.value,
                               cancel=self._cancel_point(units + 1, what=f"{len(wanted)} lags"))
             self._stage(units, units + 1, "drawing")
             lag = result.suggested_lag if result.suggested_lag is not None else int(result.lags[0])
@@ -246,6 +262,8 @@ class LagPanel(Step):
     def _show_lag(self, lag):
         model = self.scan_result.model(lag)
         _render.show_png(self.plot, self._view.png(lag), alt=f"implied timescales, chosen lag {lag}")
+        scan = self.scan_result
+        self._keep_figure("implied timescales", self.plot, lambda: plot_timescales(scan, selected_lag=lag))
         self.diagnostics.value = _diagnostics_html(model, self.scan_result.timescales.shape[1],
                                                    lag_cautions(self.scan_result, lag))
         self.model = model
@@ -264,7 +282,9 @@ def _suggestion_html(scan) -> str:
 
 def _diagnostics_html(model, k, cautions=()) -> str:
     ts = model.relaxation_times(k)
-    lines = [f"Model at lag {frames(model.lag)} ({model.lag_time:g} {model.unit}): {model.n_states} states kept, "
+    kind = "reversible" if model.reversible else "non-reversible"
+    lines = [f"{kind.capitalize()} model at lag {frames(model.lag)} ({model.lag_time:g} {model.unit}): "
+             f"{model.n_states} states kept, "
              f"{100 * model.kept_fraction:.3g}% of the transition counts.",
              "Slowest implied timescales: " + (", ".join(f"{t:.4g}" for t in ts) + f" {model.unit}"
                                                if ts.size else "none")]

@@ -5,6 +5,7 @@ import numpy as np
 import traitlets
 
 from .._checks import as_float_trajectories, check_int, feature_names_of
+from ..cli import SPREAD_RATIO_CAUTION
 from ..errors import InputError
 from ..io import TrajectorySet, default_feature_names
 from ..plots import plot_state_map
@@ -16,6 +17,8 @@ from ._base import DESCRIPTION_WIDTH, Step, button, field, set_value, row, widge
 __all__ = ["StatesPanel"]
 
 METHODS = (("k-means", "kmeans"), ("mini-batch k-means", "minibatch"))
+#: how features are clustered without TICA (the same choices as ``msmkit build --scale``)
+SCALES = (("standardized (mean 0, sd 1)", "standard"), ("as they are", "none"))
 
 
 class StatesPanel(Step):
@@ -37,6 +40,10 @@ class StatesPanel(Step):
     n_states : int, default 100
         Number of microstates.
     method : {"kmeans", "minibatch"}
+    scale : {"standard", "none"}, default "standard"
+        Without TICA: cluster the features standardized to mean 0 and standard deviation 1
+        (``"standard"``, as ``msmkit build --scale standard``) or as they are. TICA coordinates
+        do not depend on the features' units, so with TICA the features are not scaled.
     stride : int, default 1
         Cluster on every ``stride``-th frame (all frames are labeled).
     seed : int, default 0
@@ -53,6 +60,9 @@ class StatesPanel(Step):
         The coordinates that were clustered (TICA output or the chosen features).
     settings : dict or None
         The settings the current microstates were made with (the fields may have changed since).
+    feature_scaling : (mean, scale) or None
+        Per-feature mean and scale the clustered features were standardized with (None: not
+        scaled).
     feature_names : tuple of str
     n_frames : list of int
         Frames per run.
@@ -63,7 +73,7 @@ class StatesPanel(Step):
 
     def __init__(self, trajs, *, features=None, use_tica: bool = True, tica_lag: int = 10, tica_dim: int = 2,
                  n_states: int = 100, method: str = "kmeans", stride: int = 1, seed: int = 0,
-                 progress: bool = True):
+                 scale: str = "standard", progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-states")
         names = feature_names_of(trajs)
         self._runs = as_float_trajectories(trajs, "trajs")
@@ -72,6 +82,7 @@ class StatesPanel(Step):
         self.tica = None
         self.coordinates = None
         self.settings = None
+        self.feature_scaling = None
         self.n_frames = [int(r.shape[0]) for r in self._runs]
 
         self.features = widgets.SelectMultiple(
@@ -89,6 +100,11 @@ class StatesPanel(Step):
                               "Lag of the time-lagged correlations TICA looks for, in frames")
         self.tica_dim = field(widgets.IntText, int(tica_dim), "TICA dimensions",
                               "Number of slow TICA coordinates to cluster in")
+        self.scale = field(widgets.Dropdown, _check_scale(scale), "features without TICA", options=SCALES,
+                           tooltip="Without TICA, k-means compares the features in their own units: "
+                                   "standardize them when their units or spreads differ. TICA "
+                                   "coordinates do not depend on the features' units.")
+        self.scale.add_class("msmkit-feature-scale")
         self.n_states = field(widgets.IntText, int(n_states), "microstates", "Number of clusters (microstates)")
         self.n_states.add_class("msmkit-n-states")
         self.method = field(widgets.Dropdown, method, "method", options=METHODS)
@@ -103,18 +119,24 @@ class StatesPanel(Step):
         self.map = widgets.Output(layout=widgets.Layout(min_height="60px", width="100%", overflow="auto"))
         self.map.add_class("msmkit-state-map")
         self.map.add_class("msmkit-plot")
+        self.variance_note = widgets.HTML()
+        self.variance_note.add_class("msmkit-kinetic-variance")
+        self.variance_plot = widgets.Output(layout=widgets.Layout(width="100%", max_width="560px", overflow="auto"))
+        self.variance_plot.add_class("msmkit-kinetic-variance-plot")
+        self.variance_plot.add_class("msmkit-plot")
 
         intro = widgets.HTML(_render.message_html(
             f"{len(self._runs)} runs, {sum(self.n_frames)} frames, {len(self.feature_names)} features. Choose "
             f"the features, reduce them to slow coordinates (optional), and cluster the frames into "
             f"microstates."))
         settings = row([
-            widgets.VBox([self.features, self.use_tica, self.tica_lag, self.tica_dim]),
+            widgets.VBox([self.features, self.scale, self.use_tica, self.tica_lag, self.tica_dim]),
             widgets.VBox([self.n_states, self.method, self.stride, self.seed,
                           widgets.HBox([self.cluster_button, self.cancel_button, self.progress_bar])]),
         ])
-        self._plots = [self.map]
-        self.children = [intro, settings, self.status, self.map]
+        self._plots = [self.map, self.variance_plot]
+        self.children = [intro, settings, self.status, self.map, self.variance_note, self.variance_plot,
+                         self._figure_row(["microstate map", "kinetic variance"])]
 
     def _known_features(self, features) -> tuple:
         features = [features] if isinstance(features, str) else list(features)
@@ -126,9 +148,10 @@ class StatesPanel(Step):
 
     def _tica_switched(self, change=None):
         self.tica_lag.disabled = self.tica_dim.disabled = not self.use_tica.value
+        self.scale.disabled = self.use_tica.value
 
     def make_states(self, n_states=None, seed=None, *, features=None, use_tica=None, tica_lag=None,
-                    tica_dim=None, method=None, stride=None):
+                    tica_dim=None, method=None, stride=None, scale=None):
         """Cluster with the panel's settings; given arguments replace the settings first.
 
         Returns
@@ -150,6 +173,8 @@ class StatesPanel(Step):
                 if method not in dict(METHODS).values():
                     raise InputError(f"method must be 'kmeans' or 'minibatch', but got {method!r}")
                 self.method.value = method
+            if scale is not None:
+                self.scale.value = _check_scale(scale)
             if use_tica is not None:
                 self.use_tica.value = bool(use_tica)
             if features is not None:
@@ -161,7 +186,9 @@ class StatesPanel(Step):
             cols = [self.feature_names.index(f) for f in chosen]
             runs = TrajectorySet([np.asarray(r)[:, cols] for r in self._runs], chosen)
             self._stage(1, 4, "TICA" if self.use_tica.value else "features")
-            tica = None
+            tica, scaling, extra = None, None, []
+            if not self.use_tica.value:
+                runs, scaling, extra = _scaled(runs, self.scale.value)
             if self.use_tica.value:
                 tica = TICA(self.tica_lag.value, dim=self.tica_dim.value, progress=False).fit(runs)
                 coords = list(tica.transform(runs))
@@ -174,18 +201,95 @@ class StatesPanel(Step):
                                 seed=self.seed.value, progress=False).fit(coords)
             self._stage(3, 4, "drawing")
             fig = plot_state_map(coords, micro.centers_, micro.counts_, names=tuple(names))
-            _render.show_figure(self.map, fig, alt="microstate map")
+            self._show_figure(self.map, fig, "microstate map")
+            if tica is not None:
+                self._show_figure(self.variance_plot, plot_kinetic_variance(tica), "kinetic variance")
+            else:
+                _render.clear(self.variance_plot)
+        self.variance_note.value = "" if tica is None else _render.message_html(kinetic_variance_text(tica))
         self.tica, self.microstates, self.coordinates = tica, micro, coords
+        self.feature_scaling = scaling
         self.settings = {"features": list(chosen), "use_tica": tica is not None,
                          "tica_lag": int(self.tica_lag.value) if tica is not None else None,
                          "tica_dim": int(tica.dim_) if tica is not None else None,
+                         "scale": self.scale.value if tica is None else "none",
                          "n_states": int(micro.centers_.shape[0]), "method": self.method.value,
                          "stride": int(self.stride.value), "seed": int(self.seed.value)}
         how = (f"TICA (lag {self.tica_lag.value} frames, {tica.dim_} dimensions) of {len(chosen)} features"
-               if tica is not None else f"{len(chosen)} features")
+               if tica is not None else f"{len(chosen)} features"
+               f"{' (standardized)' if scaling is not None else ''}")
         low = int((micro.counts_ < 10).sum())
-        extra = [f"{low} states hold fewer than 10 frames: their transitions are poorly sampled."] if low else []
+        extra += [f"{low} states hold fewer than 10 frames: their transitions are poorly sampled."] if low else []
         self._report(f"{micro.centers_.shape[0]} microstates from {how}. Next: scan lag times (step 2).",
                      caught, extra)
         self.labels = micro.labels_
         return micro
+
+
+def _check_scale(scale) -> str:
+    if scale not in dict(SCALES).values():
+        raise InputError(f"scale must be 'standard' (features standardized to mean 0, sd 1) or 'none' (as they "
+                         f"are), but got {scale!r}")
+    return scale
+
+
+def _scaled(runs, scale):
+    """The runs to cluster without TICA: (runs, (mean, scale) or None, cautions)."""
+    if scale == "standard":
+        scaled = runs.standardized()
+        return scaled.in_memory(), (scaled.feature_mean, scaled.feature_scale), []
+    _, sd = runs.feature_spread()
+    live = sd[sd > 0]
+    if live.size > 1 and live.max() > SPREAD_RATIO_CAUTION * live.min():
+        return runs, None, [f"The features are clustered as they are and their standard deviations range from "
+                            f"{live.min():.3g} to {live.max():.3g}: the widest decide the states. Standardize "
+                            f"them ('features without TICA') or reduce them with TICA."]
+    return runs, None, []
+
+
+def kinetic_variance_text(tica) -> list[str]:
+    """The kinetic-variance guide to the TICA dimension, in words (from
+    ``tica.cumulative_kinetic_variance_``: cumulative sums of squared TICA eigenvalues over the
+    whole spectrum, normalized to 1)."""
+    cum = np.asarray(tica.cumulative_kinetic_variance_, dtype=float)
+    dim = int(tica.dim_)
+    lines = [f"The {dim} TICA coordinate{'s' if dim != 1 else ''} kept hold{'' if dim != 1 else 's'} "
+             f"{100 * cum[dim - 1]:.3g}% of the kinetic variance (squared TICA eigenvalues, summed over all "
+             f"{cum.size} components)."]
+    if dim < cum.size:
+        need = {level: int(np.searchsorted(cum, level - 1e-12) + 1) for level in (0.8, 0.9, 0.95)}
+        lines.append(f"{dim + 1} would hold {100 * cum[dim]:.3g}%; 80%, 90% and 95% need "
+                     f"{need[0.8]}, {need[0.9]} and {need[0.95]} coordinates.")
+    lines.append("More coordinates keep more of the slow motion but spread the microstates over more "
+                 "dimensions, so each holds fewer frames.")
+    return lines
+
+
+def plot_kinetic_variance(tica, *, width=4.6, height=2.7):
+    """Share of kinetic variance per TICA component (bars) and cumulated (line), the kept
+    dimension marked; a matplotlib Figure."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    from ..plots import PALETTE
+
+    cum = np.asarray(tica.cumulative_kinetic_variance_, dtype=float)
+    share = np.diff(np.concatenate([[0.0], cum]))
+    x = np.arange(1, cum.size + 1)
+    dim = int(tica.dim_)
+    fig = Figure(figsize=(width, height), layout="constrained")
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    ax.bar(x, share, color=[PALETTE[0] if i <= dim else "#b8c4cf" for i in x], width=0.6,
+           label="each component")
+    ax.plot(x, cum, color=PALETTE[1], marker="o", ms=3.5, lw=1.4, label="cumulative")
+    ax.axvline(dim + 0.5, color="#3b3b3b", ls="--", lw=1)
+    ax.annotate(f"kept: {dim} ({100 * cum[dim - 1]:.3g}%)", (dim + 0.5, 0.5), xytext=(4, 0),
+                textcoords="offset points", fontsize=8, color="#3b3b3b", va="center")
+    ax.set_ylim(0, 1.05)
+    ax.set_xticks(x if x.size <= 12 else x[::max(1, x.size // 10)])
+    ax.set_xlabel("TICA components")
+    ax.set_ylabel("kinetic variance")
+    ax.legend(fontsize=8, frameon=False, loc="lower right")
+    ax.spines[["top", "right"]].set_visible(False)
+    return fig

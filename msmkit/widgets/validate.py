@@ -21,6 +21,10 @@ VERDICT_CAUTION = ("The test compares the model with the same data it was built 
                    "necessary, not sufficient.")
 
 
+#: message style of each verdict of :func:`msmkit.validate.chapman_kolmogorov`
+VERDICT_KINDS = {"passed": "ok", "failed": "failed", "inconclusive": "inconclusive"}
+
+
 class ValidationPanel(Step):
     """The Chapman–Kolmogorov test of the chosen model on macrostates, and the lag flow.
 
@@ -34,7 +38,7 @@ class ValidationPanel(Step):
         Number of macrostates tested (default: the model's suggestion, at least 2).
     multiples : int, default 4 (``msmkit.defaults.CK_MULTIPLES``)
         Largest k: the model's T(tau)^k is compared with the data at lag k tau, k = 1..multiples.
-    n_samples : int, default 20
+    n_samples : int, default 20 (``msmkit.defaults.CK_SAMPLES``)
         Bootstrap samples for the intervals of the estimates (0: a fixed tolerance instead).
     seed : int, default 0
     progress : bool, default True
@@ -92,7 +96,8 @@ class ValidationPanel(Step):
         ])
         self._plots = [self.ck_plot, self.flow_plot]
         self.children = [intro, settings, self.n_sets.reason, self.status, self.verdict, self.ck_plot,
-                         widgets.HTML("<b>Lag flow</b>"), self.pair, self.flow_summary, self.flow_plot]
+                         widgets.HTML("<b>Lag flow</b>"), self.pair, self.flow_summary, self.flow_plot,
+                         self._figure_row(["Chapman–Kolmogorov test", "lag flow"])]
         self.set_labels(labels)
         self.set_model(model)
 
@@ -149,15 +154,15 @@ class ValidationPanel(Step):
                                     cancel=self._cancel_point(units + 1, what="testing"))
             self._stage(units, units + 1, "drawing")
             flow = lag_flow(ck, pair=(0, 1))
-            _render.show_figure(self.ck_plot, plot_chapman_kolmogorov(ck), alt="Chapman–Kolmogorov test")
-            _render.show_figure(self.flow_plot, plot_lag_flow(flow), alt="lag flow")
+            self._show_figure(self.ck_plot, plot_chapman_kolmogorov(ck), "Chapman–Kolmogorov test")
+            self._show_figure(self.flow_plot, plot_lag_flow(flow), "lag flow")
         self.ck, self.flow = ck, flow
         self.pair.set_sets(ck.set_populations, flow.pair)
         self.verdict.value = _verdict_html(ck)
         self.flow_summary.value = _render.message_html(flow.summary)
         self._report(f"Tested the model at lag {frames(ck.lag)} on {ck.n_sets} sets, k = 1..{len(ck.multiples)}"
                      f"{f', {ck.n_samples} bootstrap samples' if ck.n_samples else ', no bootstrap'}: "
-                     f"{'passed' if ck.passed else 'failed'} (the rule is below).", caught)
+                     f"{ck.verdict} (the rule is below).", caught)
         return ck
 
     def show_flow(self, a: int, b: int):
@@ -171,7 +176,7 @@ class ValidationPanel(Step):
             if self.ck is None:
                 raise InputError("there is no test result yet: run the test first (Run test)")
             flow = lag_flow(self.ck, pair=(a, b))
-            _render.show_figure(self.flow_plot, plot_lag_flow(flow), alt="lag flow")
+            self._show_figure(self.flow_plot, plot_lag_flow(flow), "lag flow")
         self.flow = flow
         self.pair.choose(flow.pair)
         self.flow_summary.value = _render.message_html(flow.summary)
@@ -189,4 +194,4 @@ def _verdict_html(ck) -> str:
     sets = "; ".join(f"set {j}: {len(s)} state{'' if len(s) == 1 else 's'}" for j, s in enumerate(ck.members))
     lines = [ck.criterion, *ck.notes, f"Sets tested: {sets}.",
              VERDICT_CAUTION, SAMPLING_CAUTION]
-    return _render.message_html(lines, "ok" if ck.passed else "failed")
+    return _render.message_html(lines, VERDICT_KINDS.get(ck.verdict, "failed"))

@@ -39,9 +39,9 @@ class Workbench(widgets.VBox):
         Time between frames (default: ``trajs.dt`` when given, else 1).
     unit : str, optional
         Time unit (default: ``trajs.unit`` when given, else "step").
-    features, use_tica, tica_lag, tica_dim, n_states, method, stride, seed
+    features, use_tica, tica_lag, tica_dim, n_states, method, stride, seed, scale
         Starting settings of the microstates step (see :class:`StatesPanel`).
-    lags, n_processes, n_samples
+    lags, n_processes, n_samples, reversible
         Starting settings of the lag step (see :class:`LagPanel`).
     temperature : float or None, default 300.0
         Kelvin, for free energies in kJ/mol.
@@ -64,7 +64,8 @@ class Workbench(widgets.VBox):
 
     def __init__(self, trajs, *, dt=None, unit=None, features=None, use_tica: bool = True, tica_lag: int = 10,
                  tica_dim: int = 2, n_states: int = 100, method: str = "kmeans", stride: int = 1, seed: int = 0,
-                 lags=None, n_processes: int = PROCESSES, n_samples: int = BOOTSTRAP_SAMPLES, temperature=300.0, n_sets=None,
+                 scale: str = "standard", lags=None, n_processes: int = PROCESSES, n_samples: int = BOOTSTRAP_SAMPLES,
+                 reversible: bool = True, temperature=300.0, n_sets=None,
                  multiples: int = CK_MULTIPLES, ck_samples: int = CK_SAMPLES, file_name: str = "msmkit_model.npz",
                  progress: bool = True):
         super().__init__()
@@ -74,11 +75,12 @@ class Workbench(widgets.VBox):
         self.dt, self.unit = check_dt(dt), check_unit(unit)
         self.states_panel = StatesPanel(trajs, features=features, use_tica=use_tica, tica_lag=tica_lag,
                                         tica_dim=tica_dim, n_states=n_states, method=method, stride=stride,
-                                        seed=seed, progress=progress)
+                                        seed=seed, scale=scale, progress=progress)
         lengths = self.states_panel.n_frames
         self.lag_panel = LagPanel(None, dt=self.dt, unit=self.unit,
                                   lags=lags if lags is not None else default_lags(lengths),
-                                  n_processes=n_processes, n_samples=n_samples, seed=seed, progress=progress)
+                                  n_processes=n_processes, n_samples=n_samples, seed=seed, reversible=reversible,
+                                  progress=progress)
         self.populations_panel = PopulationsPanel(None, temperature=temperature, progress=progress)
         self.validation_panel = ValidationPanel(n_sets=n_sets, multiples=multiples, n_samples=ck_samples,
                                                 seed=seed, progress=progress)
@@ -318,7 +320,10 @@ class Workbench(widgets.VBox):
         used = panel.settings
         prep = {"features": used["features"],
                 "microstates": {k: used[k] for k in ("n_states", "method", "stride", "seed")},
-                "tica": None}
+                "scale": used["scale"], "tica": None}
+        if panel.feature_scaling is not None:
+            # (x - feature_mean) / feature_scale gives the coordinates the centers live in
+            extras["feature_mean"], extras["feature_scale"] = panel.feature_scaling
         if tica is not None:
             # (x - tica_mean) @ tica_components.T gives the coordinates the centers live in
             extras.update(tica_mean=tica.mean_, tica_components=tica.projection_)
