@@ -46,7 +46,7 @@ import scipy.sparse as sp
 
 from .errors import InputError, ModelFileError
 
-__all__ = ["FORMAT", "FORMAT_VERSION", "read_model_file", "save_model"]
+__all__ = ["FORMAT", "FORMAT_VERSION", "model_fields", "read_model_file", "save_model"]
 
 FORMAT = "msmkit-model"
 FORMAT_VERSION = 1
@@ -350,8 +350,15 @@ def read_model_file(path) -> dict:
     path = model_path(path, "path")
     if not path.is_file():
         raise ModelFileError(f"{path}: no such file")
-    data = read_arrays(path)
-    fields = check_contents(data, str(path))
+    return model_fields(read_arrays(path), str(path))
+
+
+def model_fields(data: dict, where: str) -> dict:
+    """The keyword arguments of :class:`~msmkit.MarkovModel` from the named arrays of a model
+    (as :func:`model_arrays` makes them), checked with :func:`check_contents`; ModelFileError
+    ("{where}: ...") otherwise. Also used for models stored inside other msmkit files."""
+    path = where
+    fields = check_contents(data, where)
     meta = fields["metadata"]
     try:
         dropped = np.asarray(meta.get("dropped_states", []), dtype=np.int64)

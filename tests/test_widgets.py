@@ -1034,3 +1034,92 @@ def test_bad_figure_paths_give_messages(wb, tmp_path):
         fresh.save_figure(tmp_path / "none.png")
     with pytest.raises(InputError, match="figure must be one of"):
         panel.save_figure(tmp_path / "y.png", figure="nonsense")
+
+
+# -- sessions ------------------------------------------------------------------------------------
+
+def test_session_comes_back_without_recomputing(wb, trajs, tmp_path, monkeypatch):
+    wb.select_lag(LAGS[2])
+    wb.validate(n_sets=2, multiples=CK_MULTIPLES, n_samples=CK_SAMPLES)
+    wb.kinetics(n_sets=2, source=1, target=0)
+    wb.populations_panel.temperature.value = "310"
+    wb.session_row.name.value = str(tmp_path / "work.npz")
+    wb.session_row.button.click()  # Save session
+    assert "Saved the session" in status_text(wb.session_row.status), status_text(wb.session_row.status)
+    path = tmp_path / "work.npz"
+    before = path.read_bytes()
+    wb.session_row.button.click()  # the file exists: kept, message shown
+    assert "exists" in status_text(wb.session_row.status) and path.read_bytes() == before
+
+    # nothing may be estimated, clustered, scanned, tested or resampled while loading
+    def refuse(*args, **kwargs):
+        raise AssertionError("recomputed while loading a session")
+
+    import msmkit.widgets.lags as lags_mod
+    import msmkit.widgets.validate as validate_mod
+    monkeypatch.setattr(lags_mod, "lag_scan", refuse)
+    monkeypatch.setattr(validate_mod, "chapman_kolmogorov", refuse)
+    monkeypatch.setattr(Microstates, "fit", refuse)
+    monkeypatch.setattr(TICA, "fit", refuse)
+    monkeypatch.setattr(mk.MarkovModel, "find_macrostates", refuse)
+    monkeypatch.setattr(mk.MarkovModel, "bootstrap_stationary", refuse)
+
+    other = Workbench(trajs, n_states=5, lags=[1], n_samples=0, temperature=None, progress=False)
+    other.session_row.name.value = str(path)
+    other.session_load_button.click()
+    assert "Loaded the session" in status_text(other.session_row.status), status_text(other.session_row.status)
+    assert other.model.lag == LAGS[2] and other.lag_panel.slider.value == LAGS[2]
+    for got, want in zip(other.labels, wb.labels):
+        np.testing.assert_array_equal(got, want)
+    np.testing.assert_array_equal(other.scan_result.timescales, wb.scan_result.timescales)
+    np.testing.assert_array_equal(other.scan_result.lower, wb.scan_result.lower)
+    assert other.states_panel.n_states.value == N_STATES and other.lag_panel.n_samples.value == 5
+    assert other.populations_panel.temperature.value == "310"
+    pd.testing.assert_frame_equal(other.populations_panel.table, wb.populations_panel.table)
+    assert other.ck.verdict == wb.ck.verdict and other.validation_panel.verdict.value == wb.validation_panel.verdict.value
+    pd.testing.assert_frame_equal(other.ck.table(), wb.ck.table())
+    assert other.kinetics_panel.result.source == 1 and other.kinetics_panel.result.target == 0
+    assert other.kinetics_panel.passage_html.value == wb.kinetics_panel.passage_html.value
+    assert other.kinetics_panel.populations_html.value == wb.kinetics_panel.populations_html.value
+    # the figures are back, pixel for pixel
+    for a, b in ((other.lag_panel.plot, wb.lag_panel.plot), (other.validation_panel.ck_plot, wb.validation_panel.ck_plot),
+                 (other.states_panel.map, wb.states_panel.map),
+                 (other.kinetics_panel.network_plot, wb.kinetics_panel.network_plot)):
+        assert np.array_equal(pixels(png_of(a)), pixels(png_of(b)))
+    # the restored model saves as the original does
+    saved = mk.load_model(other.save(tmp_path / "again.npz"))
+    np.testing.assert_array_equal(saved.propagator, wb.model.propagator)
+
+
+def test_session_of_other_trajectories_or_bad_files_gives_messages(wb, trajs, tmp_path):
+    path = wb.save_session(tmp_path / "mine.npz")
+    shorter = [np.asarray(r)[:700] for r in trajs]
+    other = Workbench(shorter, n_states=5, lags=[1], n_samples=0, progress=False)
+    with pytest.raises(InputError, match="other trajectories"):
+        other.load_session(path)
+    assert "other trajectories" in status_text(other.session_row.status)
+    assert other.labels is None and other.model is None
+    changed = [np.asarray(r).copy() for r in trajs]
+    changed[0][0, 0] += 1.0
+    with pytest.raises(InputError, match="other trajectories"):
+        Workbench(changed, progress=False).load_session(path)
+    (tmp_path / "junk.npz").write_bytes(b"not a zip at all")
+    other.session_row.name.value = str(tmp_path / "junk.npz")
+    other.session_load_button.click()  # a message, no traceback
+    assert "not a readable session file" in status_text(other.session_row.status)
+    wb.save(tmp_path / "model.npz", overwrite=True)
+    with pytest.raises(InputError, match="model file"):
+        other.load_session(tmp_path / "model.npz")
+    slow = Workbench(trajs, dt=2 * demo.DT, unit=demo.UNIT, progress=False)
+    with pytest.raises(InputError, match="dt="):
+        slow.load_session(path)
+
+
+def test_session_before_any_result_keeps_the_settings(trajs, tmp_path):
+    bench = Workbench(trajs, n_states=9, lags=[1, 2], n_samples=3, reversible=False, progress=False)
+    path = bench.save_session(tmp_path / "settings.npz")
+    assert "settings only" in status_text(bench.session_row.status)
+    again = Workbench(trajs, progress=False)
+    again.load_session(path)
+    assert again.states_panel.n_states.value == 9 and again.lag_panel.lags.value == "1, 2"
+    assert again.lag_panel.reversible.value is False and again.model is None

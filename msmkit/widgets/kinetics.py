@@ -220,30 +220,62 @@ class KineticsPanel(Step):
             self._stage(1, 3, "macrostates")
             macro = (model.find_macrostates(m) if self.labels is None else
                      model.find_macrostates(m, labels=self.labels, n_samples=POPULATION_SAMPLES, seed=0))
-            empty = [j for j, s in enumerate(macro.members) if s.size == 0]
-            if empty:
-                raise InputError(f"n_sets={m}: macrostate(s) {empty} hold no state by largest membership, so no "
-                                 f"time or flux can be given for them; choose fewer macrostates")
-            populations = macro.populations()
-            mfpt = macro.passage_time_table()
-            self._stage(2, 3, "rates and flux")
-            rows = [(a, b, mfpt.iloc[a, b], model.transition_paths(macro.members[a], macro.members[b]).rate_constant)
-                    for a in range(m) for b in range(m) if a != b]
-            passage = pd.DataFrame(rows, columns=["from_macrostate", "to_macrostate", "mfpt", "rate"])
-            passage.attrs["unit"] = model.unit
-            result = self._with_flux(KineticsSummary(macro, source, target, None, populations, passage, None,
-                                                     self.fraction.value, self.max_paths.value, model.unit))
-            self._stage(3, 4, "drawing")
-            self._draw(result)
+            result = self._summarize(macro, source, target)
+        self._show_result(result)
+        self._report(f"{m} macrostates of the model at lag {frames(model.lag)}; reactive flux from macrostate "
+                     f"{source} to {target}.", caught)
+        return result
+
+    def restore(self, macrostates, source=0, target=1):
+        """Show macrostates found before (e.g. read from a session file) for the current model:
+        their tables, times, rates and flux, without finding them again.
+
+        Returns
+        -------
+        KineticsSummary
+        """
+        with self._action("Restoring the macrostates", total=4) as caught:
+            if self.model is None:
+                raise InputError("there is no model yet to restore macrostates for: choose a lag (step 2)")
+            if not np.array_equal(macrostates.states, self.model.states):
+                raise InputError("these macrostates belong to another model (other states) than the chosen one")
+            m = macrostates.n_sets
+            source, target = _check_pair(source, target, m)
+            self.n_sets.get(m, self.model)
+            result = self._summarize(macrostates, source, target)
+        self._show_result(result)
+        self._report(f"{m} macrostates of the model at lag {frames(self.model.lag)}, as saved; reactive flux from "
+                     f"macrostate {source} to {target}.", caught)
+        return result
+
+    def _summarize(self, macro, source, target):
+        """Tables, flux and figures of ``macro`` for the current model (inside an action)."""
+        model, m = self.model, macro.n_sets
+        empty = [j for j, s in enumerate(macro.members) if s.size == 0]
+        if empty:
+            raise InputError(f"n_sets={m}: macrostate(s) {empty} hold no state by largest membership, so no "
+                             f"time or flux can be given for them; choose fewer macrostates")
+        populations = macro.populations()
+        mfpt = macro.passage_time_table()
+        self._stage(2, 3, "rates and flux")
+        rows = [(a, b, mfpt.iloc[a, b], model.transition_paths(macro.members[a], macro.members[b]).rate_constant)
+                for a in range(m) for b in range(m) if a != b]
+        passage = pd.DataFrame(rows, columns=["from_macrostate", "to_macrostate", "mfpt", "rate"])
+        passage.attrs["unit"] = model.unit
+        result = self._with_flux(KineticsSummary(macro, source, target, None, populations, passage, None,
+                                                 self.fraction.value, self.max_paths.value, model.unit))
+        self._stage(3, 4, "drawing")
+        self._draw(result)
+        return result
+
+    def _show_result(self, result):
+        model = self.model
         self.result = result
-        self.pair.set_sets(macro.stationary_populations, (source, target))
+        self.pair.set_sets(result.macrostates.stationary_populations, (result.source, result.target))
         self.populations_html.value = _populations_html(result, model)
         self.passage_html.value = _passage_html(result, model)
         self.cautions.value = _cautions_html(result, model)
         self._show_flux()
-        self._report(f"{m} macrostates of the model at lag {frames(model.lag)}; reactive flux from macrostate "
-                     f"{source} to {target}.", caught)
-        return result
 
     def select_pair(self, source, target, *, fraction=None, max_paths=None):
         """Reactive flux and routes between two other macrostates (the macrostates stay).

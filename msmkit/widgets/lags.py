@@ -217,15 +217,42 @@ class LagPanel(Step):
             self._stage(units, units + 1, "drawing")
             lag = result.suggested_lag if result.suggested_lag is not None else int(result.lags[0])
             view = TimescaleView(result, lag)
-        self._view = view
-        self.scan_result = result
-        self.suggestion.value = _suggestion_html(result)
-        self._set_slider(result.lags, lag)
-        self._show_lag(lag)
+        self._show_scan(result, lag, view)
         self._report(f"Scanned {len(result.lags)} lags"
                      f"{f' with {result.n_samples} bootstrap samples' if result.n_samples else ''}. "
                      f"Move the slider to choose the lag; populations are in step 3.", caught + list(result.notes))
         return result
+
+    def restore(self, scan, lag=None):
+        """Show a lag scan made before (e.g. read from a session file) with ``lag`` chosen
+        (default: the suggested lag, else the smallest), without scanning again.
+
+        Returns
+        -------
+        MarkovModel
+            The model at the chosen lag (also :attr:`model`).
+        """
+        with self._action("Restoring the lag scan") as caught:
+            if lag is None:
+                lag = scan.suggested_lag if scan.suggested_lag is not None else int(scan.lags[0])
+            lag = check_int(lag, "lag")
+            scan.model(lag)  # InputError for a lag that was not scanned
+            self.lags.value = ", ".join(str(int(x)) for x in scan.lags)
+            set_value(self.n_processes, int(scan.timescales.shape[1]), "n_processes")
+            set_value(self.n_samples, int(scan.n_samples), "n_samples")
+            self.reversible.value = bool(scan.model(lag).reversible)
+            view = TimescaleView(scan, lag)
+        self._show_scan(scan, lag, view)
+        self._report(f"The scan of {len(scan.lags)} lags, as saved; lag {frames(lag)} chosen.",
+                     caught + list(scan.notes))
+        return self.model
+
+    def _show_scan(self, scan, lag, view):
+        self._view = view
+        self.scan_result = scan
+        self.suggestion.value = _suggestion_html(scan)
+        self._set_slider(scan.lags, lag)
+        self._show_lag(lag)
 
     def select_lag(self, lag):
         """Choose one of the scanned lags (frames); returns the model at that lag."""

@@ -10,6 +10,7 @@ from ..errors import InputError
 from ..io import TrajectorySet, default_feature_names
 from ..plots import plot_state_map
 from ..reduce import TICA
+from ..session import trajectories_fingerprint
 from ..states import Microstates
 from . import _render
 from ._base import DESCRIPTION_WIDTH, Step, button, field, set_value, row, widgets
@@ -183,8 +184,7 @@ class StatesPanel(Step):
             chosen = list(self.features.value)
             if not chosen:
                 raise InputError("features: choose at least one feature")
-            cols = [self.feature_names.index(f) for f in chosen]
-            runs = TrajectorySet([np.asarray(r)[:, cols] for r in self._runs], chosen)
+            runs = self._selected(chosen)
             self._stage(1, 4, "TICA" if self.use_tica.value else "features")
             tica, scaling, extra = None, None, []
             if not self.use_tica.value:
@@ -192,38 +192,109 @@ class StatesPanel(Step):
             if self.use_tica.value:
                 tica = TICA(self.tica_lag.value, dim=self.tica_dim.value, progress=False).fit(runs)
                 coords = list(tica.transform(runs))
-                names = tica.get_feature_names_out()
             else:
                 coords = list(runs)
-                names = tuple(chosen)
             self._stage(2, 4, "clustering")
             micro = Microstates(self.n_states.value, method=self.method.value, stride=self.stride.value,
                                 seed=self.seed.value, progress=False).fit(coords)
             self._stage(3, 4, "drawing")
-            fig = plot_state_map(coords, micro.centers_, micro.counts_, names=tuple(names))
-            self._show_figure(self.map, fig, "microstate map")
-            if tica is not None:
-                self._show_figure(self.variance_plot, plot_kinetic_variance(tica), "kinetic variance")
-            else:
-                _render.clear(self.variance_plot)
-        self.variance_note.value = "" if tica is None else _render.message_html(kinetic_variance_text(tica))
-        self.tica, self.microstates, self.coordinates = tica, micro, coords
-        self.feature_scaling = scaling
-        self.settings = {"features": list(chosen), "use_tica": tica is not None,
-                         "tica_lag": int(self.tica_lag.value) if tica is not None else None,
-                         "tica_dim": int(tica.dim_) if tica is not None else None,
-                         "scale": self.scale.value if tica is None else "none",
-                         "n_states": int(micro.centers_.shape[0]), "method": self.method.value,
-                         "stride": int(self.stride.value), "seed": int(self.seed.value)}
+            self._draw(coords, micro, tica, chosen)
+        settings = {"features": list(chosen), "use_tica": tica is not None,
+                    "tica_lag": int(self.tica_lag.value) if tica is not None else None,
+                    "tica_dim": int(tica.dim_) if tica is not None else None,
+                    "scale": self.scale.value if tica is None else "none",
+                    "n_states": int(micro.centers_.shape[0]), "method": self.method.value,
+                    "stride": int(self.stride.value), "seed": int(self.seed.value)}
         how = (f"TICA (lag {self.tica_lag.value} frames, {tica.dim_} dimensions) of {len(chosen)} features"
                if tica is not None else f"{len(chosen)} features"
                f"{' (standardized)' if scaling is not None else ''}")
-        low = int((micro.counts_ < 10).sum())
-        extra += [f"{low} states hold fewer than 10 frames: their transitions are poorly sampled."] if low else []
-        self._report(f"{micro.centers_.shape[0]} microstates from {how}. Next: scan lag times (step 2).",
-                     caught, extra)
-        self.labels = micro.labels_
+        self._finish(micro, tica, coords, scaling, settings, caught + extra,
+                     f"{micro.centers_.shape[0]} microstates from {how}. Next: scan lag times (step 2).")
         return micro
+
+    def restore(self, microstates, tica=None, feature_scaling=None, settings=None):
+        """Show microstates made before (e.g. read from a session file) of these trajectories,
+        without clustering again: the map is drawn from the frames projected with ``tica`` (or
+        scaled with ``feature_scaling``), and the labels go to the later steps.
+
+        Parameters
+        ----------
+        microstates : Microstates
+            Fitted on these trajectories (one label array per run).
+        tica : TICA, optional
+        feature_scaling : (mean, scale), optional
+        settings : dict, optional
+            The settings they were made with (:attr:`settings`); shown in the fields.
+
+        Returns
+        -------
+        Microstates
+        """
+        with self._action("Restoring the microstates", total=2) as caught:
+            settings = dict(settings or {})
+            if settings:
+                self.features.value = self._known_features(settings["features"])
+                self.use_tica.value = bool(settings["use_tica"])
+                for name in ("tica_lag", "tica_dim", "n_states", "stride", "seed"):
+                    if settings.get(name) is not None:
+                        set_value(getattr(self, name), int(settings[name]), name)
+                self.method.value = settings.get("method", self.method.value)
+                self.scale.value = _check_scale(settings.get("scale", self.scale.value)) if tica is None \
+                    else self.scale.value
+            chosen = list(self.features.value)
+            labels = list(microstates.labels_)
+            if [len(r) for r in labels] != self.n_frames:
+                raise InputError(f"these microstates label runs of {[len(r) for r in labels]} frames, but the "
+                                 f"trajectories here have {self.n_frames}: they were made from other data")
+            runs = self._selected(chosen)
+            if tica is not None:
+                coords = list(tica.transform(runs))
+            elif feature_scaling is not None:
+                mean, scale = (np.asarray(a, dtype=float) for a in feature_scaling)
+                coords = [(np.asarray(r, dtype=float) - mean) / scale for r in runs]
+            else:
+                coords = [np.asarray(r, dtype=float) for r in runs]
+            if microstates.centers_.shape[1] != coords[0].shape[1]:
+                raise InputError(f"the microstate centers have {microstates.centers_.shape[1]} coordinates, the "
+                                 f"frames {coords[0].shape[1]}: these microstates belong to other settings")
+            self._stage(1, 2, "drawing")
+            self._draw(coords, microstates, tica, chosen)
+        settings = settings or {"features": chosen, "use_tica": tica is not None,
+                                "tica_lag": int(tica.lag_) if tica is not None else None,
+                                "tica_dim": int(tica.dim_) if tica is not None else None,
+                                "scale": "standard" if feature_scaling is not None else "none",
+                                "n_states": int(microstates.centers_.shape[0]), "method": self.method.value,
+                                "stride": int(self.stride.value), "seed": int(self.seed.value)}
+        self._finish(microstates, tica, coords, feature_scaling, settings, caught,
+                     f"{microstates.centers_.shape[0]} microstates, as saved (not clustered again).")
+        return microstates
+
+    def fingerprint(self) -> str:
+        """SHA-256 of the trajectories of this panel (all features), to match session files."""
+        return trajectories_fingerprint(self._runs)
+
+    def _selected(self, chosen):
+        cols = [self.feature_names.index(f) for f in chosen]
+        return TrajectorySet([np.asarray(r)[:, cols] for r in self._runs], chosen)
+
+    def _draw(self, coords, micro, tica, chosen):
+        names = tica.get_feature_names_out() if tica is not None else tuple(chosen)
+        fig = plot_state_map(coords, micro.centers_, micro.counts_, names=tuple(names))
+        self._show_figure(self.map, fig, "microstate map")
+        if tica is not None:
+            self._show_figure(self.variance_plot, plot_kinetic_variance(tica), "kinetic variance")
+        else:
+            _render.clear(self.variance_plot)
+
+    def _finish(self, micro, tica, coords, scaling, settings, caught, done):
+        self.variance_note.value = "" if tica is None else _render.message_html(kinetic_variance_text(tica))
+        self.tica, self.microstates, self.coordinates = tica, micro, coords
+        self.feature_scaling = scaling
+        self.settings = settings
+        low = int((micro.counts_ < 10).sum())
+        extra = [f"{low} states hold fewer than 10 frames: their transitions are poorly sampled."] if low else []
+        self._report(done, caught, extra)
+        self.labels = micro.labels_
 
 
 def _check_scale(scale) -> str:

@@ -153,17 +153,45 @@ class ValidationPanel(Step):
                                     n_samples=self.n_samples.value, seed=self.seed.value,
                                     cancel=self._cancel_point(units + 1, what="testing"))
             self._stage(units, units + 1, "drawing")
-            flow = lag_flow(ck, pair=(0, 1))
-            self._show_figure(self.ck_plot, plot_chapman_kolmogorov(ck), "Chapman–Kolmogorov test")
-            self._show_figure(self.flow_plot, plot_lag_flow(flow), "lag flow")
-        self.ck, self.flow = ck, flow
-        self.pair.set_sets(ck.set_populations, flow.pair)
-        self.verdict.value = _verdict_html(ck)
-        self.flow_summary.value = _render.message_html(flow.summary)
+            flow = self._draw(ck, (0, 1))
+        self._show_test(ck, flow)
         self._report(f"Tested the model at lag {frames(ck.lag)} on {ck.n_sets} sets, k = 1..{len(ck.multiples)}"
                      f"{f', {ck.n_samples} bootstrap samples' if ck.n_samples else ', no bootstrap'}: "
                      f"{ck.verdict} (the rule is below).", caught)
         return ck
+
+    def restore(self, ck, flow_pair=(0, 1)):
+        """Show a test made before (e.g. read from a session file) of the current model, with the
+        lag flow of the sets ``flow_pair``, without testing again.
+
+        Returns
+        -------
+        CKResult
+        """
+        with self._action("Restoring the Chapman–Kolmogorov test", total=2) as caught:
+            if self.model is None or int(ck.lag) != int(self.model.lag):
+                raise InputError("this test belongs to another model than the chosen one: choose the lag of the test "
+                                 f"({ck.lag} frames) in step 2 first")
+            self.n_sets.get(len(ck.members), self.model)
+            set_value(self.multiples, int(len(ck.multiples)), "multiples")
+            set_value(self.n_samples, int(ck.n_samples), "n_samples")
+            flow = self._draw(ck, tuple(int(x) for x in flow_pair))
+        self._show_test(ck, flow)
+        self._report(f"The test of the model at lag {frames(ck.lag)} on {ck.n_sets} sets, as saved: {ck.verdict}.",
+                     caught)
+        return ck
+
+    def _draw(self, ck, pair):
+        flow = lag_flow(ck, pair=pair)
+        self._show_figure(self.ck_plot, plot_chapman_kolmogorov(ck), "Chapman–Kolmogorov test")
+        self._show_figure(self.flow_plot, plot_lag_flow(flow), "lag flow")
+        return flow
+
+    def _show_test(self, ck, flow):
+        self.ck, self.flow = ck, flow
+        self.pair.set_sets(ck.set_populations, flow.pair)
+        self.verdict.value = _verdict_html(ck)
+        self.flow_summary.value = _render.message_html(flow.summary)
 
     def show_flow(self, a: int, b: int):
         """Draw the lag flow of sets ``a`` and ``b`` of the last test (no new computation).

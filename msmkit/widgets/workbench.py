@@ -9,8 +9,9 @@ import numpy as np
 from .._checks import check_dt, check_unit
 from ..defaults import BOOTSTRAP_SAMPLES, CK_MULTIPLES, CK_SAMPLES, PROCESSES
 from ..errors import InputError
+from ..session import Session, load_session, save_session, trajectories_fingerprint
 from . import _render
-from ._base import FileRow, action, on_click, report, widgets
+from ._base import FileRow, action, button, on_click, report, row, set_value, widgets
 from ._render import frames
 from .kinetics import KineticsPanel
 from .lags import LagPanel, default_lags
@@ -53,6 +54,8 @@ class Workbench(widgets.VBox):
         :class:`ValidationPanel`).
     file_name : str
         Default name of the saved model file.
+    session_file : str
+        Default name of the session file (:meth:`save_session`, :meth:`load_session`).
     progress : bool, default True
 
     Notes
@@ -67,7 +70,7 @@ class Workbench(widgets.VBox):
                  scale: str = "standard", lags=None, n_processes: int = PROCESSES, n_samples: int = BOOTSTRAP_SAMPLES,
                  reversible: bool = True, temperature=300.0, n_sets=None,
                  multiples: int = CK_MULTIPLES, ck_samples: int = CK_SAMPLES, file_name: str = "msmkit_model.npz",
-                 progress: bool = True):
+                 session_file: str = "msmkit_session.npz", progress: bool = True):
         super().__init__()
         self.add_class("msmkit-workbench")
         dt = dt if dt is not None else (getattr(trajs, "dt", None) or 1.0)
@@ -114,8 +117,22 @@ class Workbench(widgets.VBox):
             f"<div style='color:#555'>{len(lengths)} runs, {sum(lengths)} frames, one frame = {self.dt:g} "
             f"{self.unit}. Work through the steps from left to right; every setting is also an "
             f"argument of a method (see help(Workbench)).</div>")
+        self.session_row = FileRow(session_file, description="session file", button_text="Save session",
+                                   css_class="msmkit-session",
+                                   tooltip="Write the settings and results of every step (lag scan with intervals, "
+                                           "chosen lag, Chapman–Kolmogorov test, macrostates) to one .npz file")
+        self.session_load_button = button("Load session", "msmkit-session-load-button",
+                                          "Read a session file of these trajectories and show the results again, "
+                                          "without recomputing them", style="", icon="folder-open")
+        self.session_row.children = [row([self.session_row.name, self.session_row.overwrite, self.session_row.button,
+                                          self.session_load_button]), self.session_row.status]
+        on_click(self.session_row.button, self.save_session)
+        on_click(self.session_load_button, self.load_session)
+        _render.show_message(self.session_row.status, "Save the session to come back to this analysis later, or "
+                                                      "load one made from these trajectories.")
         self.children = [header, self.tabs, widgets.HTML("<b>Save the chosen model</b>"), self.saver,
-                         widgets.HTML("<b>Hand on the analysis</b>"), self.reporter]
+                         widgets.HTML("<b>Hand on the analysis</b>"), self.reporter,
+                         widgets.HTML("<b>Save or load the session</b>"), self.session_row]
 
     # -- steps -------------------------------------------------------------------------------
     def add_step(self, title: str, panel) -> None:
@@ -330,3 +347,151 @@ class Workbench(widgets.VBox):
             prep["tica"] = {"lag": int(tica.lag_), "dim": int(tica.dim_), "scaling": tica.scaling,
                             "coordinates": "(x - tica_mean) @ tica_components.T, scaling included"}
         return extras, prep
+
+    # -- sessions ----------------------------------------------------------------------------
+    #: the fields of each step kept in a session, by step
+    SESSION_FIELDS = {
+        "microstates": ("states_panel", ("features", "use_tica", "tica_lag", "tica_dim", "n_states", "method",
+                                         "stride", "seed", "scale")),
+        "lags": ("lag_panel", ("lags", "n_processes", "n_samples", "seed", "reversible")),
+        "populations": ("populations_panel", ("temperature", "sort_by", "ascending", "max_rows")),
+        "validation": ("validation_panel", ("n_sets", "multiples", "n_samples", "seed")),
+        "kinetics": ("kinetics_panel", ("n_sets", "fraction", "max_paths")),
+    }
+
+    def _field(self, step, name):
+        widget = getattr(getattr(self, self.SESSION_FIELDS[step][0]), name)
+        return getattr(widget, "field", widget)  # a MacrostateCount holds its field
+
+    def session(self) -> Session:
+        """The settings and results of every step as a :class:`~msmkit.session.Session` (what
+        :meth:`save_session` writes). The test and the macrostates are included when they belong
+        to the chosen model."""
+        sp, model = self.states_panel, self.model
+        ck = self.ck if self.ck is not None and model is not None and int(self.ck.lag) == int(model.lag) else None
+        macro = self.macrostates
+        if macro is not None and (model is None or not np.array_equal(macro.states, model.states)):
+            macro = None
+        kinetics = self.kinetics_panel.result
+        flow = self.validation_panel.flow
+        fields = {step: {name: self._field(step, name).value for name in names}
+                  for step, (_, names) in self.SESSION_FIELDS.items()}
+        fields["microstates"]["features"] = list(fields["microstates"]["features"])
+        return Session(settings={"fields": fields, "microstates": sp.settings}, dt=self.dt, unit=self.unit,
+                       frames_per_run=list(sp.n_frames), trajectories_sha256=sp.fingerprint(),
+                       microstates=sp.microstates, tica=sp.tica, feature_scaling=sp.feature_scaling,
+                       scan=self.scan_result, lag=self.lag_panel.lag, ck=ck,
+                       flow_pair=tuple(flow.pair) if ck is not None and flow is not None else None,
+                       macrostates=macro, pair=(kinetics.source, kinetics.target) if macro is not None else None)
+
+    def save_session(self, path=None, *, overwrite=None):
+        """Write the session (:meth:`session`) to one ``.npz`` file (:func:`msmkit.session.save_session`:
+        arrays and JSON, no pickle, written atomically).
+
+        Parameters
+        ----------
+        path : str or Path, optional
+            Default: the session file field. ``.npz`` is appended when missing.
+        overwrite : bool, optional
+            Default: the session row's overwrite switch (off: an existing file is kept and an
+            error shown).
+
+        Returns
+        -------
+        Path
+        """
+        row_ = self.session_row
+        with action(row_.status, "Saving the session", buttons=[row_.button, self.session_load_button]) as caught:
+            name = self._session_name(path, overwrite)
+            session = self.session()
+            written = save_session(session, Path(name).expanduser(), overwrite=row_.overwrite.value)
+        report(row_.status, f"Saved the session ({_session_parts(session)}) to {written.resolve()}; load it with "
+                            f"Load session or msmkit.session.load_session.", caught)
+        return written
+
+    def load_session(self, path=None):
+        """Read a session file made from these trajectories and show the settings and results in
+        every step, without clustering, scanning or testing again (the figures are redrawn from
+        the stored results; first-passage times and fluxes of the macrostates are recomputed from
+        the stored model, which is exact linear algebra).
+
+        Parameters
+        ----------
+        path : str or Path, optional
+            Default: the session file field.
+
+        Returns
+        -------
+        Session
+
+        Raises
+        ------
+        InputError
+            A missing, damaged or foreign file, or a session of other trajectories or another
+            frame time (also shown in the session row).
+        """
+        row_ = self.session_row
+        with action(row_.status, "Loading the session", buttons=[row_.button, self.session_load_button]) as caught:
+            name = self._session_name(path, None)
+            if any(panel.running for _, panel in self.steps if hasattr(panel, "running")):
+                raise InputError("a step is still computing: wait for it or cancel it before loading a session")
+            session = load_session(Path(name).expanduser())
+            self.restore(session)
+        report(row_.status, f"Loaded the session ({_session_parts(session)}) from {Path(name).expanduser().resolve()}.",
+               caught)
+        return session
+
+    def restore(self, session: Session) -> None:
+        """Show a :class:`~msmkit.session.Session` of these trajectories in every step."""
+        sp = self.states_panel
+        if list(session.frames_per_run) != list(sp.n_frames) or session.trajectories_sha256 != sp.fingerprint():
+            raise InputError(f"this session was made from other trajectories ({len(session.frames_per_run)} runs, "
+                             f"{sum(session.frames_per_run)} frames, or other values) than those of this workbench "
+                             f"({len(sp.n_frames)} runs, {sum(sp.n_frames)} frames); open a workbench on the "
+                             f"trajectories it was made from")
+        if abs(float(session.dt) - self.dt) > 1e-12 * self.dt or session.unit != self.unit:
+            raise InputError(f"this session has one frame = {session.dt:g} {session.unit}, this workbench "
+                             f"{self.dt:g} {self.unit}; give the workbench dt={session.dt:g}, unit={session.unit!r}")
+        fields = dict(session.settings.get("fields", {}))
+        self._set_fields("microstates", fields)
+        if session.microstates is not None:
+            sp.restore(session.microstates, session.tica, session.feature_scaling,
+                       session.settings.get("microstates"))
+            self._set_fields("microstates", fields)
+        if session.scan is not None:
+            self.lag_panel.restore(session.scan, session.lag)
+        self._set_fields("lags", fields)
+        self._set_fields("populations", fields)
+        if session.ck is not None:
+            self.validation_panel.restore(session.ck, session.flow_pair or (0, 1))
+        self._set_fields("validation", fields)
+        self._set_fields("kinetics", fields)
+        if session.macrostates is not None:
+            self.kinetics_panel.restore(session.macrostates, *(session.pair or (0, 1)))
+
+    def _set_fields(self, step, fields):
+        for name, value in dict(fields.get(step, {})).items():
+            if name in self.SESSION_FIELDS[step][1]:
+                widget = self._field(step, name)
+                if widget.value != value and not (isinstance(value, list) and tuple(value) == widget.value):
+                    set_value(widget, tuple(value) if isinstance(value, list) else value, f"{step}.{name}")
+
+    def _session_name(self, path, overwrite) -> str:
+        row_ = self.session_row
+        if path is not None:
+            row_.name.value = str(path)
+        if overwrite is not None:
+            row_.overwrite.value = bool(overwrite)
+        name = row_.name.value.strip()
+        if not name:
+            raise InputError("session file: give a file name")
+        return name
+
+
+def _session_parts(session) -> str:
+    parts = [name for name, there in (("microstates", session.microstates is not None),
+                                      ("lag scan", session.scan is not None),
+                                      (f"chosen lag {session.lag}", session.lag is not None),
+                                      ("Chapman–Kolmogorov test", session.ck is not None),
+                                      ("macrostates", session.macrostates is not None)) if there]
+    return ", ".join(parts) if parts else "settings only"
