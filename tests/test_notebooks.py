@@ -47,6 +47,12 @@ saved = msmkit.load_model(wb.saver.name.value)
 assert saved.lag == lags[-1], wb.saver.status.value
 wb.save_report("workbench_report.html")
 assert "Wrote the report" in wb.reporter.status.value, wb.reporter.status.value
+wb.lag_panel.save_figure("workbench_timescales.svg")
+wb.save_session("workbench_session.npz")
+again = Workbench(trajs, n_states=7, file_name="again.npz")
+again.session_row.name.value = "workbench_session.npz"
+again.session_load_button.click()
+assert again.model is not None and again.model.lag == lags[-1], again.session_row.status.value
 print("driven:", saved.lag, saved.n_states)
 '''
 
@@ -88,9 +94,13 @@ def clean_copy(path, root=ROOT):
 def run_notebook(nb, folder):
     import nbclient
 
+    import os
+
     client = nbclient.NotebookClient(nb, timeout=600, kernel_name="python3",
                                      resources={"metadata": {"path": str(folder)}})
-    client.execute()
+    # the kernel imports msmkit from this checkout, not from wherever the environment installed it
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in (str(ROOT), os.environ.get("PYTHONPATH", "")) if p))
+    client.execute(env=env)
     return nb
 
 
@@ -116,6 +126,9 @@ def test_notebook_runs_top_to_bottom(path, tmp_path):
     if path.name == "01_workbench.ipynb":
         assert any("application/vnd.jupyter.widget-view+json" in o.get("data", {}) for o in outs)
         assert (tmp_path / "workbench_model.npz").exists()
+        assert (tmp_path / "workbench_session.npz").exists()
+        import xml.etree.ElementTree as ET
+        assert ET.parse(tmp_path / "workbench_timescales.svg").getroot().tag.endswith("svg")
         assert (tmp_path / "workbench_report.html").read_text(encoding="utf-8").count("data:image/png;base64,") >= 2
         assert any("driven:" in o.get("text", "") for o in outs)
     if path.name == "02_scripted_analysis.ipynb":

@@ -481,7 +481,7 @@ class FigureRow(FileRow):
         super().__init__(_figure_file(names[0], ".png"), description="figure file", button_text="Save figure",
                          css_class="msmkit-figure", tooltip="Write the chosen figure; the file name's suffix "
                                                             "(.png or .svg) chooses the format")
-        self.which = field(widgets.Dropdown, names[0], "figure", options=names, width="330px")
+        self.which = field(widgets.Dropdown, names[0], "figure", options=names, width="420px")
         self.which.add_class("msmkit-figure-choice")
         self.which.observe(self._chosen, names="value")
         self.children = [row([self.which, self.name, self.overwrite, self.button]), self.status]

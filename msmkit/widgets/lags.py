@@ -129,7 +129,7 @@ class LagPanel(Step):
                                "Resampled data sets for the error bars (95% intervals) of the timescales (0: none)")
         self.n_samples.add_class("msmkit-lag-samples")
         self.seed = field(widgets.IntText, int(seed), "seed", "Seed of the resampling")
-        self.reversible = widgets.Checkbox(value=bool(reversible), description="reversible (detailed balance)",
+        self.reversible = widgets.Checkbox(value=bool(reversible), description="reversible estimate",
                                            style={"description_width": DESCRIPTION_WIDTH},
                                            layout=widgets.Layout(width="350px"))
         self.reversible.tooltip = ("On: models that obey detailed balance (equilibrium runs). Off: "

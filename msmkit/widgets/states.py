@@ -19,7 +19,7 @@ __all__ = ["StatesPanel"]
 
 METHODS = (("k-means", "kmeans"), ("mini-batch k-means", "minibatch"))
 #: how features are clustered without TICA (the same choices as ``msmkit build --scale``)
-SCALES = (("standardized (mean 0, sd 1)", "standard"), ("as they are", "none"))
+SCALES = (("standardized", "standard"), ("as they are", "none"))
 
 
 class StatesPanel(Step):
@@ -103,7 +103,7 @@ class StatesPanel(Step):
                               "Number of slow TICA coordinates to cluster in")
         self.scale = field(widgets.Dropdown, _check_scale(scale), "features without TICA", options=SCALES,
                            tooltip="Without TICA, k-means compares the features in their own units: "
-                                   "standardize them when their units or spreads differ. TICA "
+                                   "standardize them (mean 0, standard deviation 1) when their units or spreads differ. TICA "
                                    "coordinates do not depend on the features' units.")
         self.scale.add_class("msmkit-feature-scale")
         self.n_states = field(widgets.IntText, int(n_states), "microstates", "Number of clusters (microstates)")
@@ -122,7 +122,7 @@ class StatesPanel(Step):
         self.map.add_class("msmkit-plot")
         self.variance_note = widgets.HTML()
         self.variance_note.add_class("msmkit-kinetic-variance")
-        self.variance_plot = widgets.Output(layout=widgets.Layout(width="100%", max_width="560px", overflow="auto"))
+        self.variance_plot = widgets.Output(layout=widgets.Layout(width="100%", max_width="480px", overflow="auto"))
         self.variance_plot.add_class("msmkit-kinetic-variance-plot")
         self.variance_plot.add_class("msmkit-plot")
 

@@ -28,7 +28,8 @@ class Workbench(widgets.VBox):
 
     Each step is a panel in a tab; the save row below the tabs writes the chosen model. Every
     button is also a method (:meth:`make_states`, :meth:`scan`, :meth:`select_lag`,
-    :meth:`validate`, :meth:`kinetics`, :meth:`save`, :meth:`save_report`); the chosen model is
+    :meth:`validate`, :meth:`kinetics`, :meth:`save`, :meth:`save_report`, :meth:`save_session`,
+    :meth:`load_session`; each step's ``save_figure``); the chosen model is
     :attr:`model`, the last Chapman–Kolmogorov test :attr:`ck` and the macrostates
     :attr:`macrostates`. Buttons compute in a background thread: each long step has a Cancel
     button (Kernel -> Interrupt cancels too), and :meth:`wait` waits for them from code.
