@@ -13,8 +13,8 @@ The file is a zip of ``.npy`` arrays readable with ``numpy.load(path, allow_pick
 
 format            the string "msmkit-session"
 format_version    int, currently 1
-session           JSON text: every scalar, string and list, with ``{"$array": key}`` where an
-                  array of the archive stands, ``{"$model": prefix}`` for a Markov model stored as
+session           JSON text (NaN as Python's json writes it): every scalar, string and list,
+                  with ``{"$array": key}`` where an array of the archive stands, ``{"$model": prefix}`` for a Markov model stored as
                   the arrays of a model file under ``prefix.`` (:func:`msmkit.modelfile.model_arrays`),
                   and ``{"$type": name, "fields": {...}}`` for a result (LagScan, CKResult,
                   Macrostates) or ``{"$estimator": name, ...}`` for a fitted TICA or Microstates
@@ -413,8 +413,23 @@ def _check_session(s: Session, where: str) -> None:
         value = getattr(s, name)
         if value is not None and not isinstance(value, cls):
             bad(f"{name} must be a {cls.__name__}")
-    if s.microstates is not None and np.asarray(s.microstates.centers_).ndim != 2:
-        bad("the microstate centers must be a 2-D array")
+    if s.microstates is not None:
+        centers = np.asarray(s.microstates.centers_)
+        if centers.ndim != 2 or centers.dtype.kind != "f" or np.shape(s.microstates.counts_) != (centers.shape[0],):
+            bad("the microstates need 2-D float centers and one frame count per center")
+        if any(r.size and (r.min() < 0 or r.max() >= centers.shape[0]) for r in s.labels):
+            bad(f"the labels must name the {centers.shape[0]} microstates (0..{centers.shape[0] - 1})")
+    if s.tica is not None:
+        comps, mean = np.asarray(s.tica.components_), np.asarray(s.tica.mean_)
+        if comps.ndim != 2 or mean.shape != (comps.shape[1],) or np.shape(s.tica.eigenvalues_) != (comps.shape[0],) \
+                or s.tica.scaling not in ("unit", "kinetic") or int(s.tica.dim_) != comps.shape[0] \
+                or np.asarray(s.tica.cumulative_kinetic_variance_).ndim != 1:
+            bad("the TICA components, mean, eigenvalues and dimension do not fit together")
+        if s.microstates is not None and np.asarray(s.microstates.centers_).shape[1] != comps.shape[0]:
+            bad("the microstate centers do not live in the TICA coordinates stored with them")
+    if s.feature_scaling is not None and (len(s.feature_scaling) != 2 or np.shape(s.feature_scaling[0])
+                                          != np.shape(s.feature_scaling[1]) or np.ndim(s.feature_scaling[0]) != 1):
+        bad("feature_scaling must be two 1-D arrays (mean, scale) of one length")
     if s.scan is not None:
         scan = s.scan
         if not isinstance(scan, LagScan):

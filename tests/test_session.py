@@ -150,6 +150,11 @@ def test_damaged_and_foreign_files_are_refused(session, saved, tmp_path):
     rewritten(saved, tmp_path / "model_bad.npz",
               lambda a: a.update({"scan.models.2.propagator": a["scan.models.2.propagator"] * 2}))
     cases["model_bad.npz"] = "rows do not sum to 1"
+    rewritten(saved, tmp_path / "tica.npz", lambda a: a.update({"tica.components_": a["tica.components_"][:1]}))
+    cases["tica.npz"] = "TICA components"
+    rewritten(saved, tmp_path / "labels.npz",
+              lambda a: a.update({"microstates.labels_.0": a["microstates.labels_.0"] + 100}))
+    cases["labels.npz"] = "must name the 12 microstates"
     rewritten(saved, tmp_path / "json.npz", lambda a: a.update({"session": np.array("{not json")}))
     cases["json.npz"] = "not a readable session file"
     rewritten(saved, tmp_path / "version.npz", lambda a: a.update({"format_version": np.array(99)}))
