@@ -225,8 +225,11 @@ def plot_populations(model, *, temperature=None, max_states: int = 60, width=6.4
 _INK = "#222222"
 
 
-def _verdict_color(ok: bool) -> str:
-    return PALETTE[2] if ok else PALETTE[1]
+def _verdict_color(ok) -> str:
+    """Title color of a verdict: True/"passed", False/"failed", or "inconclusive" (neutral ink)."""
+    if ok == "inconclusive":
+        return _INK
+    return PALETTE[2] if ok in (True, "passed") else PALETTE[1]
 
 
 #: colors of |z| in the Chapman–Kolmogorov summary: calm blues up to the pass threshold, then
@@ -387,9 +390,9 @@ def plot_chapman_kolmogorov(ck, *, width=None, height=None):
     bar.ax.tick_params(labelsize=7.5)
     bar.ax.axhline(limit, color=_INK, lw=1.2)
 
-    verdict = "passed" if ck.passed else "failed"
+    verdict = ck.verdict or ("passed" if ck.passed else "failed")
     fig.suptitle(f"Chapman–Kolmogorov test {verdict}: {int(failed.sum())} of {judged} cells fail "
-                 f"(model at τ = {ck.lag * ck.dt:g} {ck.unit})", fontsize=10.5, color=_verdict_color(ck.passed))
+                 f"(model at τ = {ck.lag * ck.dt:g} {ck.unit})", fontsize=10.5, color=_verdict_color(verdict))
     ax.set_title(f"{what}\n{rule}", fontsize=8)
     notes = []
     if hatch.any():

@@ -356,3 +356,17 @@ def test_plots_do_not_use_pyplot(scan, markov_ck):
     figure_png(plot_chapman_kolmogorov_pair(markov_ck, 0, 0))
     figure_png(plot_chapman_kolmogorov(markov_ck))
     assert "matplotlib.pyplot" not in sys.modules
+
+
+def test_ck_summary_title_says_inconclusive():
+    # too few changes between the sets for a verdict: the title must not say "failed"
+    rng = np.random.default_rng(0)
+    runs = []
+    for _ in range(4):  # two blocks of two fast-mixing states; the blocks exchange about once per run
+        block = np.cumsum(rng.random(1500) < 0.001) % 2
+        runs.append(2 * block + rng.integers(0, 2, 1500))
+    model = quiet(build_model, runs, lag=1)
+    ck = quiet(chapman_kolmogorov, model, runs, n_sets=2, multiples=3, n_samples=10, seed=0)
+    assert ck.verdict == "inconclusive"
+    title = plot_chapman_kolmogorov(ck).get_suptitle()
+    assert title.startswith("Chapman–Kolmogorov test inconclusive") and "failed" not in title
