@@ -24,7 +24,7 @@ import scipy.optimize as opt
 
 from .errors import DiagnosticWarning, InputError
 from .kinetics import (as_state_labels, as_stationary, as_time_per_step,
-                       as_stochastic_matrix, brief, passage_time_matrix)
+                       as_stochastic_matrix, brief, passage_time_matrix, transition_paths)
 from .spectral import obeys_detailed_balance
 
 __all__ = [
@@ -592,6 +592,33 @@ class Macrostates:
                                 f"of the lag only, so times are resolved to about one lag and tend to come out "
                                 f"too long when the lag is not small against them.")
         return df
+
+    def kinetics_table(self, *, confidence: float = 0.95):
+        """Mean first-passage times and rate constants between every ordered pair of macrostates
+        (crisp sets, by largest membership).
+
+        With :attr:`samples` the table comes with intervals
+        (:meth:`msmkit.uncertainty.ModelSamples.between_sets`); without, it holds the estimates
+        alone. Columns ``from_set``, ``to_set``, ``passage_time`` (in ``unit``, at lag
+        resolution, see :meth:`passage_time_table`) and ``rate_constant`` (transition path
+        theory, in 1/``unit``), with ``*_lower`` / ``*_upper`` when sampled; ``attrs`` holds
+        ``unit``, ``rate_unit``, ``resolution`` and ``caption``.
+        """
+        import pandas as pd
+
+        if self.samples is not None:
+            return self.samples.between_sets(self.members, confidence=confidence)
+        mfpt = self.passage_time_table()
+        crisp = self.macro_index
+        pairs = [(a, b) for a in range(self.n_sets) for b in range(self.n_sets) if a != b]
+        rates = [transition_paths(self.propagator, self.equilibrium, crisp == a, crisp == b, states=self.states,
+                                  time_per_step=self.time_per_step, unit=self.unit).rate_constant for a, b in pairs]
+        table = pd.DataFrame({"from_set": [a for a, _ in pairs], "to_set": [b for _, b in pairs],
+                              "passage_time": [mfpt.iloc[a, b] for a, b in pairs], "rate_constant": rates})
+        table.attrs.update(mfpt.attrs, rate_unit=f"1/{self.unit}")
+        table.attrs["caption"] += " Rate constants (per " + self.unit + ") from transition path theory. No intervals: " \
+                                  "the macrostates were found without sampled models."
+        return table
 
 
 def find_macrostates(T, pi, n_sets: int, *, states=None, time_per_step: float = 1.0,

@@ -35,15 +35,15 @@ from ._bootstrap import (StateCounts, bootstrap_interval, fit_sample, percentile
                          resampling_plan, samples_needed)
 from ._checks import as_label_trajectories, check_bool, check_int, check_probability, check_seed
 from .counts import run_count_rows
-from .defaults import BOOTSTRAP_SAMPLES, PROCESSES
+from .defaults import BOOTSTRAP_SAMPLES, PROCESSES, UNCERTAINTIES
 from .errors import DiagnosticWarning, InputError
 from .kinetics import mean_passage_time, passage_time_matrix, transition_paths
 from .spectral import eigen_decomposition, implied_timescales
 
 __all__ = ["ModelSamples", "sample_models", "UNCERTAINTIES"]
 
-#: the ways :func:`sample_models` can sample
-UNCERTAINTIES = ("bootstrap", "bayes")
+#: prior count of the posterior (``"bayes"``), see :func:`sample_models`
+PRIOR_COUNT = -0.5
 #: sampled matrices held in memory at most (bytes)
 MAX_SAMPLE_BYTES = 2 ** 31
 
@@ -328,8 +328,9 @@ class ModelSamples:
         if self.uncertainty == "bootstrap":
             lower, upper = bootstrap_interval(values, np.asarray(estimate, dtype=float), confidence, method="bc",
                                               n_units=self.n_units)
-            how = (f"the bootstrap over {self.n_units} resampled units, bias-corrected and widened for "
-                   f"few units")
+            runs = len(self.model.metadata.get("frames_per_run") or ())
+            what = "runs" if runs == self.n_units else "blocks of runs"
+            how = f"the bootstrap over {self.n_units} {what}, bias-corrected and widened for few {what}"
         else:
             lower, upper = percentile_interval(values, confidence)
             how = "the posterior of reversible transition matrices, equal-tailed"
@@ -352,7 +353,7 @@ class ModelSamples:
 
 
 def sample_models(model, labels=None, *, uncertainty: str = "bootstrap", n_samples: int = BOOTSTRAP_SAMPLES,
-                  seed=None, progress: bool = False, cancel=None) -> ModelSamples:
+                  seed=None, prior_count: float = PRIOR_COUNT, progress: bool = False, cancel=None) -> ModelSamples:
     """Sample transition matrices on a model's states for intervals on the kinetic numbers of the model.
 
     Parameters
@@ -370,6 +371,9 @@ def sample_models(model, labels=None, *, uncertainty: str = "bootstrap", n_sampl
         Matrices drawn; fewer than 200 give 95 % intervals whose ends rest on few samples (the
         tables then issue a DiagnosticWarning).
     seed : int or numpy.random.Generator, optional
+    prior_count : float
+        ``"bayes"`` only: the prior count added to every counted pair in both directions
+        (:func:`msmkit.posterior.sample_reversible_posterior`).
     progress : bool
         Show a progress bar.
     cancel : object with ``is_set()``, optional
@@ -383,10 +387,10 @@ def sample_models(model, labels=None, *, uncertainty: str = "bootstrap", n_sampl
 
     Notes
     -----
-    Counts from sliding windows (``every_frame=True``) at a lag above 1 are not independent
-    transitions, so the posterior treats the data as larger than they are; the intervals are
-    then too narrow (a note and a DiagnosticWarning say so). The bootstrap over whole runs does
-    not rely on independent transitions.
+    Counts from sliding windows (``every_frame=True``) at a lag above 1 count every transition
+    about ``lag`` times; ``"bayes"`` therefore samples the posterior of the counts divided by the
+    lag (about the number of independent transitions, common practice), which is approximate (a
+    note says so). The bootstrap over whole runs does not rely on independent transitions.
     """
     for name in ("propagator", "equilibrium", "states", "lag", "dt", "unit", "reversible", "index_of"):
         if not hasattr(model, name):
@@ -403,7 +407,7 @@ def sample_models(model, labels=None, *, uncertainty: str = "bootstrap", n_sampl
         raise InputError("model holds no transition counts (it was built from a matrix), so there is nothing to "
                          "sample from; build it from label trajectories with build_model")
     if uncertainty == "bayes":
-        return _posterior_samples(model, n_samples, seed, progress, cancel)
+        return _posterior_samples(model, n_samples, seed, prior_count, progress, cancel)
     if labels is None:
         raise InputError("uncertainty='bootstrap' needs labels= (the label trajectories the model was built from) "
                          "to resample; or use uncertainty='bayes', which samples from the model's counts")
@@ -447,22 +451,23 @@ def _bootstrap_samples(model, runs, n_samples, seed, progress, cancel) -> ModelS
     return ModelSamples(model, Ts, pis, "bootstrap", int(weights.shape[1]), notes)
 
 
-def _posterior_samples(model, n_samples, seed, progress, cancel) -> ModelSamples:
+def _posterior_samples(model, n_samples, seed, prior_count, progress, cancel) -> ModelSamples:
     from .posterior import iter_reversible_posterior
 
     if not model.reversible:
         raise InputError("uncertainty='bayes' samples reversible transition matrices, but this model is "
                          "non-reversible; use uncertainty='bootstrap' or build the model with reversible=True")
     notes = []
+    counts = model.transition_counts
     if model.lag > 1 and _every_frame(model):
-        notes.append(f"The counts come from overlapping windows at lag {model.lag} (every_frame=True): they are "
-                     f"not independent transitions, so the posterior intervals are too narrow; compare with "
-                     f"uncertainty='bootstrap'.")
-        warnings.warn(notes[-1], DiagnosticWarning, stacklevel=3)
+        counts = counts / model.lag
+        notes.append(f"The counts come from overlapping windows at lag {model.lag} (every_frame=True); the posterior "
+                     f"is drawn for the counts divided by the lag, about the number of independent transitions. "
+                     f"That is an approximation: compare with uncertainty='bootstrap'.")
     n = model.n_states
     Ts = np.empty((n_samples, n, n))
     pis = np.empty((n_samples, n))
-    stream = iter_reversible_posterior(model.transition_counts, n_samples, seed=seed)
+    stream = iter_reversible_posterior(counts, n_samples, seed=seed, prior_count=prior_count)
     bar = progress_bar(n_samples, progress, "posterior", cancel)
     try:
         for b, (T, pi) in enumerate(stream):
