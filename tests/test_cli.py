@@ -1,6 +1,7 @@
 """The msmkit command line: the whole job end to end, and clean failures on bad input."""
 import errno
 import os
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -85,7 +86,9 @@ def test_build_prints_macrostate_kinetics_with_posterior_intervals(demo_files, t
     n_sets = model.extras["affinity"].shape[1]
     assert f"macrostates (PCCA+): {n_sets}" in out and "(95% interval" in out
     assert "posterior of reversible transition matrices" in out and "divided by the lag" in out
-    assert out.count("passage time ") == n_sets * (n_sets - 1) and "per ns" in out
+    pairs = re.findall(r"^    (\d) -> (\d): passage time [\d.e+-]+ \[[\d.e+-]+, [\d.e+-]+\] ns, rate [\d.e+-]+ "
+                       r"\[[\d.e+-]+, [\d.e+-]+\] per ns$", out, flags=re.M)
+    assert len(pairs) == n_sets * (n_sets - 1), out
     with pytest.raises(SystemExit):
         main(["build", str(demo_files / "*.npy"), "--lag", "2", "--uncertainty", "jackknife", "-o", str(target)])
 
