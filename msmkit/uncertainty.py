@@ -334,7 +334,16 @@ class ModelSamples:
         else:
             lower, upper = percentile_interval(values, confidence)
             how = "the posterior of reversible transition matrices, equal-tailed"
-        return np.asarray(lower), np.asarray(upper), n_finite, how
+        lower, upper = np.asarray(lower), np.asarray(upper)
+        est = np.broadcast_to(np.asarray(estimate, dtype=float), lower.shape)
+        slack = 1e-9 * np.abs(est)  # rounding of samples that equal the estimate
+        outside = int(np.sum((est < lower - slack) | (est > upper + slack)))
+        if outside:
+            warnings.warn(f"{outside} of {est.size} estimate(s) lie outside their {100 * confidence:g}% interval: the "
+                          f"sampled models are not centred on the model (too few transitions for the "
+                          f"{self.uncertainty} to resemble the estimate); read such intervals with care.",
+                          DiagnosticWarning, stacklevel=4)
+        return lower, upper, n_finite, how
 
     def _attrs(self, confidence, unit, n_finite, how) -> dict:
         return {"unit": unit, "confidence": float(confidence), "uncertainty": self.uncertainty,

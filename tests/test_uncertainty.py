@@ -251,3 +251,14 @@ def test_coverage_of_passage_times_on_a_two_state_chain(sample_chain):
             row = draw.passage_time([0], [1])
             hits[uncertainty] += bool(row["lower"][0] <= truth <= row["upper"][0])
     assert hits["bootstrap"] >= 52 and hits["bayes"] >= 52, hits
+
+
+def test_an_estimate_outside_its_interval_is_flagged(two_state):
+    # samples centred away from the model (here: every sampled population shifted by +0.1)
+    _, model = two_state
+    pi = model.equilibrium + np.array([0.1, -0.1])
+    pis = pi * np.exp(0.01 * np.random.default_rng(0).standard_normal((200, 2)))
+    shifted = mk.ModelSamples(model, np.repeat(model.propagator[None], 200, axis=0),
+                              pis / pis.sum(axis=1, keepdims=True), "bayes")
+    with pytest.warns(mk.DiagnosticWarning, match="2 of 2 estimate.* lie outside their 95% interval"):
+        shifted.populations()
