@@ -5,7 +5,7 @@ References used below:
   tau / T_01, the rate of transition path theory k_01 = T_01 / tau (committors 0 and 1 on the
   two states, Metzner, Schuette & Vanden-Eijnden 2009), the implied timescale
   -tau / ln(1 - T_01 - T_10) and the population pi_0 = T_10 / (T_01 + T_10);
-- the two-state posterior: each row is Beta(C_ii + b + 1, C_ij + b + 1), b = -0.5
+- the two-state posterior: each row is Beta(C_ii + b + 1, C_ij + b + 1), b = the prior count
   (scipy.stats.beta; as in tests/test_posterior.py);
 - exact linear algebra (numpy.linalg.solve) for first-passage times of every sample;
 - the bias-corrected percentile interval (Efron, J. Am. Stat. Assoc. 82, 171 (1987)) with the
@@ -23,6 +23,7 @@ from scipy import stats
 
 import msmkit as mk
 from msmkit.errors import Cancelled
+from msmkit.uncertainty import PRIOR_COUNT as B
 
 TWO = np.array([[0.97, 0.03], [0.05, 0.95]])
 FOUR = np.array([[0.90, 0.09, 0.01, 0.00],
@@ -66,13 +67,13 @@ def test_two_state_estimates_are_the_closed_forms(two_state):
 
 def test_two_state_posterior_intervals_are_beta_quantiles(two_state):
     # MFPT 0 -> 1 = tau / (1 - T_00) grows with T_00, so its 2.5 / 97.5 % posterior quantiles are
-    # those of T_00 ~ Beta(C_00 + 0.5, C_01 + 0.5) mapped through it; likewise for 1 -> 0 and the rates.
+    # those of T_00 ~ Beta(C_00 + b + 1, C_01 + b + 1) mapped through it; likewise for 1 -> 0 and the rates.
     _, model = two_state
     C = model.transition_counts.toarray()
     tau = model.lag_time
     draw = mk.sample_models(model, uncertainty="bayes", n_samples=4000, seed=1)
     for i, j in ((0, 1), (1, 0)):
-        stay = stats.beta(C[i, i] + 0.5, C[i, j] + 0.5)
+        stay = stats.beta(C[i, i] + B + 1, C[i, j] + B + 1)
         mfpt = draw.passage_time([i], [j])
         rate = draw.rate_constant([i], [j])
         assert mfpt.attrs["uncertainty"] == "bayes"
@@ -198,7 +199,7 @@ def test_posterior_of_overlapping_windows_uses_counts_over_the_lag(sample_chain)
     draw = quiet(mk.sample_models, model, uncertainty="bayes", n_samples=4000, seed=0)
     assert any("divided by the lag" in n for n in draw.notes)
     C = model.transition_counts.toarray() / 3
-    stay = stats.beta(C[0, 0] + 0.5, C[0, 1] + 0.5)
+    stay = stats.beta(C[0, 0] + B + 1, C[0, 1] + B + 1)
     mfpt = draw.passage_time([0], [1])
     assert stay.cdf(1 - model.lag_time / mfpt["lower"][0]) == pytest.approx(0.025, abs=0.01)
     assert stay.cdf(1 - model.lag_time / mfpt["upper"][0]) == pytest.approx(0.975, abs=0.01)
