@@ -135,7 +135,7 @@ def report_html(model, *, scan=None, ck=None, macrostates=None, settings=None,
     parts += _summary_section(model, scan, ck, macrostates)
     parts += _settings_section(model, scan, ck, settings)
     parts += _diagnostics_section(model, scan, ck)
-    parts += _model_section(model, scan)
+    parts += _model_section(model, scan, None if macrostates is None else macrostates.samples)
     if scan is not None:
         parts += _scan_section(scan, model)
     if ck is not None:
@@ -247,7 +247,7 @@ def _diagnostics_section(model, scan, ck):
     return out
 
 
-def _model_section(model, scan):
+def _model_section(model, scan, samples=None):
     from .plots import plot_populations
 
     k = min(8, model.n_states - 1)
@@ -263,12 +263,18 @@ def _model_section(model, scan):
         caption += f" Intervals: bootstrap over runs, {scan.n_samples} samples."
     else:
         caption += " No interval: no bootstrap scan was passed."
-    pops = model.populations().sort_values("population", ascending=False).head(20)
+    pops = model.populations()
+    cols_p = {"state": pops["state"], "population": pops["population"]}
+    caption_p = "The 20 most populated states (free energy relative to the most populated)."
+    if samples is not None:
+        table = samples.populations()
+        cols_p["95% interval"] = [_interval(a, b) for a, b in zip(table["lower"], table["upper"])]
+        caption_p += f" Intervals: {table.attrs['interval']}, {samples.n_samples} sampled models."
+    cols_p["free energy (kT)"] = pops["free_energy_kT"]
+    top = np.argsort(-pops["population"].to_numpy(), kind="stable")[:20]
     return ["<h2>Model</h2>", _table(cols, caption),
             _figure(plot_populations(model), "Stationary populations of the states."),
-            _table({"state": pops["state"], "population": pops["population"],
-                    "free energy (kT)": pops["free_energy_kT"]},
-                   "The 20 most populated states (free energy relative to the most populated).")]
+            _table({k: [list(v)[i] for i in top] for k, v in cols_p.items()}, caption_p)]
 
 
 def _scan_section(scan, model):

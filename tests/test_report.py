@@ -117,6 +117,11 @@ def test_report_holds_figures_tables_diagnostics_and_provenance(analysis, tmp_pa
     assert [r[1] for r in macro_rows] == [f"{p:.4g}" for p in pops["population"]]
     assert [r[2] for r in macro_rows] == [f"{a:.4g} – {b:.4g}" for a, b in
                                           zip(pops["population_lower"], pops["population_upper"])]
+    # state populations with the intervals of the macrostates' sampled models, most populated first
+    states = macro.samples.populations().sort_values("estimate", ascending=False, kind="stable").head(20)
+    state_rows = next(t for t in page.tables if t and t[0][:3] == ["state", "population", "95% interval"])[1:]
+    assert [r[0] for r in state_rows] == [str(int(x)) for x in states["state"]]
+    assert [r[2] for r in state_rows] == [f"{a:.4g} – {b:.4g}" for a, b in zip(states["lower"], states["upper"])]
     # passage times and rates between macrostates with their intervals, in the model's unit
     kin = macro.kinetics_table()
     kin_rows = next(t for t in page.tables if t and t[0][:3] == ["from", "to", f"mean first-passage time ({model.unit})"])
