@@ -238,20 +238,21 @@ def test_bad_input(two_state, sample_chain):
 
 @pytest.mark.slow
 def test_coverage_of_passage_times_on_a_two_state_chain(sample_chain):
-    # Known chain, 60 replicates of 10 runs: the 95 % intervals of the MFPT 0 -> 1 (truth tau / T_01,
+    # Known chain, 40 replicates of 10 runs: the 95 % intervals of the MFPT 0 -> 1 (truth tau / T_01,
     # closed form) must hold the truth in most replicates for both methods. At nominal 0.95 the
-    # chance of 51 or fewer hits out of 60 is below 1 % (binomial); a method that ignores the
-    # sampling noise (intervals a third as wide) fails. bench/bench_coverage.py measures more.
+    # chance of 34 or fewer hits out of 40 is about 1.4 % (binomial); intervals that ignore most
+    # of the sampling noise (a third as wide) would hold it about half as often.
+    # bench/bench_coverage.py --study kinetics measures coverage on larger chains.
     truth = 1 / TWO[0, 1]
     hits = {"bootstrap": 0, "bayes": 0}
-    for rep in range(60):
+    for rep in range(40):
         runs = sample_chain(TWO, 300, n_runs=10, seed=100 + rep)
         model = quiet(mk.build_model, runs, 1)
         for uncertainty in hits:
-            draw = mk.sample_models(model, runs, uncertainty=uncertainty, n_samples=200, seed=rep)
-            row = draw.passage_time([0], [1])
+            draw = quiet(mk.sample_models, model, runs, uncertainty=uncertainty, n_samples=200, seed=rep)
+            row = quiet(draw.passage_time, [0], [1])
             hits[uncertainty] += bool(row["lower"][0] <= truth <= row["upper"][0])
-    assert hits["bootstrap"] >= 52 and hits["bayes"] >= 52, hits
+    assert hits["bootstrap"] >= 35 and hits["bayes"] >= 35, hits
 
 
 def test_an_estimate_outside_its_interval_is_flagged(two_state):
