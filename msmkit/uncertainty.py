@@ -78,8 +78,16 @@ class ModelSamples:
         Cautions about the samples (blocks instead of runs, overlapping counting windows, ...).
 
     Every table method returns a pandas DataFrame with columns ``estimate``, ``lower`` and
-    ``upper`` and ``df.attrs`` holding ``unit``, ``confidence``, ``uncertainty``, ``n_samples``
-    (samples with a finite value, the fewest over the rows) and ``interval`` (how it was formed).
+    ``upper`` (:meth:`between_sets`: one such triple per quantity) and ``df.attrs`` holding
+    ``unit``, ``confidence``, ``uncertainty``, ``n_samples`` (samples with a finite value, the
+    fewest over the rows), ``interval`` (how it was formed), ``notes`` and ``caption``. A DiagnosticWarning says when fewer samples than needed for the
+    confidence have a value, and when an estimate lies outside its interval.
+
+    Examples
+    --------
+    >>> import msmkit as mk                                           # doctest: +SKIP
+    >>> draw = mk.sample_models(model, labels)                        # doctest: +SKIP
+    >>> draw.passage_time([0, 1], [7, 8])                             # doctest: +SKIP
     """
 
     model: object = field(repr=False)
@@ -238,10 +246,24 @@ class ModelSamples:
         return self._cache[key]
 
     def _timescales(self, k: int) -> np.ndarray:
-        """(n_samples, k) implied timescales of every sample; NaN where a sample has fewer."""
+        """(n_samples, k) implied timescales of every sample; NaN where a sample has fewer.
+
+        Reversible samples that hold every state are solved together: their symmetrized
+        matrices D^1/2 T D^-1/2 in one batched symmetric eigen-solve (the spectrum of a
+        reversible matrix, as :func:`msmkit.spectral.eigen_decomposition` does one at a time)."""
         model = self.model
         out = np.full((self.n_samples, k), np.nan)
+        batch = self.kept.all(axis=1) if model.reversible else np.zeros(self.n_samples, dtype=bool)
+        if batch.any():
+            s = np.sqrt(self.equilibria[batch])
+            A = s[:, :, None] * self.propagators[batch] / s[:, None, :]
+            w = np.linalg.eigvalsh(0.5 * (A + np.swapaxes(A, 1, 2)))  # ascending; the last is the stationary 1
+            rest = w[:, :-1]
+            slowest = np.take_along_axis(rest, np.argsort(-np.abs(rest), axis=1, kind="stable")[:, :k], axis=1)
+            out[batch, :slowest.shape[1]] = implied_timescales(slowest, model.lag, model.dt)
         for b, (T, pi, _) in self._samples():
+            if batch[b]:
+                continue
             w = eigen_decomposition(T, pi, k=min(k + 1, T.shape[0]), reversible=model.reversible)
             got = implied_timescales(w[1:], model.lag, model.dt)
             out[b, :got.size] = got

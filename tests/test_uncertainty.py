@@ -119,6 +119,24 @@ def test_bootstrap_passage_times_use_every_sample_and_the_bias_corrected_interva
                                    _bc_interval(values[:, j], table["population"][j], 0.95, 12), rtol=1e-9)
 
 
+def test_timescales_of_every_sample_are_those_of_scipy(sample_chain):
+    # -tau / ln|lambda| of the 2nd and 3rd largest-magnitude eigenvalues of each sampled matrix
+    # (scipy.linalg.eigvals, general solver); reversible samples are solved in one batch, a
+    # non-reversible model one sample at a time
+    import scipy.linalg as la
+
+    runs = sample_chain(FOUR, 1500, n_runs=10, seed=9)
+    for reversible in (True, False):
+        model = quiet(mk.build_model, runs, 1, dt=0.5, reversible=reversible)
+        draw = mk.sample_models(model, runs, n_samples=200, seed=1)
+        lam = np.array([np.sort(np.abs(la.eigvals(T)))[::-1][1:3] for T in draw.propagators])
+        want = -0.5 / np.log(lam)
+        table = draw.relaxation_times(2)
+        for j in range(2):
+            lo, hi = _bc_interval(want[:, j], table["estimate"][j], 0.95, 10)
+            assert (table["lower"][j], table["upper"][j]) == pytest.approx((lo, hi), rel=1e-8)
+
+
 def test_between_sets_agrees_with_the_pair_tables(sample_chain):
     runs = sample_chain(FOUR, 1500, n_runs=10, seed=4)
     model = quiet(mk.build_model, runs, 1)
