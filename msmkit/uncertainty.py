@@ -81,7 +81,7 @@ class ModelSamples:
     ``upper`` (:meth:`between_sets`: one such triple per quantity) and ``df.attrs`` holding
     ``unit``, ``confidence``, ``uncertainty``, ``n_samples`` (samples with a finite value, the
     fewest over the rows), ``interval`` (how it was formed), ``notes`` and ``caption``. A DiagnosticWarning says when fewer samples than needed for the
-    confidence have a value, and when an estimate lies outside its interval.
+    confidence have a value, and when an estimate lies outside the interval.
 
     Examples
     --------

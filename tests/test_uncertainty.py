@@ -66,7 +66,7 @@ def test_two_state_estimates_are_the_closed_forms(two_state):
 
 
 def test_two_state_posterior_intervals_are_beta_quantiles(two_state):
-    # MFPT 0 -> 1 = tau / (1 - T_00) grows with T_00, so its 2.5 / 97.5 % posterior quantiles are
+    # MFPT 0 -> 1 = tau / (1 - T_00) grows with T_00, so the 2.5 / 97.5 % posterior quantiles are
     # those of T_00 ~ Beta(C_00 + b + 1, C_01 + b + 1) mapped through it; likewise for 1 -> 0 and the rates.
     _, model = two_state
     C = model.transition_counts.toarray()
