@@ -9,6 +9,13 @@ sqrt(c (1 - c) / R) (about 0.015 at c = 0.95 and R = 200).
 
 Chains: a 4-state chain with one slow exchange, and a 49-state Metropolis walk on a 7 x 7
 lattice with two wells (slowest timescale about 118 steps).
+
+``--study kinetics`` checks the tables of :func:`msmkit.sample_models` at their defaults, for
+both ways of sampling ("bootstrap", "bayes"): the slowest timescale, the state populations, the
+mean first-passage times and the rate constants between two sets of states in both directions.
+The truth is exact linear algebra on the known matrix at the model's lag (numpy only): passage
+times from (I - P_cc) m = 1 with P = T^lag (Kemeny & Snell 1960), rates k_AB = F / (tau
+sum_i pi_i q-_i) from committors solved on P (Metzner, Schuette & Vanden-Eijnden 2009).
 """
 from __future__ import annotations
 
@@ -69,7 +76,7 @@ def replicate(T, runs, lag, k, n_samples, seed):
     if model.n_states != n:
         return None
     scan = mk.lag_scan(runs, [lag], n_processes=k, n_samples=n_samples, seed=seed)
-    pops = model.bootstrap_stationary(runs, n_samples=n_samples, seed=seed)
+    pops = mk.sample_models(model, runs, n_samples=n_samples, seed=seed).equilibria
     jk_t = np.full((len(runs), k), np.nan)
     jk_p = np.full((len(runs), n), np.nan)
     for r in range(len(runs)):
@@ -128,6 +135,96 @@ def study(name, T, *, n_runs, n_steps, lag, k, n_reps, n_samples, sizes, confide
     return hits
 
 
+# ----------------------------------------------------------------------------- kinetics tables
+def exact_kinetics(T, lag, a, b):
+    """(MFPT a -> b, MFPT b -> a, rate a -> b, rate b -> a) of the chain T observed every ``lag``
+    steps, in steps; numpy only (an independent reference for msmkit.kinetics)."""
+    P = np.linalg.matrix_power(T, lag)
+    n = P.shape[0]
+    w, vl = la.eig(P, left=True, right=False)
+    pi = np.real(vl[:, np.argmax(np.real(w))])
+    pi /= pi.sum()
+
+    def mfpt(src, tgt):
+        c = np.setdiff1d(np.arange(n), tgt)
+        m = np.zeros(n)
+        m[c] = np.linalg.solve(np.eye(c.size) - P[np.ix_(c, c)], np.ones(c.size))
+        return lag * pi[src] @ m[src] / pi[src].sum()
+
+    def committor(Q, src, tgt):  # probability to reach tgt before src
+        c = np.setdiff1d(np.arange(n), np.union1d(src, tgt))
+        q = np.zeros(n)
+        q[tgt] = 1.0
+        q[c] = np.linalg.solve(np.eye(c.size) - Q[np.ix_(c, c)], Q[np.ix_(c, tgt)].sum(axis=1))
+        return q
+
+    def rate(src, tgt):
+        R = P.T * pi[None, :] / pi[:, None]  # time-reversed chain
+        qf, qb = committor(P, src, tgt), committor(R, tgt, src)
+        f = (pi * qb)[:, None] * P * qf[None, :]
+        np.fill_diagonal(f, 0.0)
+        return f[src].sum() / (lag * pi @ qb)
+
+    return np.array([mfpt(a, b), mfpt(b, a), rate(a, b), rate(b, a)]), pi
+
+
+#: the rows of the kinetics study: (label, table, index of the value in exact_kinetics)
+KINETIC_ROWS = (("slowest timescale", None), ("state populations", None), ("MFPT A -> B", 0),
+                ("MFPT B -> A", 1), ("rate A -> B", 2), ("rate B -> A", 3))
+
+
+def kinetics_replicate(model, runs, a, b, uncertainty, n_samples, seed, confidence, options):
+    """{row label: (lower, upper, estimate)} from the default tables of sample_models."""
+    draw = mk.sample_models(model, runs, uncertainty=uncertainty, n_samples=n_samples, seed=seed,
+                            **(options if uncertainty == "bayes" else {}))
+    ts = draw.relaxation_times(1, confidence=confidence)
+    pops = draw.populations(confidence=confidence)
+    out = {"slowest timescale": ts, "state populations": pops}
+    for label, src, tgt, which in (("MFPT A -> B", a, b, "passage_time"), ("MFPT B -> A", b, a, "passage_time"),
+                                   ("rate A -> B", a, b, "rate_constant"), ("rate B -> A", b, a, "rate_constant")):
+        out[label] = getattr(draw, which)(src, tgt, confidence=confidence)
+    return {k: (v["lower"].to_numpy(), v["upper"].to_numpy(), v["estimate"].to_numpy()) for k, v in out.items()}
+
+
+def kinetics_study(name, T, a, b, *, n_runs, n_steps, lag, n_reps, n_samples, confidence, seed,
+                   methods=("bootstrap", "bayes"), options=None):
+    true_k, pi = exact_kinetics(T, lag, a, b)
+    true_t = truth(np.linalg.matrix_power(T, lag), 1)[0] * lag
+    exact = {"slowest timescale": true_t, "state populations": pi}
+    exact.update({label: true_k[[i]] for label, i in KINETIC_ROWS if i is not None})
+    rng = np.random.default_rng(seed)
+    hits = {(m, r): [] for m in methods for r, _ in KINETIC_ROWS}
+    widths = {(m, r): [] for m in methods for r, _ in KINETIC_ROWS}
+    used = 0
+    start = time.perf_counter()
+    for rep in range(n_reps):
+        runs = sample_chain(T, pi, n_runs, n_steps, rng)
+        model = mk.build_model(runs, lag)
+        if model.n_states != T.shape[0]:
+            continue
+        used += 1
+        for method in methods:
+            got = kinetics_replicate(model, runs, a, b, method, n_samples, rep, confidence, options or {})
+            for label, (lo, hi, _) in got.items():
+                x = exact[label]
+                hits[(method, label)].append((lo <= x) & (x <= hi))
+                widths[(method, label)].append((hi - lo) / x)
+    elapsed = time.perf_counter() - start
+    print(f"\n{name}: {n_runs} runs x {n_steps} steps, lag {lag}, {used} of {n_reps} replicates kept every state "
+          f"({elapsed:.0f} s), {n_samples} samples per method; A = {list(map(int, a))}, B = {list(map(int, b))}"
+          + (f"; posterior options {options}" if options else ""))
+    print(f"  exact at lag {lag}: slowest timescale {true_t[0]:.4g}, MFPT A->B {true_k[0]:.4g}, B->A {true_k[1]:.4g} "
+          f"steps; rate A->B {true_k[2]:.4g}, B->A {true_k[3]:.4g} per step")
+    se = np.sqrt(confidence * (1 - confidence) / max(used, 1))
+    print(f"  {'quantity':<20}" + "".join(f"{m:>11}" for m in methods) + "   median width/truth  (nominal "
+          f"{confidence:.2f}, binomial s.e. at nominal {se:.3f})")
+    for label, _ in KINETIC_ROWS:
+        cov = [np.mean(hits[(m, label)]) for m in methods]
+        wd = [np.median(widths[(m, label)]) for m in methods]
+        print(f"  {label:<20}" + "".join(f"{c:>11.3f}" for c in cov) + "   " + " / ".join(f"{w:.3f}" for w in wd))
+    return hits
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--reps", type=int, default=200, help="replicates per chain")
@@ -135,8 +232,30 @@ def main():
     ap.add_argument("--samples", type=int, nargs="+", default=[20, 50, 100, 200])
     ap.add_argument("--confidence", type=float, default=0.95)
     ap.add_argument("--chain", choices=["four", "lattice", "both"], default="both")
+    ap.add_argument("--study", choices=["intervals", "kinetics", "both"], default="both",
+                    help="intervals: the interval methods on timescales and populations; kinetics: the tables of "
+                         "sample_models (bootstrap and posterior) with passage times and rates")
+    ap.add_argument("--methods", nargs="+", choices=["bootstrap", "bayes"], default=["bootstrap", "bayes"],
+                    help="kinetics study: the ways of sampling to check")
+    ap.add_argument("--prior-count", type=float, default=None, help="kinetics study, bayes: prior count "
+                                                                   "(default: that of sample_models)")
     a = ap.parse_args()
     warnings.simplefilter("ignore", mk.DiagnosticWarning)
+    if a.study in ("kinetics", "both"):
+        samples = max(a.samples)
+        extra = dict(methods=tuple(a.methods), options={} if a.prior_count is None else {"prior_count": a.prior_count})
+        if a.chain in ("four", "both"):
+            kinetics_study("4-state chain", four_state_chain(), np.array([0, 1]), np.array([2, 3]), n_runs=a.runs,
+                           n_steps=1000, lag=1, n_reps=a.reps, n_samples=samples, confidence=a.confidence, seed=11,
+                           **extra)
+        if a.chain in ("lattice", "both"):
+            side = 7
+            x = np.arange(side * side) // side
+            kinetics_study("7 x 7 lattice walk", lattice_chain(side), np.flatnonzero(x <= 1), np.flatnonzero(x >= side - 2),
+                           n_runs=a.runs, n_steps=2000, lag=2, n_reps=a.reps, n_samples=samples,
+                           confidence=a.confidence, seed=12, **extra)
+        if a.study == "kinetics":
+            return
     if a.chain in ("four", "both"):
         study("4-state chain", four_state_chain(), n_runs=a.runs, n_steps=1000, lag=1, k=2, n_reps=a.reps,
               n_samples=max(a.samples), sizes=a.samples, confidence=a.confidence, seed=1)

@@ -22,6 +22,7 @@ from .reduce import TICA
 from .report import write_report
 from .spectral import eigen_decomposition, implied_timescales, equilibrium_distribution
 from .states import Microstates, nearest_center
+from .uncertainty import ModelSamples, sample_models
 from .validate import (CKResult, CrossValidation, LagFlow, chapman_kolmogorov, cross_validate, lag_flow,
                        vamp2_score, vamp2_score_on)
 
@@ -41,6 +42,7 @@ __all__ = sorted([
     "Macrostates",
     "MarkovModel",
     "Microstates",
+    "ModelSamples",
     "ModelFileError",
     "Route",
     "TransitionPaths",
@@ -72,6 +74,7 @@ __all__ = sorted([
     "save_model",
     "equilibrium_distribution",
     "sample_reversible_posterior",
+    "sample_models",
     "iter_reversible_posterior",
     "suggest_lag",
     "suggest_n_macrostates",

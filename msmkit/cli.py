@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .defaults import BOOTSTRAP_SAMPLES, CK_MULTIPLES, CK_SAMPLES, PROCESSES
+from .defaults import BOOTSTRAP_SAMPLES, CK_MULTIPLES, CK_SAMPLES, PROCESSES, UNCERTAINTIES
 from .errors import DiagnosticWarning, InputError, ModelFileError
 from .modelfile import atomic_write
 
@@ -114,14 +114,7 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
         lines.append(f"  reason:            {scan.reason}")
         lines += [f"  note: {n}" for n in scan.notes]
     if macro is not None:
-        lines.append(f"  macrostates (PCCA+): {macro.n_sets}" + (f" -- {macro_reason}" if macro_reason else ""))
-        pops = macro.populations()
-        lines += [f"    {int(r.macrostate)}: population {r.population:.4f}, {len(r.states)} microstates"
-                  for r in pops.itertuples()]
-        mfpt = macro.passage_time_table()
-        lines.append(f"  mean first-passage times between macrostates [{model.unit}] (row -> column):")
-        lines += ["    " + line for line in mfpt.to_string(float_format=lambda v: f"{v:.4g}").splitlines()]
-        lines.append(f"    {mfpt.attrs['caption']}")
+        lines += _macro_lines(model, macro, macro_reason)
     if ck is not None:
         lines.append(f"  Chapman–Kolmogorov test: {'passed' if ck.passed else ck.verdict.upper()}")
         lines.append(f"    {ck.criterion}")
@@ -133,6 +126,30 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
     lines.append("  caution: a model is only as good as the sampling behind it; validate the model "
                  "(Chapman–Kolmogorov test) before trusting the kinetics.")
     return "\n".join(lines) + "\n"
+
+
+def _macro_lines(model, macro, reason) -> list[str]:
+    """Macrostate populations, and passage times and rates between macrostates, with intervals
+    when the macrostates carry sampled models (``macro.samples``)."""
+    lines = [f"  macrostates (PCCA+): {macro.n_sets}" + (f" -- {reason}" if reason else "")]
+    pops = macro.populations()
+    sampled = macro.samples is not None
+    for r in pops.itertuples():
+        interval = f" (95% interval {r.population_lower:.4f}-{r.population_upper:.4f})" if sampled else ""
+        lines.append(f"    {int(r.macrostate)}: population {r.population:.4f}{interval}, {len(r.states)} microstates")
+    table = macro.kinetics_table()
+    lines.append(f"  between macrostates (from -> to): mean first-passage time [{model.unit}], "
+                 f"rate constant [1/{model.unit}]" + (", 95% intervals in brackets:" if sampled else ":"))
+    for r in table.itertuples():
+        mfpt, rate = f"{r.passage_time:.4g}", f"{r.rate_constant:.4g}"
+        if sampled:
+            mfpt += f" [{r.passage_time_lower:.4g}, {r.passage_time_upper:.4g}]"
+            rate += f" [{r.rate_constant_lower:.4g}, {r.rate_constant_upper:.4g}]"
+        lines.append(f"    {r.from_set} -> {r.to_set}: passage time {mfpt} {model.unit}, rate {rate} per {model.unit}")
+    lines.append(f"    {table.attrs['caption']}")
+    if sampled:
+        lines += [f"    note: {n}" for n in macro.samples.notes]
+    return lines
 
 
 # ----------------------------------------------------------------------------- output
@@ -196,9 +213,8 @@ def _validate(model, labels, args, out: _Outputs):
     """Macrostates (suggested number), the Chapman–Kolmogorov test and the lag-flow view."""
     from .plots import plot_chapman_kolmogorov, plot_lag_flow
     from .validate import chapman_kolmogorov, lag_flow
-    n_sets, reason = model.suggest_n_macrostates()
-    n_sets = max(2, n_sets)
-    macro = model.find_macrostates(n_sets)
+    macro, reason = _macrostates(model, labels, args)
+    n_sets = macro.n_sets
     longest = max(len(r) for r in labels)
     multiples = max(1, min(args.multiples, (longest - 1) // model.lag))
     ck = chapman_kolmogorov(model, labels, n_sets=n_sets, multiples=multiples, n_samples=args.ck_samples,
@@ -206,9 +222,28 @@ def _validate(model, labels, args, out: _Outputs):
     out.add_figure("chapman_kolmogorov.png", plot_chapman_kolmogorov(ck))
     out.add_text("chapman_kolmogorov.csv", ck.table().to_csv(index=False))
     out.add_figure("lag_flow.png", plot_lag_flow(lag_flow(ck)))
-    out.add_text("macrostates.csv", macro.populations().to_csv(index=False))
-    out.add_text("mfpt_macrostates.csv", macro.passage_time_table().to_csv())
+    _add_macro_tables(out.add_text, model, macro)
     return macro, reason, ck
+
+
+def _macrostates(model, labels, args):
+    """PCCA+ macrostates (the suggested number, at least 2) with intervals from ``--samples``
+    models sampled as ``--uncertainty`` says."""
+    n_sets, reason = model.suggest_n_macrostates()
+    macro = model.find_macrostates(max(2, n_sets), labels=labels, n_samples=args.samples,
+                                   uncertainty=args.uncertainty, seed=args.seed, progress=not args.quiet)
+    return macro, reason
+
+
+def _add_macro_tables(add, model, macro):
+    """The macrostate tables as CSV through ``add(name, text)``; units in the column names."""
+    pops = macro.populations()
+    add("macrostates.csv", pops.to_csv(index=False))
+    add("mfpt_macrostates.csv", macro.passage_time_table().to_csv())
+    table = macro.kinetics_table()
+    table = table.rename(columns=lambda c: c.replace("passage_time", f"passage_time_{model.unit}")
+                         .replace("rate_constant", f"rate_constant_per_{model.unit}"))
+    add("macrostate_kinetics.csv", table.to_csv(index=False))
 
 
 def cmd_demo(args) -> int:
@@ -280,13 +315,17 @@ def cmd_build(args) -> int:
                                        progress=not args.quiet, scale=args.scale,
                                        say=lambda text: _say(args, text))
     model = build_model(labels, args.lag, dt=dt, unit=unit, reversible=not args.non_reversible)
+    macro, reason = _macrostates(model, labels, args) if model.n_states > 2 else (None, "")
     if trajs.feature_atoms is not None:  # MD files: what new trajectories need to be assigned
         from .mdfeatures import MDFeatures
         spec = MDFeatures.from_options(args.features, ("phi", "psi"), None, args.periodic, args.select)
         model.metadata["md_features"] = {"spec": spec.to_dict(),
                                          "feature_names": list(trajs.feature_names)}
-    path = model.save(out, overwrite=args.force, **_extras(tica, micro))
-    _say(args, summary_text(model).rstrip())
+    extras = _extras(tica, micro)
+    if macro is not None:
+        extras["affinity"] = macro.affinity
+    path = model.save(out, overwrite=args.force, **extras)
+    _say(args, summary_text(model, macro=macro, macro_reason=reason).rstrip())
     _say(args, f"wrote {path}")
     return EXIT_OK
 
@@ -409,6 +448,16 @@ def build_parser() -> argparse.ArgumentParser:
         sp.add_argument("--seed", type=int, default=0, help="random seed (default %(default)s)")
         sp.add_argument("-q", "--quiet", action="store_true", help="no progress bars or messages")
 
+    def kinetics_intervals(sp, *, samples):
+        if samples:
+            sp.add_argument("--samples", type=int, default=BOOTSTRAP_SAMPLES,
+                            help="sampled models behind the intervals of the macrostate populations, passage "
+                                 "times and rates (default %(default)s; 0 = none)")
+        sp.add_argument("--uncertainty", choices=UNCERTAINTIES, default="bootstrap",
+                        help="how the models behind the intervals on the macrostate populations, passage times "
+                             "and rates are sampled: bootstrap over runs, or bayes (posterior of reversible "
+                             "transition matrices; reversible models only) (default %(default)s)")
+
     def scanning(sp, default_lags, *, validates):
         sp.add_argument("--lags", default=default_lags, help=f"comma-separated lags in frames (default {default_lags})")
         sp.add_argument("--samples", type=int, default=BOOTSTRAP_SAMPLES,
@@ -423,11 +472,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     d = sub.add_parser("demo", help="run the whole job headless on the demo scenario",
                        description="Demo scenario -> TICA -> microstates -> lag scan -> chosen model; writes "
-                                   "model.npz, implied_timescales.png/.csv, populations.png/.csv, summary.txt.")
+                                   "model.npz, implied_timescales.png/.csv, populations.png/.csv, macrostates.csv, "
+                                   "macrostate_kinetics.csv (passage times and rates with intervals), summary.txt.")
     d.add_argument("-o", "--output", required=True, help="output folder (created if missing)")
     common(d, files=False)
     d.set_defaults(states=60, tica_dim=2, tica_lag=5, stride=2)
     scanning(d, "1,2,5,10,20,40", validates=True)
+    kinetics_intervals(d, samples=False)
     d.set_defaults(func=cmd_demo)
 
     b = sub.add_parser("build", help="build one model at a given lag",
@@ -437,6 +488,7 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--non-reversible", action="store_true", help="do not enforce detailed balance")
     b.add_argument("-o", "--output", required=True, help="model file to write (.npz)")
     b.add_argument("--force", action="store_true", help="overwrite an existing model file")
+    kinetics_intervals(b, samples=True)
     b.set_defaults(func=cmd_build)
 
     s = sub.add_parser("scan", help="implied timescales across lags, and a suggested lag",

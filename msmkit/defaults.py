@@ -17,3 +17,6 @@ BOOTSTRAP_SAMPLES = 200
 #: Bootstrap samples of the Chapman–Kolmogorov test: its family-wise limit uses Student's t with
 #: (samples - 1) degrees of freedom, so fewer samples widen the limit instead of raising false alarms.
 CK_SAMPLES = 20
+#: Ways of sampling models for intervals on one model's kinetics (msmkit.sample_models): whole runs
+#: resampled, or the Bayesian posterior of reversible transition matrices.
+UNCERTAINTIES = ("bootstrap", "bayes")

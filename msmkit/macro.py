@@ -24,7 +24,7 @@ import scipy.optimize as opt
 
 from .errors import DiagnosticWarning, InputError
 from .kinetics import (as_state_labels, as_stationary, as_time_per_step,
-                       as_stochastic_matrix, brief, passage_time_matrix)
+                       as_stochastic_matrix, brief, passage_time_matrix, transition_paths)
 from .spectral import obeys_detailed_balance
 
 __all__ = [
@@ -478,9 +478,9 @@ class Macrostates:
     time_per_step : float
         Physical duration of one step of T (lag x dt), in ``unit``.
     unit : str
-    population_samples : ndarray, shape (n_samples, m), optional
-        Macrostate populations from resampled models (macrostates matched to these), for
-        the uncertainty columns of :meth:`populations`.
+    samples : ModelSamples, optional
+        Sampled models of the same states (:func:`msmkit.uncertainty.sample_models`), for the
+        intervals of :meth:`populations` and of ``samples.between_sets(members)``.
     propagator : ndarray, shape (n, n), optional
         The microstate matrix, for :meth:`passage_time_table`.
     """
@@ -493,7 +493,7 @@ class Macrostates:
     crispness: float
     time_per_step: float = 1.0
     unit: str = "step"
-    population_samples: np.ndarray | None = field(default=None, repr=False)
+    samples: object = field(default=None, repr=False)
     propagator: np.ndarray | None = field(default=None, repr=False)
 
     @property
@@ -529,8 +529,8 @@ class Macrostates:
         ``free_energy_kT`` (-ln of the population relative to the most populated macrostate,
         in units of kT), ``free_energy_kJ_per_mol`` when ``temperature`` (kelvin) is given,
         ``states`` (labels assigned by largest membership), and ``population_lower`` /
-        ``population_upper`` (percentile interval at ``confidence``) when population samples
-        are present.
+        ``population_upper`` (interval at ``confidence``, affinity held fixed; see
+        :meth:`msmkit.uncertainty.ModelSamples.macro_populations`) when ``samples`` are present.
         """
         import pandas as pd
 
@@ -545,14 +545,10 @@ class Macrostates:
                                  f"{brief(temperature)}")
             data["free_energy_kJ_per_mol"] = g * _R_KJ * float(temperature)
         data["states"] = [tuple(int(x) for x in s) for s in self.members]
-        if self.population_samples is not None:
-            if isinstance(confidence, (bool, np.bool_)) or not isinstance(confidence, numbers.Real) \
-                    or not 0 < confidence < 1:
-                raise InputError(f"confidence must be a number strictly between 0 and 1, but got "
-                                 f"{brief(confidence)}")
-            half = 50.0 * (1.0 - confidence)
-            data["population_lower"] = np.percentile(self.population_samples, half, axis=0)
-            data["population_upper"] = np.percentile(self.population_samples, 100.0 - half, axis=0)
+        if self.samples is not None:
+            interval = self.samples.macro_populations(self, confidence=confidence)
+            data["population_lower"] = interval["lower"].to_numpy()
+            data["population_upper"] = interval["upper"].to_numpy()
         return pd.DataFrame(data)
 
     def affinity_table(self):
@@ -597,10 +593,37 @@ class Macrostates:
                                 f"too long when the lag is not small against them.")
         return df
 
+    def kinetics_table(self, *, confidence: float = 0.95):
+        """Mean first-passage times and rate constants between every ordered pair of macrostates
+        (crisp sets, by largest membership).
+
+        With :attr:`samples` the table comes with intervals
+        (:meth:`msmkit.uncertainty.ModelSamples.between_sets`); without, it holds the estimates
+        alone. Columns ``from_set``, ``to_set``, ``passage_time`` (in ``unit``, at lag
+        resolution, see :meth:`passage_time_table`) and ``rate_constant`` (transition path
+        theory, in 1/``unit``), with ``*_lower`` / ``*_upper`` when sampled; ``attrs`` holds
+        ``unit``, ``rate_unit``, ``resolution`` and ``caption``.
+        """
+        import pandas as pd
+
+        if self.samples is not None:
+            return self.samples.between_sets(self.members, confidence=confidence)
+        mfpt = self.passage_time_table()
+        crisp = self.macro_index
+        pairs = [(a, b) for a in range(self.n_sets) for b in range(self.n_sets) if a != b]
+        rates = [transition_paths(self.propagator, self.equilibrium, crisp == a, crisp == b, states=self.states,
+                                  time_per_step=self.time_per_step, unit=self.unit).rate_constant for a, b in pairs]
+        table = pd.DataFrame({"from_set": [a for a, _ in pairs], "to_set": [b for _, b in pairs],
+                              "passage_time": [mfpt.iloc[a, b] for a, b in pairs], "rate_constant": rates})
+        table.attrs.update(mfpt.attrs, rate_unit=f"1/{self.unit}")
+        table.attrs["caption"] += " Rate constants (per " + self.unit + ") from transition path theory. No intervals: " \
+                                  "the macrostates were found without sampled models."
+        return table
+
 
 def find_macrostates(T, pi, n_sets: int, *, states=None, time_per_step: float = 1.0,
                      unit: str = "step", reversible: bool | None = None, optimize: bool = True,
-                     population_samples=None) -> Macrostates:
+                     samples=None) -> Macrostates:
     """PCCA+ macrostates of a transition matrix, with the coarse matrix and gap check.
 
     Parameters
@@ -621,8 +644,9 @@ def find_macrostates(T, pi, n_sets: int, *, states=None, time_per_step: float = 
         Symmetric eigenproblem; default: test detailed balance.
     optimize : bool
         Optimize the PCCA+ crispness objective (default True).
-    population_samples : array_like, shape (n_samples, n_sets), optional
-        Macrostate populations of resampled models, already matched to these macrostates.
+    samples : ModelSamples, optional
+        Sampled models of the same states (:func:`msmkit.uncertainty.sample_models`), giving
+        the populations intervals.
 
     Returns
     -------
@@ -656,16 +680,15 @@ def find_macrostates(T, pi, n_sets: int, *, states=None, time_per_step: float = 
     T, pi, n_sets, reversible = _gates(T, pi, n_sets, reversible)
     labels = as_state_labels(states, T.shape[0])
     time_per_step, unit = as_time_per_step(time_per_step, unit)
-    if population_samples is not None:
-        samples = np.asarray(population_samples, dtype=float)
-        if samples.ndim != 2 or samples.shape[1] != n_sets or samples.shape[0] < 1:
-            raise InputError(f"population_samples must have shape (n_samples, {n_sets}), "
-                             f"but has shape {samples.shape}")
-        population_samples = samples
+    if samples is not None:
+        owner = getattr(getattr(samples, "model", None), "states", None)
+        if owner is None or not np.array_equal(np.asarray(owner), labels):
+            raise InputError("samples must be drawn (msmkit.sample_models) for a model of these states, but their "
+                             "states differ from states")
     chi, eig, crisp = _pcca(T, pi, n_sets, reversible, optimize)
     check_macrostate_gap(eig, n_sets, time_per_step=time_per_step, unit=unit)
     Tc = _coarse(T, pi, chi)
     return Macrostates(affinity=chi, states=labels, equilibrium=pi,
                        lumped_propagator=Tc, eigenvalues=np.real(eig), crispness=crisp,
-                       time_per_step=time_per_step, unit=unit, population_samples=population_samples,
+                       time_per_step=time_per_step, unit=unit, samples=samples,
                        propagator=T)

@@ -6,7 +6,6 @@ Prinz et al., J. Chem. Phys. 134, 174105 (2011): construction and analysis of Ma
 """
 from __future__ import annotations
 
-import dataclasses
 import datetime as _dt
 import hashlib
 import warnings
@@ -15,7 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from ._checks import (as_label_trajectories, as_state_set, as_transition_matrix, check_bool, check_dt, check_int,
+from ._checks import (as_state_set, as_transition_matrix, check_bool, check_dt, check_int,
                       check_seed, check_unit)
 from ._version import __version__
 from .counts import count_csr, kept_states, prepare_counting
@@ -206,7 +205,8 @@ class MarkovModel:
         return pd.DataFrame(table)
 
     # ----------------------------------------------------------------- macrostates and kinetics
-    def find_macrostates(self, n_sets: int, *, optimize: bool = True, labels=None, n_samples: int = 0, seed=None):
+    def find_macrostates(self, n_sets: int, *, optimize: bool = True, labels=None, n_samples: int = 0,
+                         uncertainty: str = "bootstrap", seed=None, progress: bool = False, cancel=None):
         """PCCA+ macrostates (Deuflhard & Weber 2005; Roeblitz & Weber 2013).
 
         Parameters
@@ -216,66 +216,41 @@ class MarkovModel:
         optimize : bool
             Optimize the affinity (the published objective); False keeps the inner-simplex guess.
         labels : label trajectories, optional
-            The data of the model; with ``n_samples`` > 0 the macrostate populations get
-            bootstrap intervals (whole runs resampled, affinity held fixed).
+            The data of the model, needed for ``uncertainty="bootstrap"``.
         n_samples : int
-            Bootstrap samples for the population intervals.
+            Sampled models behind the intervals (0: no intervals; 200 or more for 95 %
+            intervals, ``msmkit.defaults.BOOTSTRAP_SAMPLES``).
+        uncertainty : {"bootstrap", "bayes"}
+            How the models are sampled (:func:`msmkit.uncertainty.sample_models`); the affinity
+            is held fixed.
         seed : int, optional
+        progress : bool
+        cancel : object with ``is_set()``, optional
+            Checked between two samples (:class:`msmkit.errors.Cancelled` once set).
 
         Returns
         -------
         Macrostates
             Memberships (rows sum to 1), crisp assignments by original label, populations
-            (``.populations()``, with ``population_lower`` / ``population_upper`` when
-            bootstrapped) and the coarse transition matrix.
+            (``.populations()``, with ``population_lower`` / ``population_upper`` when sampled),
+            the coarse transition matrix, and with samples ``.samples`` (a
+            :class:`~msmkit.uncertainty.ModelSamples`, e.g. for
+            ``macro.samples.between_sets(macro.members)``).
         """
         from .macro import find_macrostates
+        from .uncertainty import check_uncertainty, sample_models
         n_sets = check_int(n_sets, "n_sets", minimum=1, maximum=self.n_states)
         n_samples = check_int(n_samples, "n_samples", minimum=0)
         optimize, seed = check_bool(optimize, "optimize"), check_seed(seed)
-        if n_samples and labels is None:
-            raise InputError("n_samples > 0 needs labels= (the label trajectories of the model) to resample")
-        macro = find_macrostates(self.propagator, self.equilibrium, n_sets,
-                                 states=self.states, time_per_step=self.lag_time, unit=self.unit,
-                                 reversible=self.reversible, optimize=optimize)
-        if n_samples:
-            pi = self.bootstrap_stationary(labels, n_samples=n_samples, seed=seed)
-            macro = dataclasses.replace(macro, population_samples=np.nan_to_num(pi) @ macro.affinity)
-        return macro
-
-    def bootstrap_stationary(self, labels, *, n_samples: int = 200, seed=None) -> np.ndarray:
-        """Stationary distributions re-estimated on resampled data, one row per sample.
-
-        Whole runs are drawn with replacement (contiguous blocks with fewer than 5 runs), counted
-        at the lag of this model on the kept states, and estimated the same way (Efron 1979). A state
-        that falls out of a sample's connected set gets NaN in that row; the rest are renormalised.
-        Fewer than 200 samples (for 95 % intervals) issue a DiagnosticWarning; over few runs,
-        plain percentiles of these samples cover less than stated (about 0.90 for 95 % with 10
-        runs, ``bench/bench_coverage.py``): form intervals with
-        :func:`msmkit._bootstrap.bootstrap_interval` and ``n_units`` = the number of runs.
-
-        Returns
-        -------
-        ndarray, shape (n_samples, n_states), columns in the order of :attr:`states`
-        """
-        from ._bootstrap import fit_sample, resampling_plan, sample_rows, unflatten, warn_few_samples
-        from .counts import run_count_rows
-        runs = as_label_trajectories(labels)
-        n_samples = check_int(n_samples, "n_samples", minimum=1)
-        warn_few_samples(n_samples, 0.95, "bootstrap_stationary")
-        seed = check_seed(seed)
-        n_lab = max(int(self.states.max()) + 1, max(int(r.max()) for r in runs if r.size) + 1)
-        blocks, weights, _ = resampling_plan(len(runs), n_samples, np.random.default_rng(seed))
-        rows, _ = run_count_rows(runs, self.lag, n_states=n_lab, blocks_per_run=blocks)
-        sampled = sample_rows(weights, rows)
-        out = np.full((n_samples, self.n_states), np.nan)
-        for b in range(n_samples):
-            C = unflatten(sampled.getrow(b), n_lab)[self.states][:, self.states]
-            fit = fit_sample(C, reversible=self.reversible, initial=self.equilibrium)
-            if fit is not None:
-                keep, _, pi = fit
-                out[b, keep] = pi
-        return out
+        uncertainty = check_uncertainty(uncertainty)
+        if n_samples and uncertainty == "bootstrap" and labels is None:
+            raise InputError("n_samples > 0 with uncertainty='bootstrap' needs labels= (the label trajectories of "
+                             "the model) to resample; or use uncertainty='bayes'")
+        samples = sample_models(self, labels, uncertainty=uncertainty, n_samples=n_samples, seed=seed,
+                                progress=progress, cancel=cancel) if n_samples else None
+        return find_macrostates(self.propagator, self.equilibrium, n_sets,
+                                states=self.states, time_per_step=self.lag_time, unit=self.unit,
+                                reversible=self.reversible, optimize=optimize, samples=samples)
 
     def suggest_n_macrostates(self, max_sets: int = 10):
         """A number of macrostates from the largest spectral gap, with the reason in words:

@@ -135,7 +135,7 @@ def report_html(model, *, scan=None, ck=None, macrostates=None, settings=None,
     parts += _summary_section(model, scan, ck, macrostates)
     parts += _settings_section(model, scan, ck, settings)
     parts += _diagnostics_section(model, scan, ck)
-    parts += _model_section(model, scan)
+    parts += _model_section(model, scan, None if macrostates is None else macrostates.samples)
     if scan is not None:
         parts += _scan_section(scan, model)
     if ck is not None:
@@ -247,7 +247,7 @@ def _diagnostics_section(model, scan, ck):
     return out
 
 
-def _model_section(model, scan):
+def _model_section(model, scan, samples=None):
     from .plots import plot_populations
 
     k = min(8, model.n_states - 1)
@@ -260,15 +260,21 @@ def _model_section(model, scan):
         cols = {key: v[:n] for key, v in cols.items()}
         cols[f"{100 * scan.confidence:g}% interval"] = [_interval(lo, hi) for lo, hi in
                                                         zip(scan.lower[row, :n], scan.upper[row, :n])]
-        caption += f" Intervals: percentile bootstrap over runs, {scan.n_samples} samples."
+        caption += f" Intervals: bootstrap over runs, {scan.n_samples} samples."
     else:
         caption += " No interval: no bootstrap scan was passed."
-    pops = model.populations().sort_values("population", ascending=False).head(20)
+    pops = model.populations()
+    cols_p = {"state": pops["state"], "population": pops["population"]}
+    caption_p = "The 20 most populated states (free energy relative to the most populated)."
+    if samples is not None:
+        table = samples.populations()
+        cols_p["95% interval"] = [_interval(a, b) for a, b in zip(table["lower"], table["upper"])]
+        caption_p += f" Intervals: {table.attrs['interval']}, {samples.n_samples} sampled models."
+    cols_p["free energy (kT)"] = pops["free_energy_kT"]
+    top = np.argsort(-pops["population"].to_numpy(), kind="stable")[:20]
     return ["<h2>Model</h2>", _table(cols, caption),
             _figure(plot_populations(model), "Stationary populations of the states."),
-            _table({"state": pops["state"], "population": pops["population"],
-                    "free energy (kT)": pops["free_energy_kT"]},
-                   "The 20 most populated states (free energy relative to the most populated).")]
+            _table({k: [list(v)[i] for i in top] for k, v in cols_p.items()}, caption_p)]
 
 
 def _scan_section(scan, model):
@@ -305,24 +311,31 @@ def _ck_section(ck):
 def _macro_section(macro, model):
     pops = macro.populations()
     cols = {"macrostate": pops["macrostate"], "population": pops["population"]}
-    if "population_lower" in pops.columns:
+    samples = macro.samples
+    if samples is not None:
         cols["95% interval"] = [_interval(a, b) for a, b in zip(pops["population_lower"], pops["population_upper"])]
-        note = ""
+        how = samples.macro_populations(macro).attrs["interval"]
+        note = f" Intervals: {how}, {samples.n_samples} sampled models, the memberships held fixed."
     else:
-        note = " No interval: the macrostates were found without label trajectories to resample."
+        note = " No interval: the macrostates were found without sampled models (n_samples=0)."
     cols["free energy (kT)"] = pops["free_energy_kT"]
     cols["microstates"] = [len(s) for s in pops["states"]]
     out = ["<h2>Macrostates</h2>", _table(cols, f"PCCA+ macrostates, most populated first.{note}")]
-    try:
-        mfpt = macro.passage_time_table()
-    except Exception:  # a Macrostates without a propagator has no passage times
-        mfpt = None
-    if mfpt is not None:
-        m = mfpt.shape[0]
-        rows = [(a, b, float(mfpt.iloc[a, b])) for a in range(m) for b in range(m) if a != b]
-        out.append(_table({"from": [r[0] for r in rows], "to": [r[1] for r in rows],
-                           f"mean first-passage time ({model.unit})": [r[2] for r in rows]},
-                          "Mean first-passage times between macrostates (no interval: from the one chosen model)."))
+    if macro.propagator is None:  # a Macrostates without the matrix has no passage times
+        return out
+    table = macro.kinetics_table()
+    cols = {"from": table["from_set"], "to": table["to_set"],
+            f"mean first-passage time ({model.unit})": table["passage_time"]}
+    if samples is not None:
+        cols["95% interval"] = [_interval(a, b) for a, b in zip(table["passage_time_lower"],
+                                                                table["passage_time_upper"])]
+    cols[f"rate constant (1/{model.unit})"] = table["rate_constant"]
+    if samples is not None:
+        cols["95% interval "] = [_interval(a, b) for a, b in zip(table["rate_constant_lower"],
+                                                                 table["rate_constant_upper"])]
+    out.append(_table(cols, table.attrs["caption"]))
+    if samples is not None:
+        out += [f"<div class='note'>{_e(n)}</div>" for n in samples.notes]
     return out
 
 

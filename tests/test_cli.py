@@ -1,6 +1,7 @@
 """The msmkit command line: the whole job end to end, and clean failures on bad input."""
 import errno
 import os
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -43,6 +44,19 @@ def test_demo_writes_every_output(demo_output):
     summary = (demo_output / "summary.txt").read_text()
     assert "Chapman–Kolmogorov test" in summary and "macrostates (PCCA+): 3" in summary
     assert "computed at lag resolution" in summary  # the passage times say how coarse they are
+    # macrostate kinetics with intervals and units: the estimates are the model's own passage
+    # times between the crisp macrostates (Kemeny & Snell first passage, msmkit.kinetics)
+    assert "(95% interval" in summary and f"rate constant [1/{demo.UNIT}], 95% intervals" in summary
+    kinetics = pd.read_csv(demo_output / "macrostate_kinetics.csv")
+    crisp = model.extras["affinity"].argmax(axis=1)
+    members = [model.states[crisp == j] for j in range(3)]
+    expected = model.passage_time_matrix(members)
+    for row in kinetics.itertuples():
+        unit = demo.UNIT
+        assert getattr(row, f"passage_time_{unit}") == pytest.approx(expected[row.from_set, row.to_set], rel=1e-9)
+        assert getattr(row, f"passage_time_{unit}_lower") < getattr(row, f"passage_time_{unit}_upper")
+    pops = pd.read_csv(demo_output / "macrostates.csv")
+    assert (pops.population_lower < pops.population_upper).all()
 
 
 def test_demo_recovers_the_slow_process_of_the_three_basins(demo_output):
@@ -63,11 +77,27 @@ def test_demo_recovers_the_slow_process_of_the_three_basins(demo_output):
     assert np.all((later.timescale >= chosen.lower) & (later.timescale <= chosen.upper))
 
 
+def test_build_prints_macrostate_kinetics_with_posterior_intervals(demo_files, tmp_path, capsys):
+    target = tmp_path / "model.npz"
+    assert main(["build", str(demo_files / "*.npy"), "--lag", "2", "--states", "12", "--tica-dim", "2",
+                 "--dt", "0.1", "--unit", "ns", "--uncertainty", "bayes", "--samples", "200", "-o", str(target)]) == 0
+    out = capsys.readouterr().out
+    model = mk.load_model(target)
+    n_sets = model.extras["affinity"].shape[1]
+    assert f"macrostates (PCCA+): {n_sets}" in out and "(95% interval" in out
+    assert "posterior of reversible transition matrices" in out and "divided by the lag" in out
+    pairs = re.findall(r"^    (\d) -> (\d): passage time [\d.e+-]+ \[[\d.e+-]+, [\d.e+-]+\] ns, rate [\d.e+-]+ "
+                       r"\[[\d.e+-]+, [\d.e+-]+\] per ns$", out, flags=re.M)
+    assert len(pairs) == n_sets * (n_sets - 1), out
+    with pytest.raises(SystemExit):
+        main(["build", str(demo_files / "*.npy"), "--lag", "2", "--uncertainty", "jackknife", "-o", str(target)])
+
+
 def test_build_scan_and_info_on_files(demo_files, tmp_path, capsys):
     files = sorted(str(p) for p in demo_files.glob("*.npy"))
     target = tmp_path / "model.npz"
     code = main(["build", *files, "--lag", "5", "--states", "20", "--tica-dim", "2", "--dt", "0.1", "--unit", "ns",
-                 "-o", str(target), "-q"])
+                 "--samples", "0", "-o", str(target), "-q"])
     assert code == 0
     model = mk.load_model(target)
     assert (model.lag, model.dt, model.unit) == (5, 0.1, "ns")

@@ -517,7 +517,7 @@ def test_seeds_valid(seed):
         mk.lag_scan(_labels(), [1, 2], n_samples=2, seed=seed)
     model = _quiet_build(_labels())
     with pytest.raises(InputError, match=r"seed must be an integer"):
-        model.bootstrap_stationary(_labels(), n_samples=2, seed=seed)
+        mk.sample_models(model, _labels(), n_samples=2, seed=seed)
 
 
 def test_good_settings_still_accepted():

@@ -246,8 +246,16 @@ def test_populations_table_free_energies_and_intervals():
     T, pi, _ = block_chain([3, 5], 1e-3, 9)
     rng = np.random.default_rng(0)
     p = pi @ pcca_affinity(T, pi, 2)
-    samples = p + 0.01 * rng.standard_normal((200, 2))
-    macro = find_macrostates(T, pi, 2, population_samples=samples)
+    # posterior-style samples of the stationary distribution: the interval is then the plain
+    # 2.5 / 97.5 percentiles (numpy) of the macrostate populations, the affinity held fixed
+    from msmkit import MarkovModel, ModelSamples
+    model = MarkovModel.from_transition_matrix(T)
+    pis = pi * np.exp(0.05 * rng.standard_normal((200, pi.size)))
+    pis /= pis.sum(axis=1, keepdims=True)
+    chi = pcca_affinity(T, pi, 2)
+    samples = pis @ chi
+    drawn = ModelSamples(model, np.repeat(T[None], 200, axis=0), pis, "bayes")
+    macro = find_macrostates(T, pi, 2, samples=drawn)
     df = macro.populations(temperature=300.0)
     np.testing.assert_allclose(df["population"], p)
     # free energy relative to the most populated macrostate: -ln(p / p_max) in kT
@@ -287,8 +295,10 @@ def test_bad_input():
         lumped_propagator(T, pi, np.ones((4, 2)))
     with pytest.raises(InputError, match="non-negative"):
         lumped_propagator(T, pi, [[1.5, -0.5]] * 4)
-    with pytest.raises(InputError, match=r"population_samples must have shape \(n_samples, 2\)"):
-        find_macrostates(T, pi, 2, population_samples=np.ones((5, 3)))
+    from msmkit import MarkovModel, ModelSamples
+    other = MarkovModel.from_transition_matrix(np.full((3, 3), 1 / 3))
+    with pytest.raises(InputError, match=r"samples must be drawn .* for a model of these states"):
+        find_macrostates(T, pi, 2, samples=ModelSamples(other, np.full((5, 3, 3), 1 / 3), np.full((5, 3), 1 / 3)))
     with pytest.raises(InputError, match="max_sets"):
         suggest_n_macrostates([1, 0.9], max_sets=0)
     with pytest.raises(InputError, match="eigenvalues must be a non-empty"):

@@ -117,6 +117,21 @@ def test_report_holds_figures_tables_diagnostics_and_provenance(analysis, tmp_pa
     assert [r[1] for r in macro_rows] == [f"{p:.4g}" for p in pops["population"]]
     assert [r[2] for r in macro_rows] == [f"{a:.4g} – {b:.4g}" for a, b in
                                           zip(pops["population_lower"], pops["population_upper"])]
+    # state populations with the intervals of the macrostates' sampled models, most populated first
+    states = macro.samples.populations().sort_values("estimate", ascending=False, kind="stable").head(20)
+    state_rows = next(t for t in page.tables if t and t[0][:3] == ["state", "population", "95% interval"])[1:]
+    assert [r[0] for r in state_rows] == [str(int(x)) for x in states["state"]]
+    assert [r[2] for r in state_rows] == [f"{a:.4g} – {b:.4g}" for a, b in zip(states["lower"], states["upper"])]
+    # passage times and rates between macrostates with their intervals, in the model's unit
+    kin = macro.kinetics_table()
+    kin_rows = next(t for t in page.tables if t and t[0][:3] == ["from", "to", f"mean first-passage time ({model.unit})"])
+    assert kin_rows[0][4] == f"rate constant (1/{model.unit})"
+    for row, ref in zip(kin_rows[1:], kin.itertuples()):
+        assert row[2] == f"{ref.passage_time:.4g}" and row[4] == f"{ref.rate_constant:.4g}"
+        assert row[3] == f"{ref.passage_time_lower:.4g} – {ref.passage_time_upper:.4g}"
+        assert row[5] == f"{ref.rate_constant_lower:.4g} – {ref.rate_constant_upper:.4g}"
+    np.testing.assert_allclose(kin["passage_time"], [model.passage_time(macro.members[0], macro.members[1]),
+                                                     model.passage_time(macro.members[1], macro.members[0])])
     # provenance: versions and the data fingerprint
     prov = dict(r for r in page.tables[-1] if len(r) == 2)
     assert prov["numpy"] == np.__version__ and prov["msmkit"] == mk.__version__
