@@ -17,7 +17,7 @@ session           JSON text (NaN as Python's json writes it): every scalar, stri
                   with ``{"$array": key}`` where an array of the archive stands, ``{"$model": prefix}`` for a Markov model stored as
                   the arrays of a model file under ``prefix.`` (:func:`msmkit.modelfile.model_arrays`),
                   and ``{"$type": name, "fields": {...}}`` for a result (LagScan, CKResult,
-                  Macrostates) or ``{"$estimator": name, ...}`` for a fitted TICA or Microstates
+                  Macrostates, ModelSamples) or ``{"$estimator": name, ...}`` for a fitted TICA or Microstates
 other members     numeric arrays named after where they belong (``scan.timescales``, ``labels.0``,
                   ``models.10.propagator``, ...)
 
@@ -47,6 +47,7 @@ from .model import MarkovModel, now_utc, package_version
 from .modelfile import atomic_write, model_arrays, model_fields, model_path
 from .reduce import TICA
 from .states import Microstates
+from .uncertainty import ModelSamples
 from .validate import CKResult
 
 __all__ = ["FORMAT", "FORMAT_VERSION", "Session", "load_session", "save_session"]
@@ -63,7 +64,7 @@ MAX_JSON_BYTES = 64 << 20
 MAX_HEADER_BYTES = 10_000
 
 #: results stored field by field, by class name
-RESULTS = {cls.__name__: cls for cls in (LagScan, CKResult, Macrostates)}
+RESULTS = {cls.__name__: cls for cls in (LagScan, CKResult, Macrostates, ModelSamples)}
 #: fitted estimators stored as their parameters and fitted attributes (names ending in "_")
 ESTIMATORS = {cls.__name__: cls for cls in (TICA, Microstates)}
 

@@ -25,8 +25,7 @@ def session():
         scan = mk.lag_scan(micro.labels_, [1, 2, 5], dt=demo.DT, unit=demo.UNIT, n_samples=4, seed=0)
     model = scan.model(2)
     ck = mk.chapman_kolmogorov(model, micro.labels_, n_sets=2, multiples=2, n_samples=4, seed=0)
-    with pytest.warns(mk.DiagnosticWarning):
-        macro = model.find_macrostates(2, labels=micro.labels_, n_samples=4, seed=0)
+    macro = model.find_macrostates(2, labels=micro.labels_, n_samples=4, seed=0)
     return Session(settings={"fields": {"lags": {"lags": "1, 2, 5", "reversible": True}}, "note": [1, 2.5, None]},
                    dt=demo.DT, unit=demo.UNIT, frames_per_run=[len(r) for r in trajs], trajectories_sha256="ab",
                    microstates=micro, tica=tica, feature_scaling=(np.arange(3.0), np.ones(3)), scan=scan, lag=2,
@@ -63,7 +62,9 @@ def test_round_trip_keeps_every_stored_array(session, saved):
     np.testing.assert_array_equal(again.ck.deviation, session.ck.deviation)
     assert all(np.array_equal(a, b) for a, b in zip(again.ck.members, session.ck.members))
     np.testing.assert_array_equal(again.macrostates.affinity, session.macrostates.affinity)
-    np.testing.assert_array_equal(again.macrostates.population_samples, session.macrostates.population_samples)
+    np.testing.assert_array_equal(again.macrostates.samples.propagators, session.macrostates.samples.propagators)
+    np.testing.assert_array_equal(again.macrostates.samples.equilibria, session.macrostates.samples.equilibria)
+    assert again.macrostates.samples.uncertainty == session.macrostates.samples.uncertainty
     assert again.macrostates.populations().equals(session.macrostates.populations())
     np.testing.assert_array_equal(again.tica.cumulative_kinetic_variance_, session.tica.cumulative_kinetic_variance_)
     x = np.asarray(demo.trajectories(seed=2, n_runs=1, min_frames=600, max_frames=900)[0])

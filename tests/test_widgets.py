@@ -1062,7 +1062,8 @@ def test_session_comes_back_without_recomputing(wb, trajs, tmp_path, monkeypatch
     monkeypatch.setattr(Microstates, "fit", refuse)
     monkeypatch.setattr(TICA, "fit", refuse)
     monkeypatch.setattr(mk.MarkovModel, "find_macrostates", refuse)
-    monkeypatch.setattr(mk.MarkovModel, "bootstrap_stationary", refuse)
+    import msmkit.uncertainty as uncertainty_mod
+    monkeypatch.setattr(uncertainty_mod, "sample_models", refuse)
 
     other = Workbench(trajs, n_states=5, lags=[1], n_samples=0, temperature=None, progress=False)
     other.session_row.name.value = str(path)
