@@ -218,7 +218,7 @@ def test_nan_in_small_files_found_at_load(tmp_path, data):
     bad = data.copy()
     bad[42, 1] = np.nan
     pd.DataFrame(bad, columns=["a", "b", "c"]).to_csv(tmp_path / "bad.csv", index=False)
-    with pytest.raises(InputError, match=r"bad\.csv: frame 42 has nan in feature 1 \('b'\)"):
+    with pytest.raises(InputError, match=r"bad\.csv: frame 42 \(line 44\) has nan in feature 1 \('b'\)"):
         load_trajectories(tmp_path / "bad.csv")
     np.savez(tmp_path / "bad.npz", run=bad)
     with pytest.raises(InputError, match=r"bad\.npz:run: frame 42 has nan"):
