@@ -568,7 +568,7 @@ def _npy_header(fh, where: str):
     except (OSError, zipfile.BadZipFile, zlib.error):
         raise  # reading failed (an .npz member): reported by the caller
     except Exception as err:  # numpy's header parser raises ValueError, SyntaxError, TokenError, ...
-        raise InputError(f"{where} is not a readable .npy array (its header cannot be parsed: "
+        raise InputError(f"{where} is not a readable .npy array (the header cannot be parsed: "
                          f"{type(err).__name__}: {' '.join(str(err).split())}); save arrays with "
                          f"numpy.save") from None
     if dtype.hasobject:
@@ -593,7 +593,7 @@ def _read_npy(path: str, **_):
         raise _open_error(path, err) from None
     needed = offset + math.prod(shape) * dtype.itemsize  # Python integers: no overflow
     if size != needed:  # numpy.save writes exactly the header and the data
-        state = "truncated" if size < needed else "damaged (longer than its header declares)"
+        state = "truncated" if size < needed else "damaged (longer than the header declares)"
         raise InputError(f"{path} is {state}: the header promises {shape[0]} frames x "
                          f"{shape[1]} features ({needed} bytes) but the file has {size} bytes; "
                          f"write it again with numpy.save")
@@ -601,7 +601,7 @@ def _read_npy(path: str, **_):
 
 
 def _npz_member(zf, info, path: str) -> np.ndarray:
-    """One member of an .npz archive, checked from its header before its data are read."""
+    """One member of an .npz archive, checked from the header before the data are read."""
     where = f"{path}:{info.filename[:-4]}"
     if info.flag_bits & 0x1:
         raise InputError(f"{where} is encrypted (password protected); msmkit reads plain archives "
@@ -776,7 +776,7 @@ def _read_text(path: str, **_):
         for n in (t.strip() for t in tokens):
             if n in seen:
                 raise InputError(f"{path}: the header names the column {n!r} twice; give every "
-                                 f"feature its own name")
+                                 f"feature a different name")
             seen.add(n)
     try:
         frame = pd.read_csv(io.BytesIO(raw), sep=sep, header=0 if has_header else None,

@@ -296,7 +296,7 @@ def test_exit_codes_of_help_version_and_usage(capsys):
 
 
 @pytest.mark.parametrize("name, content, words", [
-    ("bad.npy", b"\x93NUMPY\x01\x00\x10\x00{'descr': 'zz'\n", "header cannot be parsed"),
+    ("bad.npy", b"\x93NUMPY\x01\x00\x10\x00{'descr': 'zz'\n", "the header cannot be parsed"),
     ("bad.csv", b"a,b\n1,2\n3\n", "line 3 has 1 value"),
     ("bad.npz", b"PK\x05\x06" + b"\x00" * 18, "holds no runs"),
     ("bad.tsv", b"1\t2\n\xff\xfe\t3\n", "line 2 is not UTF-8"),

@@ -826,7 +826,7 @@ def _valid_files(folder: Path, arr: np.ndarray) -> dict:
 
 
 class _Quiet(tuple):
-    """A fixture value that hypothesis reports by name, not by its many bytes."""
+    """A fixture value that hypothesis reports by name, not by the many bytes it holds."""
 
     def __repr__(self):
         return "<fixture>"
@@ -1000,7 +1000,7 @@ def test_text_token_fuzz(tmp_path, n_cols, header, sep, rows, newline, encoding)
 
 
 def test_text_ragged_rows_named_with_line(tmp_path):
-    """A short or long row is named by its line; the missing value is not read as NaN."""
+    """A short or long row is named by the line it is on; the missing value is not read as NaN."""
     (tmp_path / "short.csv").write_text("a,b,c\n1,2,3\n\n4,5\n")
     with pytest.raises(InputError, match=r"short\.csv: line 4 has 2 values but .*3"):
         mk.load_trajectories(tmp_path / "short.csv")
