@@ -706,19 +706,30 @@ def _looks_numeric(token: str) -> bool:
         return token.strip().lower() in {"", "nan", "inf", "-inf", "+inf", "na"}
 
 
-def _text_lines(raw: bytes, sep: str) -> tuple[np.ndarray, np.ndarray]:
+def _text_lines(raw: bytes, sep: str, path: str) -> tuple[np.ndarray, np.ndarray]:
     """Line numbers (1-based) of the non-blank lines of ``raw`` and the number of fields on
-    each; separators inside quotes are not counted."""
+    each; separators inside quotes are not counted. Lines end with ``\\n`` or ``\\r\\n``."""
+    data = np.frombuffer(raw, dtype=np.uint8)
+    cr = np.flatnonzero(data == 13)
+    lone = cr[(cr + 1 >= len(data)) | (data[np.minimum(cr + 1, len(data) - 1)] != 10)]
+    if lone.size:
+        line = raw.count(b"\n", 0, int(lone[0])) + 1
+        raise InputError(f"{path}: line {line} holds a carriage return that does not end the "
+                         f"line; end lines with a newline (LF or CR LF) and remove other "
+                         f"control characters")
     if b'"' in raw:  # quoted fields (names with commas): let the csv module split them
         import csv
 
         text = raw.decode("utf-8").split("\n")
-        rows = [(k + 1, len(f)) for k, f in enumerate(csv.reader(text, delimiter=sep)) if f]
+        try:
+            rows = [(k + 1, len(f)) for k, f in enumerate(csv.reader(text, delimiter=sep)) if f]
+        except csv.Error as err:
+            raise InputError(f"{path}: the quoting cannot be parsed ({err}); quote whole "
+                             f"fields only, with a closing quote on the same line") from None
         rows = np.array(rows, dtype=np.int64).reshape(-1, 2)
         return rows[:, 0], rows[:, 1]
     if not raw:
         return np.empty(0, np.int64), np.empty(0, np.int64)
-    data = np.frombuffer(raw, dtype=np.uint8)
     ends = np.flatnonzero(data == 10)
     if not raw.endswith(b"\n"):
         ends = np.append(ends, len(data))
@@ -752,14 +763,18 @@ def _read_text(path: str, **_):
         raise InputError(f"{path}: line {line} is not UTF-8 text (byte {raw[err.start]:#04x}); "
                          f"a {kind} file of features must be plain UTF-8 text: check that it is "
                          f"the right file, or save it again as UTF-8") from None
-    lines, fields = _text_lines(raw, sep)
+    lines, fields = _text_lines(raw, sep, path)
     if not len(lines):
         raise InputError(f"{path} holds only blank lines; write one line per frame")
     first = text.split("\n", lines[0])[lines[0] - 1].rstrip("\r")
     del text
     import csv
 
-    tokens = next(csv.reader([first], delimiter=sep))
+    try:
+        tokens = next(csv.reader([first], delimiter=sep))
+    except csv.Error as err:
+        raise InputError(f"{path}: line {lines[0]} cannot be split into fields ({err}); check "
+                         f"the quoting") from None
     has_header = not all(_looks_numeric(t) for t in tokens)
     odd = np.flatnonzero(fields != fields[0])
     if odd.size:

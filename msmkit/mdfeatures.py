@@ -819,5 +819,6 @@ def _time_step(first, path, md, kwargs):
 
 def _md_error(path, err, alternative="or does not match the topology") -> InputError:
     # a parser's own IndexError/TypeError text ("string index out of range") says nothing
-    why = f" ({err})" if isinstance(err, (OSError, RuntimeError)) or type(err) is ValueError else ""
+    text = " ".join(str(err).split())  # one line, whatever the parser wrote
+    why = f" ({text})" if isinstance(err, (OSError, RuntimeError)) or type(err) is ValueError else ""
     return InputError(f"cannot read {path}: the file is truncated or corrupt, {alternative}{why}")

@@ -984,17 +984,17 @@ def test_text_token_fuzz(tmp_path, n_cols, header, sep, rows, newline, encoding)
             return None
         return v if math.isfinite(v) and tok.strip() == tok and "_" not in tok else None
 
+    rows = [r for r in rows if sep.join(r) != ""]  # empty lines are skipped (blank lines)
     width = n_cols if header else (len(rows[0]) if rows else 0)
     valid = (encoding != "utf-16" and rows and width >= 1
-             and all(len(r) == width and all(number(t) is not None for t in r) for r in rows)
-             and not (not header and width == 1 and rows[0][0] == ""))
+             and all(len(r) == width and all(number(t) is not None for t in r) for r in rows))
     runs = load_or_clean_failure(path)
     if valid:
         assert runs is not None, text
         assert np.array_equal(runs[0], np.array([[float(t) for t in r] for r in rows])), text
     elif runs is not None:
         # what loaded must be exactly the numbers written (no row padded, no column invented)
-        expected = np.array([[number(t) for t in r] for r in rows if r], dtype=object)
+        expected = np.array([[number(t) for t in r] for r in rows], dtype=object)
         assert runs[0].shape == expected.shape, text
         assert np.array_equal(runs[0], expected.astype(float)), text
 
@@ -1165,7 +1165,7 @@ def test_md_readers_on_damaged_files(tmp_path, md_files, suffix, mode, where, ju
     runs = load_or_clean_failure(path, topology=topology, atom_pairs=MD_PAIRS)
     if runs is not None and mode == "cut":
         (run,) = runs
-        assert run.shape[1] == full[suffix].shape[1] and len(run) < len(full[suffix])
+        assert run.shape[1] == full[suffix].shape[1] and len(run) <= len(full[suffix])
         assert np.array_equal(run, full[suffix][:len(run)]), f"{suffix} cut at byte {at}"
 
 

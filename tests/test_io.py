@@ -404,3 +404,10 @@ def test_stored_feature_names_are_checked_per_file(tmp_path, data):
         load_trajectories(tmp_path / "runs.h5")
     trajs = load_trajectories(tmp_path / "runs.h5", feature_names=["x", "y", "z"])  # the override wins
     assert trajs.feature_names == ("x", "y", "z")
+
+
+def test_text_carriage_return_inside_a_line(tmp_path):
+    # pandas would split the line at the lone CR, so every later line number would be off
+    (tmp_path / "cr.csv").write_bytes(b"1,2\r\n3,4\r5,6\n")
+    with pytest.raises(InputError, match=r"cr\.csv: line 2 holds a carriage return"):
+        load_trajectories(tmp_path / "cr.csv")
