@@ -29,9 +29,14 @@ MD formats (``.xtc``, ``.dcd``, ``.trr``, ``.pdb``, ``.nc``, ``.gro``, ..., also
 
 Checks
 ------
-Missing files, globs matching nothing, unreadable, empty or truncated files, unknown file
-types, runs with differing numbers of features and NaN/infinite values all raise
-:class:`~msmkit.errors.InputError` naming the file. Files held in memory (npz, csv/tsv, MD
+Missing files, globs matching nothing, unreadable, empty, truncated or damaged files, unknown
+file types, runs with differing numbers of features (naming both files and counts) and
+NaN/infinite values all raise :class:`~msmkit.errors.InputError` naming the file. Nothing is
+unpickled: ``.npy`` headers are parsed as text and every ``.npz`` member is checked from the
+header (plain numeric 2-D array, size matching the archive, not encrypted) before the data
+are read. Text files are checked line by line first: every non-blank line must hold the same
+number of fields (no padding of short rows with NaN, no column taken as an index), the text
+must be UTF-8, header names unique; errors give the line number. Files held in memory (npz, csv/tsv, MD
 formats) are checked for NaN/infinity when loaded; lazy runs (npy, HDF5) are checked as each
 chunk is read, so the error names the file and the first bad frame at the first read that
 meets it (``TrajectorySet.check_values()`` reads everything once to check up front).
@@ -743,7 +748,23 @@ def _text_lines(raw: bytes, sep: str, path: str) -> tuple[np.ndarray, np.ndarray
     return lines[~blank], fields[~blank]
 
 
+def _first_line(raw: bytes) -> tuple[int, str | None]:
+    """(1-based number, text) of the first non-blank line of ``raw``, or (0, None)."""
+    start, number = 0, 1
+    while start < len(raw):
+        stop = raw.find(b"\n", start)
+        stop = len(raw) if stop < 0 else stop
+        line = raw[start:stop].rstrip(b"\r")
+        if line:
+            return number, line.decode("utf-8")
+        start, number = stop + 1, number + 1
+    return 0, None
+
+
 def _read_text(path: str, **_):
+    import csv
+    import warnings
+
     import pandas as pd
 
     sep = TEXT_SUFFIXES[Path(path).suffix.lower()]
@@ -754,38 +775,23 @@ def _read_text(path: str, **_):
             raw = fh.read()
     except OSError as err:
         raise _open_error(path, err) from None
-    bom = raw.startswith(b"\xef\xbb\xbf")
-    raw = raw[3:] if bom else raw
+    raw = raw[3:] if raw.startswith(b"\xef\xbb\xbf") else raw
     try:
-        text = raw.decode("utf-8")
+        raw.decode("utf-8")
     except UnicodeDecodeError as err:
         line = raw.count(b"\n", 0, err.start) + 1
         raise InputError(f"{path}: line {line} is not UTF-8 text (byte {raw[err.start]:#04x}); "
                          f"a {kind} file of features must be plain UTF-8 text: check that it is "
                          f"the right file, or save it again as UTF-8") from None
-    lines, fields = _text_lines(raw, sep, path)
-    if not len(lines):
+    first_number, first = _first_line(raw)
+    if first is None:
         raise InputError(f"{path} holds only blank lines; write one line per frame")
-    first = text.split("\n", lines[0])[lines[0] - 1].rstrip("\r")
-    del text
-    import csv
-
     try:
         tokens = next(csv.reader([first], delimiter=sep))
     except csv.Error as err:
-        raise InputError(f"{path}: line {lines[0]} cannot be split into fields ({err}); check "
-                         f"the quoting") from None
+        raise InputError(f"{path}: line {first_number} cannot be split into fields ({err}); "
+                         f"check the quoting") from None
     has_header = not all(_looks_numeric(t) for t in tokens)
-    odd = np.flatnonzero(fields != fields[0])
-    if odd.size:
-        k = int(odd[0])
-        what = "the header" if has_header else "line " + str(lines[0])
-        raise InputError(f"{path}: line {lines[k]} has {fields[k]} value"
-                         f"{'s' if fields[k] != 1 else ''} but {what} has {fields[0]}; every line must hold one value per feature (is the file "
-                         f"cut short, or are two files joined?)")
-    data_lines = lines[1:] if has_header else lines
-    if not len(data_lines):
-        raise InputError(f"{path} has a header but no frames; write one line per frame below it")
     if has_header:
         seen = set()
         for n in (t.strip() for t in tokens):
@@ -793,32 +799,67 @@ def _read_text(path: str, **_):
                 raise InputError(f"{path}: the header names the column {n!r} twice; give every "
                                  f"feature a different name")
             seen.add(n)
+
+    def layout():
+        """Line numbers of the frames and the number of values per line, after checking that
+        every line holds the same number (one pass over the bytes; run when the fast parse
+        below needs an explanation, or when quotes could hide separators)."""
+        lines, fields = _text_lines(raw, sep, path)
+        odd = np.flatnonzero(fields != fields[0])
+        if odd.size:
+            k = int(odd[0])
+            what = "the header" if has_header else f"line {lines[0]}"
+            raise InputError(f"{path}: line {lines[k]} has {fields[k]} value"
+                             f"{'s' if fields[k] != 1 else ''} but {what} has {fields[0]}; every "
+                             f"line must hold one value per feature (is the file cut short, or "
+                             f"are two files joined?)")
+        frame_lines = lines[1:] if has_header else lines
+        if not len(frame_lines):
+            raise InputError(f"{path} has a header but no frames; write one line per frame "
+                             f"below it")
+        return frame_lines, int(fields[0])
+
+    # pandas reads quoted separators and a lone CR (a line break to it) differently from the
+    # line count: check the layout up front then; otherwise only to explain a failure
+    checked = layout() if b'"' in raw or raw.count(b"\r") != raw.count(b"\r\n") else None
     try:
-        frame = pd.read_csv(io.BytesIO(raw), sep=sep, header=0 if has_header else None,
-                            index_col=False, skip_blank_lines=True, encoding="utf-8")
+        with warnings.catch_warnings():
+            # "Length of header or names does not match length of data": rows longer than
+            # the header, which would lose values
+            warnings.simplefilter("error", pd.errors.ParserWarning)
+            frame = pd.read_csv(io.BytesIO(raw), sep=sep, header=0 if has_header else None,
+                                index_col=False, skip_blank_lines=True, encoding="utf-8")
     except Exception as err:  # pandas raises several parser error types
+        layout()  # names the first line with a different number of values, if any
         raise InputError(f"cannot parse {path} as {kind}: {' '.join(str(err).split())}; every "
                          f"line must hold one number per feature") from None
-    if frame.shape != (len(data_lines), fields[0]):
+    if frame.shape[0] == 0:
+        layout()
+    if checked is not None and frame.shape != (len(checked[0]), checked[1]):
         raise InputError(f"{path}: read {frame.shape[0]} frames x {frame.shape[1]} features "
-                         f"from {len(data_lines)} lines of {fields[0]} values; check the quoting "
-                         f"and the separator ({sep!r})")
+                         f"from {len(checked[0])} lines of {checked[1]} values; check the "
+                         f"quoting and the separator ({sep!r})")
     names = [str(c).strip() for c in frame.columns] if has_header else None
     for j, col in enumerate(frame.columns):
-        if frame[col].dtype.kind not in "fiub":
-            coerced = pd.to_numeric(frame[col], errors="coerce")
-            bad = np.flatnonzero(coerced.isna().to_numpy() & frame[col].notna().to_numpy())
+        if frame[col].dtype.kind not in "fiu":  # words, or true/false read as booleans
+            coerced = pd.to_numeric(frame[col].astype(object), errors="coerce")
+            bad = np.flatnonzero((coerced.isna().to_numpy() & frame[col].notna().to_numpy())
+                                 | (frame[col].dtype.kind == "b"))
             i = int(bad[0]) if bad.size else 0
             label = f"column {j} ({names[j]!r})" if names else f"column {j}"
-            raise InputError(f"{path}: frame {i} (line {data_lines[i]}) has {frame[col].iloc[i]!r} "
-                             f"in {label}; every value must be a number")
+            frame_lines, _ = layout()
+            raise InputError(f"{path}: frame {i} (line {frame_lines[i]}) has "
+                             f"{frame[col].iloc[i]!r} in {label}; every value must be a number")
     arr = frame.to_numpy(dtype=np.float64)
-    try:
-        check_finite_frames(arr, path, 0, names)
-    except InputError as err:
-        i = int(np.flatnonzero(~np.isfinite(arr).all(axis=1))[0])
-        raise InputError(str(err).replace(f"frame {i} ", f"frame {i} (line {data_lines[i]}) ",
-                                          1)) from None
+    finite = np.isfinite(arr).all(axis=1)
+    if not finite.all():
+        frame_lines, _ = layout()  # a short line reads as NaN: name it as such first
+        i = int(np.flatnonzero(~finite)[0])
+        try:
+            check_finite_frames(arr, path, 0, names)
+        except InputError as err:
+            raise InputError(str(err).replace(f"frame {i} ", f"frame {i} (line {frame_lines[i]}) ",
+                                              1)) from None
     return [arr], names
 
 

@@ -148,10 +148,11 @@ def test_missing_file_and_empty_glob(tmp_path):
         load_trajectories([])
 
 
-def test_unknown_type(tmp_path):
-    path = tmp_path / "run.xlsx"
-    path.write_text("x")
-    with pytest.raises(InputError, match=r"unknown file type '\.xlsx'"):
+@pytest.mark.parametrize("suffix", [".xlsx", ".txt", ".xvg", ".dat"])
+def test_unknown_type(tmp_path, suffix):
+    path = tmp_path / f"run{suffix}"
+    path.write_bytes(b"# a text table\n1 2\n\x00\xff binary junk")
+    with pytest.raises(InputError, match=rf"run\{suffix}: unknown file type '\{suffix}'; supported: .npy"):
         load_trajectories(path)
 
 
