@@ -849,7 +849,7 @@ def _read_text(path: str, **_):
             label = f"column {j} ({names[j]!r})" if names else f"column {j}"
             frame_lines, _ = layout()
             raise InputError(f"{path}: frame {i} (line {frame_lines[i]}) has "
-                             f"{frame[col].iloc[i]!r} in {label}; every value must be a number")
+                             f"{str(frame[col].iloc[i])!r} in {label}; every value must be a number")
     arr = frame.to_numpy(dtype=np.float64)
     finite = np.isfinite(arr).all(axis=1)
     if not finite.all():

@@ -412,3 +412,10 @@ def test_text_carriage_return_inside_a_line(tmp_path):
     (tmp_path / "cr.csv").write_bytes(b"1,2\r\n3,4\r5,6\n")
     with pytest.raises(InputError, match=r"cr\.csv: line 2 holds a carriage return"):
         load_trajectories(tmp_path / "cr.csv")
+
+
+def test_text_words_true_false_are_not_numbers(tmp_path):
+    # pandas reads a column of True/False as booleans, which would become 1.0/0.0
+    (tmp_path / "flags.csv").write_text("a,b\nTrue,1\nFalse,2\n")
+    with pytest.raises(InputError, match=r"flags\.csv: frame 0 \(line 2\) has 'True' in column 0 \('a'\)"):
+        load_trajectories(tmp_path / "flags.csv")
