@@ -668,11 +668,11 @@ def _check_xtc_decodes(path: str, n_frames: int) -> None:
         return
     err_lines = [line for line in done.stderr.splitlines() if line.strip()]
     if done.returncode < 0:
-        raise _corrupt(path, f"the XTC decoder crashed on its compressed coordinates (signal "
+        raise _corrupt(path, f"the XTC decoder crashed on the compressed coordinates (signal "
                              f"{-done.returncode})")
     if done.returncode != 0 or any("error" in line.lower() for line in err_lines):
         why = " ".join((err_lines or ["no message"])[-1].split())
-        raise _corrupt(path, f"its compressed coordinates cannot be decoded ({why})")
+        raise _corrupt(path, f"the compressed coordinates cannot be decoded ({why})")
     decoded = done.stdout.split()[-1] if done.stdout.split() else ""
     if decoded != str(n_frames):
         raise _corrupt(path, f"decoding gave {decoded or 'no'} frames of the {n_frames} the file "
