@@ -647,7 +647,7 @@ print(n)
 def _check_xtc_decodes(path: str, n_frames: int) -> None:
     """Decode the compressed coordinates of an XTC file once in a child process.
 
-    Damaged compressed data can make mdtraj's XTC decoder write past its buffers and crash
+    Damaged compressed data can make mdtraj's XTC decoder write past the end of a buffer and crash
     the interpreter (a segmentation fault, measured on bit-flipped files) or return garbage
     after printing "Buffer overrun during decompression"; neither can be caught in-process.
     The child costs one interpreter start (about 0.5-1.5 s) per XTC file.
