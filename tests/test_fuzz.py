@@ -1202,3 +1202,20 @@ def test_cli_build_on_a_malformed_file_as_a_user_runs_it(tmp_path):
     assert done.returncode == 1, done.stderr
     assert done.stderr.startswith("msmkit build: error:") and "bad.npy" in done.stderr
     assert "Traceback" not in done.stderr and not (tmp_path / "m.npz").exists()
+
+
+def test_damaged_xtc_that_crashes_the_decoder_is_refused(tmp_path, md_files):
+    """One flipped byte (byte 1033 XOR 7 of this 20-frame file, found by fuzzing) makes mdtraj's
+    XTC decoder crash the interpreter with a segmentation fault; the reader decodes XTC files
+    in a child process first, so the caller gets InputError and lives on."""
+    topology, raw, _ = md_files
+    blob = bytearray(raw[".xtc"])
+    blob[1033] ^= 7
+    path = tmp_path / "crash.xtc"
+    path.write_bytes(bytes(blob))
+    direct = subprocess.run([sys.executable, "-c", "import sys\nfrom mdtraj.formats import XTCTrajectoryFile\n"
+                             "with XTCTrajectoryFile(sys.argv[1]) as fh:\n    fh.read()\n", str(path)],
+                            capture_output=True)
+    assert direct.returncode < 0  # the reference: an unprotected read dies on a signal
+    with pytest.raises(InputError, match=r"crash\.xtc is truncated or corrupt: the XTC decoder crashed"):
+        mk.load_trajectories(path, topology=topology, atom_pairs=MD_PAIRS)
