@@ -984,7 +984,8 @@ def test_text_token_fuzz(tmp_path, n_cols, header, sep, rows, newline, encoding)
             return None
         return v if math.isfinite(v) and tok.strip() == tok and "_" not in tok else None
 
-    rows = [r for r in rows if sep.join(r) != ""]  # empty lines are skipped (blank lines)
+    rows = [sep.join(r).split(sep) for r in rows]  # the fields as written ("1,5" is two in a CSV)
+    rows = [r for r in rows if r != [""]]  # empty lines are skipped (blank lines)
     width = n_cols if header else (len(rows[0]) if rows else 0)
     valid = (encoding != "utf-16" and rows and width >= 1
              and all(len(r) == width and all(number(t) is not None for t in r) for r in rows))
@@ -1206,8 +1207,10 @@ def test_cli_build_on_a_malformed_file_as_a_user_runs_it(tmp_path):
 
 def test_damaged_xtc_that_crashes_the_decoder_is_refused(tmp_path, md_files):
     """One flipped byte (byte 1033 XOR 7 of this 20-frame file, found by fuzzing) makes mdtraj's
-    XTC decoder crash the interpreter with a segmentation fault; the reader decodes XTC files
-    in a child process first, so the caller gets InputError and lives on."""
+    XTC decoder overrun a buffer: the interpreter dies with a segmentation fault in about 6 of
+    10 runs (measured; it depends on the memory layout), else a RuntimeError comes back. The
+    reader decodes XTC files in a child process first, so the caller gets InputError and
+    lives on (run 10 times here, so that the crash is met with near certainty)."""
     topology, raw, _ = md_files
     blob = bytearray(raw[".xtc"])
     blob[1033] ^= 7
@@ -1216,6 +1219,8 @@ def test_damaged_xtc_that_crashes_the_decoder_is_refused(tmp_path, md_files):
     direct = subprocess.run([sys.executable, "-c", "import sys\nfrom mdtraj.formats import XTCTrajectoryFile\n"
                              "with XTCTrajectoryFile(sys.argv[1]) as fh:\n    fh.read()\n", str(path)],
                             capture_output=True)
-    assert direct.returncode < 0  # the reference: an unprotected read dies on a signal
-    with pytest.raises(InputError, match=r"crash\.xtc is truncated or corrupt: the XTC decoder crashed"):
-        mk.load_trajectories(path, topology=topology, atom_pairs=MD_PAIRS)
+    assert direct.returncode != 0  # the reference: an unprotected read fails (or dies on a signal)
+    for _ in range(10):
+        with pytest.raises(InputError, match=r"crash\.xtc is truncated or corrupt: (the XTC decoder crashed|"
+                                             r"the compressed coordinates cannot be decoded)"):
+            mk.load_trajectories(path, topology=topology, atom_pairs=MD_PAIRS)
