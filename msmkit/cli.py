@@ -104,8 +104,11 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
         f"  estimator:         {'reversible' if model.reversible else 'non-reversible'} maximum likelihood",
         f"  counts kept:       {100 * model.kept_fraction:.4g}% of transitions",
     ]
-    ts = model.relaxation_times(min(5, model.n_states - 1))
-    lines.append(f"  slowest implied timescales [{model.unit}]: " + ", ".join(f"{t:.4g}" for t in ts))
+    if model.n_states > 1:
+        ts = model.relaxation_times(min(5, model.n_states - 1))
+        lines.append(f"  slowest implied timescales [{model.unit}]: " + ", ".join(f"{t:.4g}" for t in ts))
+    else:
+        lines.append("  slowest implied timescales: none (a single state has no process to relax)")
     pops = model.populations().nlargest(5, "population")
     lines.append("  most populated states (label: population):")
     lines += [f"    {int(r.state)}: {r.population:.4f}" for r in pops.itertuples()]
@@ -113,6 +116,8 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
         lines.append(f"  suggested lag:     {scan.suggested_lag}")
         lines.append(f"  reason:            {scan.reason}")
         lines += [f"  note: {n}" for n in scan.notes]
+    if macro is None and macro_reason:
+        lines.append(f"  macrostates (PCCA+): none -- {macro_reason}")
     if macro is not None:
         lines += _macro_lines(model, macro, macro_reason)
     if ck is not None:
@@ -324,8 +329,9 @@ def cmd_build(args) -> int:
     extras = _extras(tica, micro)
     if macro is not None:
         extras["affinity"] = macro.affinity
+    summary = summary_text(model, macro=macro, macro_reason=reason).rstrip()  # before saving: a failure here must leave no file
     path = model.save(out, overwrite=args.force, **extras)
-    _say(args, summary_text(model, macro=macro, macro_reason=reason).rstrip())
+    _say(args, summary)
     _say(args, f"wrote {path}")
     return EXIT_OK
 
@@ -360,10 +366,13 @@ def cmd_info(args) -> int:
     model = load_model(args.model)
     macro, reason = None, ""
     if model.n_states > 2:
-        n_sets, reason = model.suggest_n_macrostates()
-        if "affinity" in model.extras:
-            n_sets, reason = model.extras["affinity"].shape[1], "as stored with the model"
-        macro = model.find_macrostates(max(2, n_sets))
+        try:
+            n_sets, reason = model.suggest_n_macrostates()
+            if "affinity" in model.extras:
+                n_sets, reason = model.extras["affinity"].shape[1], "as stored with the model"
+            macro = model.find_macrostates(max(2, n_sets))
+        except InputError as exc:  # a sound model PCCA+ cannot split (e.g. a periodic chain)
+            macro, reason = None, f"not computed: {exc}"
     print(summary_text(model, macro=macro, macro_reason=reason), end="")
     meta = model.metadata
     if "created" in meta:

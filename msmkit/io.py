@@ -29,9 +29,14 @@ MD formats (``.xtc``, ``.dcd``, ``.trr``, ``.pdb``, ``.nc``, ``.gro``, ..., also
 
 Checks
 ------
-Missing files, globs matching nothing, unreadable, empty or truncated files, unknown file
-types, runs with differing numbers of features and NaN/infinite values all raise
-:class:`~msmkit.errors.InputError` naming the file. Files held in memory (npz, csv/tsv, MD
+Missing files, globs matching nothing, unreadable, empty, truncated or damaged files, unknown
+file types, runs with differing numbers of features (naming both files and counts) and
+NaN/infinite values all raise :class:`~msmkit.errors.InputError` naming the file. Nothing is
+unpickled: ``.npy`` headers are parsed as text and every ``.npz`` member is checked from the
+header (plain numeric 2-D array, size matching the archive, not encrypted) before the data
+are read. Text files are checked line by line first: every non-blank line must hold the same
+number of fields (no padding of short rows with NaN, no column taken as an index), the text
+must be UTF-8, header names unique; errors give the line number. Files held in memory (npz, csv/tsv, MD
 formats) are checked for NaN/infinity when loaded; lazy runs (npy, HDF5) are checked as each
 chunk is read, so the error names the file and the first bad frame at the first read that
 meets it (``TrajectorySet.check_values()`` reads everything once to check up front).
@@ -40,7 +45,11 @@ from __future__ import annotations
 
 import glob as _glob
 import importlib.util
+import io
+import math
 import os
+import zipfile
+import zlib
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -330,8 +339,12 @@ class _HDF5Run(LazyRun):
         try:
             with h5py.File(self._path, "r") as fh:
                 return np.asarray(fh[self._key][start:stop])
-        except (OSError, KeyError) as err:
-            raise _vanished(self.source, err) from None
+        except (OSError, KeyError, RuntimeError, ValueError) as err:
+            if not os.path.isfile(self._path):
+                raise _vanished(self.source, err) from None
+            raise InputError(f"{self.source}: frames {start}..{stop - 1} cannot be read "
+                             f"({type(err).__name__}: {' '.join(str(err).split())}); the file "
+                             f"is damaged or was changed after loading: write it again") from None
 
 
 # ---------------------------------------------------------------------------------------------
@@ -345,7 +358,8 @@ def _check_names(names, n_features: int, where: str) -> tuple[str, ...]:
         raise InputError(f"feature_names must be a list of strings, but got {brief(names)}") from None
     if len(names) != n_features:
         raise InputError(f"feature_names has {len(names)} names but {where} has {n_features} "
-                         f"features; give one name per feature (column)")
+                         f"features; give one name per feature (column), or pass feature_names= "
+                         f"to override names stored in a file")
     seen = set()
     for n in names:
         if n in seen:
@@ -540,67 +554,153 @@ def _check_numeric(dtype, path: str) -> None:
                          f"save the features as a float array")
 
 
-def _read_npy(path: str, **_):
-    _check_not_empty(path)
+#: Largest .npy header read (bytes); numpy writes headers of a few hundred bytes.
+MAX_NPY_HEADER = 10_000
+
+
+def _npy_header(fh, where: str):
+    """``(shape, fortran_order, dtype)`` from the header at the position of ``fh``, checked to
+    describe a plain numeric 2-D array; the header text is parsed, never run or unpickled."""
     fmt = np.lib.format
     try:
+        version = fmt.read_magic(fh)
+        if version == (1, 0):
+            shape, fortran, dtype = fmt.read_array_header_1_0(fh, max_header_size=MAX_NPY_HEADER)
+        elif version == (2, 0):
+            shape, fortran, dtype = fmt.read_array_header_2_0(fh, max_header_size=MAX_NPY_HEADER)
+        else:
+            raise ValueError(f"unsupported .npy format version {version[0]}.{version[1]}")
+    except (OSError, zipfile.BadZipFile, zlib.error):
+        raise  # reading failed (an .npz member): reported by the caller
+    except Exception as err:  # numpy's header parser raises ValueError, SyntaxError, TokenError, ...
+        raise InputError(f"{where} is not a readable .npy array (the header cannot be parsed: "
+                         f"{type(err).__name__}: {' '.join(str(err).split())}); save arrays with "
+                         f"numpy.save") from None
+    if dtype.hasobject:
+        raise InputError(f"{where} holds Python objects, which would need pickle and are never "
+                         f"loaded; save the features as a float array")
+    _check_numeric(dtype, where)
+    if any(d < 0 for d in shape):
+        raise InputError(f"{where}: the header declares an impossible shape {tuple(shape)}; the "
+                         f"file is damaged, save it again with numpy.save")
+    _check_shape(shape, where)
+    return tuple(shape), bool(fortran), dtype
+
+
+def _read_npy(path: str, **_):
+    _check_not_empty(path)
+    try:
         with open(path, "rb") as fh:
-            version = fmt.read_magic(fh)
-            if version == (1, 0):
-                shape, fortran, dtype = fmt.read_array_header_1_0(fh)
-            elif version == (2, 0):
-                shape, fortran, dtype = fmt.read_array_header_2_0(fh)
-            else:
-                raise ValueError(f"unsupported .npy format version {version}")
+            shape, fortran, dtype = _npy_header(fh, path)
             offset = fh.tell()
+        size = os.path.getsize(path)
     except OSError as err:
         raise _open_error(path, err) from None
-    except ValueError as err:
-        raise InputError(f"{path} is not a readable .npy file ({err}); save arrays with "
-                         f"numpy.save") from None
-    _check_numeric(dtype, path)
-    _check_shape(shape, path)
-    needed = offset + int(np.prod(shape)) * dtype.itemsize
-    if os.path.getsize(path) < needed:
-        raise InputError(f"{path} is truncated: the header promises {shape[0]} frames x "
-                         f"{shape[1]} features ({needed} bytes) but the file has "
-                         f"{os.path.getsize(path)} bytes")
+    needed = offset + math.prod(shape) * dtype.itemsize  # Python integers: no overflow
+    if size != needed:  # numpy.save writes exactly the header and the data
+        state = "truncated" if size < needed else "damaged (longer than the header declares)"
+        raise InputError(f"{path} is {state}: the header promises {shape[0]} frames x "
+                         f"{shape[1]} features ({needed} bytes) but the file has {size} bytes; "
+                         f"write it again with numpy.save")
     return [_NpyRun(path, offset, shape, dtype, fortran)], None
 
 
-def _read_npz(path: str, **_):
-    import zipfile
+def _npz_member(zf, info, path: str) -> np.ndarray:
+    """One member of an .npz archive, checked from the header before the data are read."""
+    where = f"{path}:{info.filename[:-4]}"
+    if info.flag_bits & 0x1:
+        raise InputError(f"{where} is encrypted (password protected); msmkit reads plain archives "
+                         f"only: save the runs again with numpy.savez")
+    if info.compress_type not in (zipfile.ZIP_STORED, zipfile.ZIP_DEFLATED):
+        raise InputError(f"{where} uses zip compression method {info.compress_type}; numpy.savez "
+                         f"(no compression) and numpy.savez_compressed (deflate) are read")
+    with zf.open(info) as fh:
+        shape, fortran, dtype = _npy_header(fh, where)
+        nbytes = math.prod(shape) * dtype.itemsize
+        if fh.tell() + nbytes != info.file_size:
+            raise InputError(f"{where} declares {shape[0]} frames x {shape[1]} features "
+                             f"({nbytes} bytes) but holds {max(info.file_size - fh.tell(), 0)} "
+                             f"bytes of data: the archive is damaged, save it again")
+        try:
+            out = np.empty(math.prod(shape), dtype=dtype)
+        except (MemoryError, ValueError):
+            raise InputError(f"{where} needs {nbytes / 2 ** 30:.3g} GiB of memory; .npz runs "
+                             f"are read into memory, save large runs as .npy files (read on "
+                             f"demand)") from None
+        view = out.view(np.uint8).reshape(-1)
+        got = 0
+        while got < nbytes:
+            k = fh.readinto(memoryview(view[got:got + (1 << 24)]))
+            if not k:
+                break
+            got += k
+        if got != nbytes:
+            raise InputError(f"{where} ends after {got} of {nbytes} bytes: the archive is "
+                             f"truncated or damaged, save it again")
+    out = out.reshape(shape, order="F" if fortran else "C")
+    if not out.dtype.isnative:
+        out = out.astype(out.dtype.newbyteorder("="))
+    return out
 
+
+def _read_npz(path: str, **_):
     _check_not_empty(path)
     if not zipfile.is_zipfile(path):
-        raise InputError(f"{path} is not a readable .npz file (not a zip archive); save runs "
-                         f"with numpy.savez")
-    runs, names = [], None
+        raise InputError(f"{path} is not a readable .npz file (not a zip archive: truncated, "
+                         f"or not written by numpy.savez); save the runs again with numpy.savez")
+    runs, keys, names = [], [], None
     try:
-        with np.load(path, allow_pickle=False) as data:
-            keys = list(data.files)
-            for key in keys:
-                arr = data[key]
+        with zipfile.ZipFile(path) as zf:
+            members = zf.infolist()
+            odd = [m.filename for m in members if not m.filename.endswith(".npy")]
+            if odd:
+                raise InputError(f"{path} holds {brief(odd, 80)}, which is not a numpy array; an "
+                                 f".npz of runs holds only arrays (numpy.savez): remove the other "
+                                 f"files from the archive")
+            for info in members:
+                key = info.filename[:-4]
                 if key == "feature_names":
-                    names = [str(n) for n in np.asarray(arr).ravel()]
+                    names = _npz_feature_names(zf, info, path)
                     continue
+                arr = _npz_member(zf, info, path)
                 where = f"{path}:{key}"
-                _check_numeric(arr.dtype, where)
-                _check_shape(arr.shape, where)
                 arr = arr if arr.dtype.kind == "f" else arr.astype(np.float64)
                 check_finite_frames(arr, where, 0)
+                if runs and arr.shape[1] != runs[0].shape[1]:
+                    raise InputError(f"{path}: array {keys[0]!r} has {runs[0].shape[1]} features "
+                                     f"but {key!r} has {arr.shape[1]}; every run of a file must "
+                                     f"have the same features")
                 runs.append(arr)
-    except (zipfile.BadZipFile, OSError, EOFError) as err:
-        raise InputError(f"{path} is not a readable .npz file ({err}); save runs with "
+                keys.append(key)
+    except InputError:
+        raise
+    except (zipfile.BadZipFile, zipfile.LargeZipFile, OSError, EOFError, zlib.error,
+            RuntimeError, NotImplementedError, ValueError, OverflowError) as err:
+        # zlib.error: damaged compressed data; RuntimeError: encryption; EOFError: truncation
+        raise InputError(f"{path} is not a readable .npz file ({type(err).__name__}: "
+                         f"{' '.join(str(err).split())}); save the runs again with "
                          f"numpy.savez") from None
-    except ValueError as err:
-        if isinstance(err, InputError):
-            raise
-        raise InputError(f"{path} holds data that cannot be read safely ({err}); store plain "
-                         f"numeric arrays") from None
     if not runs:
-        raise InputError(f"{path} holds no runs (no arrays besides feature_names)")
+        raise InputError(f"{path} holds no runs (no arrays besides feature_names); save each "
+                         f"run as one frames x features array")
     return runs, names
+
+
+def _npz_feature_names(zf, info, path: str) -> list[str]:
+    """The ``feature_names`` member: a flat array of strings (read without pickle)."""
+    where = f"{path}:feature_names"
+    with zf.open(info) as fh:
+        try:
+            arr = np.lib.format.read_array(fh, allow_pickle=False,
+                                           max_header_size=MAX_NPY_HEADER)
+        except Exception as err:  # a damaged header or data, or an object array
+            raise InputError(f"{where} cannot be read as an array of strings ({type(err).__name__}"
+                             f": {' '.join(str(err).split())}); save the names as "
+                             f"numpy.array(['name', ...])") from None
+    if arr.dtype.kind not in "US" or arr.ndim != 1:
+        raise InputError(f"{where} must be a flat array of strings, but has dtype {arr.dtype} "
+                         f"and shape {arr.shape}; save the names as numpy.array(['name', ...])")
+    return [n.decode("utf-8", "replace") if isinstance(n, bytes) else str(n) for n in arr]
 
 
 def _looks_numeric(token: str) -> bool:
@@ -611,43 +711,155 @@ def _looks_numeric(token: str) -> bool:
         return token.strip().lower() in {"", "nan", "inf", "-inf", "+inf", "na"}
 
 
+def _text_lines(raw: bytes, sep: str, path: str) -> tuple[np.ndarray, np.ndarray]:
+    """Line numbers (1-based) of the non-blank lines of ``raw`` and the number of fields on
+    each; separators inside quotes are not counted. Lines end with ``\\n`` or ``\\r\\n``."""
+    data = np.frombuffer(raw, dtype=np.uint8)
+    cr = np.flatnonzero(data == 13)
+    lone = cr[(cr + 1 >= len(data)) | (data[np.minimum(cr + 1, len(data) - 1)] != 10)]
+    if lone.size:
+        line = raw.count(b"\n", 0, int(lone[0])) + 1
+        raise InputError(f"{path}: line {line} holds a carriage return that does not end the "
+                         f"line; end lines with a newline (LF or CR LF) and remove other "
+                         f"control characters")
+    if b'"' in raw:  # quoted fields (names with commas): let the csv module split them
+        import csv
+
+        text = raw.decode("utf-8").split("\n")
+        try:
+            rows = [(k + 1, len(f)) for k, f in enumerate(csv.reader(text, delimiter=sep)) if f]
+        except csv.Error as err:
+            raise InputError(f"{path}: the quoting cannot be parsed ({err}); quote whole "
+                             f"fields only, with a closing quote on the same line") from None
+        rows = np.array(rows, dtype=np.int64).reshape(-1, 2)
+        return rows[:, 0], rows[:, 1]
+    if not raw:
+        return np.empty(0, np.int64), np.empty(0, np.int64)
+    ends = np.flatnonzero(data == 10)
+    if not raw.endswith(b"\n"):
+        ends = np.append(ends, len(data))
+    starts = np.concatenate([[0], ends[:-1] + 1])
+    seps = np.flatnonzero(data == ord(sep))
+    fields = np.searchsorted(seps, ends) - np.searchsorted(seps, starts) + 1
+    length = ends - starts
+    cr = (length > 0) & (data[np.maximum(ends - 1, 0)] == 13)
+    blank = (length - cr) == 0
+    lines = np.arange(1, len(ends) + 1)
+    return lines[~blank], fields[~blank]
+
+
+def _first_line(raw: bytes) -> tuple[int, str | None]:
+    """(1-based number, text) of the first non-blank line of ``raw``, or (0, None)."""
+    start, number = 0, 1
+    while start < len(raw):
+        stop = raw.find(b"\n", start)
+        stop = len(raw) if stop < 0 else stop
+        line = raw[start:stop].rstrip(b"\r")
+        if line:
+            return number, line.decode("utf-8")
+        start, number = stop + 1, number + 1
+    return 0, None
+
+
 def _read_text(path: str, **_):
+    import csv
+    import warnings
+
     import pandas as pd
 
     sep = TEXT_SUFFIXES[Path(path).suffix.lower()]
+    kind = "CSV" if sep == "," else "TSV"
     _check_not_empty(path)
     try:
-        with open(path, encoding="utf-8-sig") as fh:
-            first = ""
-            for line in fh:
-                if line.strip():
-                    first = line.rstrip("\r\n")
-                    break
-    except (OSError, UnicodeDecodeError) as err:
+        with open(path, "rb") as fh:
+            raw = fh.read()
+    except OSError as err:
         raise _open_error(path, err) from None
-    if not first:
-        raise InputError(f"{path} holds only blank lines")
-    tokens = first.split(sep)
-    has_header = not all(_looks_numeric(t) for t in tokens)
+    raw = raw[3:] if raw.startswith(b"\xef\xbb\xbf") else raw
     try:
-        frame = pd.read_csv(path, sep=sep, header=0 if has_header else None,
-                            skip_blank_lines=True, encoding="utf-8-sig")
+        raw.decode("utf-8")
+    except UnicodeDecodeError as err:
+        line = raw.count(b"\n", 0, err.start) + 1
+        raise InputError(f"{path}: line {line} is not UTF-8 text (byte {raw[err.start]:#04x}); "
+                         f"a {kind} file of features must be plain UTF-8 text: check that it is "
+                         f"the right file, or save it again as UTF-8") from None
+    first_number, first = _first_line(raw)
+    if first is None:
+        raise InputError(f"{path} holds only blank lines; write one line per frame")
+    try:
+        tokens = next(csv.reader([first], delimiter=sep))
+    except csv.Error as err:
+        raise InputError(f"{path}: line {first_number} cannot be split into fields ({err}); "
+                         f"check the quoting") from None
+    has_header = not all(_looks_numeric(t) for t in tokens)
+    if has_header:
+        seen = set()
+        for n in (t.strip() for t in tokens):
+            if n in seen:
+                raise InputError(f"{path}: the header names the column {n!r} twice; give every "
+                                 f"feature a different name")
+            seen.add(n)
+
+    def layout():
+        """Line numbers of the frames and the number of values per line, after checking that
+        every line holds the same number (one pass over the bytes; run when the fast parse
+        below needs an explanation, or when quotes could hide separators)."""
+        lines, fields = _text_lines(raw, sep, path)
+        odd = np.flatnonzero(fields != fields[0])
+        if odd.size:
+            k = int(odd[0])
+            what = "the header" if has_header else f"line {lines[0]}"
+            raise InputError(f"{path}: line {lines[k]} has {fields[k]} value"
+                             f"{'s' if fields[k] != 1 else ''} but {what} has {fields[0]}; every "
+                             f"line must hold one value per feature (is the file cut short, or "
+                             f"are two files joined?)")
+        frame_lines = lines[1:] if has_header else lines
+        if not len(frame_lines):
+            raise InputError(f"{path} has a header but no frames; write one line per frame "
+                             f"below it")
+        return frame_lines, int(fields[0])
+
+    # pandas reads quoted separators and a lone CR (a line break to it) differently from the
+    # line count: check the layout up front then; otherwise only to explain a failure
+    checked = layout() if b'"' in raw or raw.count(b"\r") != raw.count(b"\r\n") else None
+    try:
+        with warnings.catch_warnings():
+            # "Length of header or names does not match length of data": rows longer than
+            # the header, which would lose values
+            warnings.simplefilter("error", pd.errors.ParserWarning)
+            frame = pd.read_csv(io.BytesIO(raw), sep=sep, header=0 if has_header else None,
+                                index_col=False, skip_blank_lines=True, encoding="utf-8")
     except Exception as err:  # pandas raises several parser error types
-        raise InputError(f"cannot parse {path} as {'CSV' if sep == ',' else 'TSV'}: {err}") from None
+        layout()  # names the first line with a different number of values, if any
+        raise InputError(f"cannot parse {path} as {kind}: {' '.join(str(err).split())}; every "
+                         f"line must hold one number per feature") from None
     if frame.shape[0] == 0:
-        raise InputError(f"{path} has a header but no frames")
+        layout()
+    if checked is not None and frame.shape != (len(checked[0]), checked[1]):
+        raise InputError(f"{path}: read {frame.shape[0]} frames x {frame.shape[1]} features "
+                         f"from {len(checked[0])} lines of {checked[1]} values; check the "
+                         f"quoting and the separator ({sep!r})")
     names = [str(c).strip() for c in frame.columns] if has_header else None
     for j, col in enumerate(frame.columns):
-        if frame[col].dtype.kind not in "fiub":
-            coerced = pd.to_numeric(frame[col], errors="coerce")
-            bad = np.flatnonzero(coerced.isna().to_numpy() & frame[col].notna().to_numpy())
+        if frame[col].dtype.kind not in "fiu":  # words, or true/false read as booleans
+            coerced = pd.to_numeric(frame[col].astype(object), errors="coerce")
+            bad = np.flatnonzero((coerced.isna().to_numpy() & frame[col].notna().to_numpy())
+                                 | (frame[col].dtype.kind == "b"))
             i = int(bad[0]) if bad.size else 0
-            line = i + (2 if has_header else 1)
             label = f"column {j} ({names[j]!r})" if names else f"column {j}"
-            raise InputError(f"{path}: frame {i} (line {line}) has {frame[col].iloc[i]!r} in "
-                             f"{label}; every value must be a number")
+            frame_lines, _ = layout()
+            raise InputError(f"{path}: frame {i} (line {frame_lines[i]}) has "
+                             f"{str(frame[col].iloc[i])!r} in {label}; every value must be a number")
     arr = frame.to_numpy(dtype=np.float64)
-    check_finite_frames(arr, path, 0, names)
+    finite = np.isfinite(arr).all(axis=1)
+    if not finite.all():
+        frame_lines, _ = layout()  # a short line reads as NaN: name it as such first
+        i = int(np.flatnonzero(~finite)[0])
+        try:
+            check_finite_frames(arr, path, 0, names)
+        except InputError as err:
+            raise InputError(str(err).replace(f"frame {i} ", f"frame {i} (line {frame_lines[i]}) ",
+                                              1)) from None
     return [arr], names
 
 
@@ -660,46 +872,71 @@ def _is_md_hdf5(fh) -> bool:
 def _read_hdf5(path: str, *, key=None, **md_options):
     h5py = require_optional("h5py", "hdf5", "Reading HDF5 files")
     _check_not_empty(path)
+    if key is not None and not (isinstance(key, str) or (
+            isinstance(key, (list, tuple)) and key and all(isinstance(k, str) for k in key))):
+        raise InputError(f"key must be an HDF5 dataset path or a list of them, but got "
+                         f"{brief(key)}")
     try:
         fh = h5py.File(path, "r")
     except OSError as err:
-        raise InputError(f"{path} is not a readable HDF5 file ({err})") from None
-    if key is None and _is_md_hdf5(fh):
-        fh.close()
-        if md_options.get("topology") is not None:
-            raise InputError(f"topology: {path} is an MD trajectory that carries a topology "
-                             f"inside; leave the topology out (load it apart from files that "
-                             f"need one)")
-        if importlib.util.find_spec("tables") is None:
-            raise ImportError(f"{path} is an mdtraj HDF5 trajectory (coordinates and a "
-                              f"topology, not features); mdtraj reads it with PyTables: "
-                              f"pip install tables")
-        return _read_md(path, **md_options)
-    with fh:
-        if key is None:
-            keys = []
-            fh.visititems(lambda name, obj: keys.append(name)
-                          if isinstance(obj, h5py.Dataset) and obj.ndim == 2
-                          and obj.dtype.kind in "fiub" else None)
-            keys.sort()
-            if not keys:
-                raise InputError(f"{path} holds no 2-D numeric dataset; store each run as a "
-                                 f"frames x features dataset")
-        else:
-            keys = [key] if isinstance(key, str) else list(key)
-        runs, names = [], None
-        for k in keys:
-            if k not in fh or not isinstance(fh[k], h5py.Dataset):
-                raise InputError(f"key={k!r}: {path} has no dataset of that name; datasets "
-                                 f"there: {brief(sorted(_h5_datasets(fh, h5py)), 200)}")
-            ds = fh[k]
-            _check_numeric(ds.dtype, f"{path}:{k}")
-            _check_shape(ds.shape, f"{path}:{k}", "the dataset")
-            runs.append(_HDF5Run(path, k, ds.shape, ds.dtype))
-            ds_names = ds.attrs.get("feature_names", fh.attrs.get("feature_names"))
-            if ds_names is not None and names is None:
-                names = [n.decode() if isinstance(n, bytes) else str(n)
-                         for n in np.asarray(ds_names).ravel()]
+        raise InputError(f"{path} is not a readable HDF5 file ({err}); check that it is the "
+                         f"right file and complete") from None
+    try:
+        with fh:
+            if key is None and _is_md_hdf5(fh):
+                md_file = True
+            else:
+                md_file = False
+                runs, names = _hdf5_runs(fh, path, key, h5py)
+    except InputError:
+        raise
+    except (OSError, RuntimeError, KeyError, ValueError, TypeError) as err:
+        # h5py raises these for damaged metadata (B-trees, heaps, headers)
+        raise InputError(f"{path}: the HDF5 file is damaged ({type(err).__name__}: "
+                         f"{' '.join(str(err).split())}); write it again") from None
+    if not md_file:
+        return runs, names
+    if md_options.get("topology") is not None:
+        raise InputError(f"topology: {path} is an MD trajectory that carries a topology "
+                         f"inside; leave the topology out (load it apart from files that "
+                         f"need one)")
+    if importlib.util.find_spec("tables") is None:
+        raise ImportError(f"{path} is an mdtraj HDF5 trajectory (coordinates and a "
+                          f"topology, not features); mdtraj reads it with PyTables: "
+                          f"pip install tables")
+    return _read_md(path, **md_options)
+
+
+def _hdf5_runs(fh, path: str, key, h5py):
+    """Lazy runs and feature names of the feature datasets of an open HDF5 file."""
+    if key is None:
+        keys = []
+        fh.visititems(lambda name, obj: keys.append(name)
+                      if isinstance(obj, h5py.Dataset) and obj.ndim == 2
+                      and obj.dtype.kind in "fiub" else None)
+        keys.sort()
+        if not keys:
+            raise InputError(f"{path} holds no 2-D numeric dataset; store each run as a "
+                             f"frames x features dataset")
+    else:
+        keys = [key] if isinstance(key, str) else list(key)
+    runs, names = [], None
+    for k in keys:
+        if k not in fh or not isinstance(fh[k], h5py.Dataset):
+            raise InputError(f"key={k!r}: {path} has no dataset of that name; datasets "
+                             f"there: {brief(sorted(_h5_datasets(fh, h5py)), 200)}")
+        ds = fh[k]
+        _check_numeric(ds.dtype, f"{path}:{k}")
+        _check_shape(ds.shape, f"{path}:{k}", "the dataset")
+        if runs and ds.shape[1] != runs[0].shape[1]:
+            raise InputError(f"{path}: dataset {keys[0]!r} has {runs[0].shape[1]} features but "
+                             f"{k!r} has {ds.shape[1]}; every run of a file must have the same "
+                             f"features (key= picks datasets)")
+        runs.append(_HDF5Run(path, k, ds.shape, ds.dtype))
+        ds_names = ds.attrs.get("feature_names", fh.attrs.get("feature_names"))
+        if ds_names is not None and names is None:
+            names = [n.decode("utf-8", "replace") if isinstance(n, bytes) else str(n)
+                     for n in np.asarray(ds_names).ravel()]
     return runs, names
 
 
@@ -922,8 +1159,9 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
                                  if read_remotely is None else read_remotely[path])
         if details:
             md_details.append((path, details))
-        if file_names is not None:
-            file_names = tuple(file_names)
+        if file_names is not None and feature_names is None:
+            file_names = _check_names(file_names, file_runs[0].shape[1],
+                                      f"{path} (feature names stored in the file)")
             if names is None:
                 names, names_from = file_names, path
             elif file_names != names and feature_names is None:
@@ -935,10 +1173,12 @@ def load_trajectories(source, *, feature_names=None, key=None, dt=None, unit=Non
             d0 = runs[0].shape[1] if hasattr(runs[0], "shape") else np.shape(runs[0])[1]
             for r in file_runs:
                 if r.shape[1] != d0:
-                    first = getattr(runs[0], "source", None) or "the first run"
+                    first = (getattr(runs[0], "source", None) or sources[0]
+                             or "the first array given")
                     raise InputError(f"all runs must have the same number of features, but "
-                                     f"{first} has {d0} and {path} has {r.shape[1]}; load runs "
-                                     f"of the same system and feature set together")
+                                     f"{first} has {d0} and {getattr(r, 'source', None) or path} "
+                                     f"has {r.shape[1]}; load runs of the same system and "
+                                     f"feature set together")
         runs.extend(file_runs)
         sources.extend([path] * len(file_runs))
     if feature_names is None:

@@ -245,7 +245,9 @@ def _residue_text(labels, res) -> str:
 
 def _bonded_break(xyz0, box0, a, b) -> bool:
     d = xyz0[b] - xyz0[a]
-    if box0 is not None:  # minimum image: a peptide bond is far shorter than half a box
+    # minimum image: a peptide bond is far shorter than half a box; a flat or non-finite box
+    # (a damaged frame: its features fail the finite check later) gives no image shift
+    if box0 is not None and np.isfinite(box0).all() and abs(np.linalg.det(box0)) > 1e-12:
         d = d - box0.T @ np.round(np.linalg.solve(box0.T, d))
     return float(np.linalg.norm(d)) > _PEPTIDE_BREAK_NM
 
@@ -601,7 +603,8 @@ def _evenly(times, path) -> float | None:
 
 
 def index_frames(path) -> FileIndex | None:
-    """Check a DCD, XTC or TRR file's structure frame by frame without decoding coordinates.
+    """Check a DCD, XTC or TRR file's structure frame by frame; XTC coordinates are also
+    decoded once in a child process (see :func:`_check_xtc_decodes`).
 
     Returns
     -------
@@ -620,8 +623,60 @@ def index_frames(path) -> FileIndex | None:
         return _index_dcd(path)
     if suffix in (".xtc", ".trr"):
         n, natoms, times = _walk_xdr(path, _xtc_frame if suffix == ".xtc" else _trr_frame)
+        if suffix == ".xtc":
+            _check_xtc_decodes(path, n)
         return FileIndex(n, natoms, _evenly(times, path))
     return None
+
+
+#: Run in a separate interpreter: decode every frame of an XTC file and print the count.
+_XTC_PROBE = """
+import sys
+from mdtraj.formats import XTCTrajectoryFile
+n = 0
+with XTCTrajectoryFile(sys.argv[1]) as fh:
+    while True:
+        xyz = fh.read(n_frames=256)[0]
+        if not len(xyz):
+            break
+        n += len(xyz)
+print(n)
+"""
+
+
+def _check_xtc_decodes(path: str, n_frames: int) -> None:
+    """Decode the compressed coordinates of an XTC file once in a child process.
+
+    Damaged compressed data can make mdtraj's XTC decoder write past the end of a buffer and crash
+    the interpreter (a segmentation fault, measured on bit-flipped files) or return garbage
+    after printing "Buffer overrun during decompression"; neither can be caught in-process.
+    The child costs one interpreter start (about 0.5-1.5 s) per XTC file.
+    """
+    import subprocess
+    import sys
+
+    timeout = 60 + os.path.getsize(path) / 2e6  # s; decoding runs at tens of MB/s
+    try:
+        done = subprocess.run([sys.executable, "-c", _XTC_PROBE, path], capture_output=True,
+                              text=True, timeout=timeout)
+    except subprocess.TimeoutExpired:
+        raise _corrupt(path, f"decoding the compressed coordinates did not finish within "
+                             f"{timeout:.0f} s") from None
+    except OSError as err:  # no interpreter to start: decode in-process as before
+        warnings.warn(f"{path}: the XTC file was not test-decoded apart ({err})", RuntimeWarning,
+                      stacklevel=3)
+        return
+    err_lines = [line for line in done.stderr.splitlines() if line.strip()]
+    if done.returncode < 0:
+        raise _corrupt(path, f"the XTC decoder crashed on the compressed coordinates (signal "
+                             f"{-done.returncode})")
+    if done.returncode != 0 or any("error" in line.lower() for line in err_lines):
+        why = " ".join((err_lines or ["no message"])[-1].split())
+        raise _corrupt(path, f"the compressed coordinates cannot be decoded ({why})")
+    decoded = done.stdout.split()[-1] if done.stdout.split() else ""
+    if decoded != str(n_frames):
+        raise _corrupt(path, f"decoding gave {decoded or 'no'} frames of the {n_frames} the file "
+                             f"holds")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -819,5 +874,6 @@ def _time_step(first, path, md, kwargs):
 
 def _md_error(path, err, alternative="or does not match the topology") -> InputError:
     # a parser's own IndexError/TypeError text ("string index out of range") says nothing
-    why = f" ({err})" if isinstance(err, (OSError, RuntimeError)) or type(err) is ValueError else ""
+    text = " ".join(str(err).split())  # one line, whatever the parser wrote
+    why = f" ({text})" if isinstance(err, (OSError, RuntimeError)) or type(err) is ValueError else ""
     return InputError(f"cannot read {path}: the file is truncated or corrupt, {alternative}{why}")

@@ -289,3 +289,54 @@ def test_scan_into_a_folder_with_outputs_needs_force(demo_files, tmp_path, capsy
     other.mkdir()
     (other / "notes.md").write_text("unrelated")  # a folder without our outputs is fine
     assert main(args[:-1] + [str(other)]) == 0
+
+
+def _saved(T, path):
+    import warnings
+
+    from msmkit.errors import DiagnosticWarning
+    from msmkit.model import MarkovModel
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DiagnosticWarning)
+        return MarkovModel.from_transition_matrix(np.asarray(T, dtype=float)).save(path)
+
+
+@pytest.mark.parametrize("T, expected", [
+    ([[1.0]], "implied timescales: none (a single state"),
+    # a 3-cycle: eigenvalues 1, exp(+-2 pi i / 3) (exact: the cube roots of unity); PCCA+ cannot
+    # split the complex pair into 2 sets, which info reports instead of failing
+    ([[0, 1, 0], [0, 0, 1], [1, 0, 0]], "macrostates (PCCA+): none -- not computed: n_sets=2"),
+])
+def test_info_of_a_sound_model_that_has_no_timescales_or_macrostates_exits_0(T, expected, tmp_path, capsys):
+    path = _saved(T, tmp_path / "m.npz")
+    assert main(["info", str(path)]) == 0
+    captured = capsys.readouterr()
+    assert expected in captured.out and captured.err == ""
+
+
+def test_exit_codes_of_help_version_and_usage(capsys):
+    """argparse conventions: --help and --version exit 0, a malformed command line 2."""
+    for argv, code in ((["--help"], 0), (["--version"], 0), (["build", "--help"], 0), (["info", "-h"], 0),
+                       ([], 2), (["bogus"], 2), (["info"], 2), (["build", "x.npy", "-o", "m"], 2)):
+        with pytest.raises(SystemExit) as exc:
+            main(argv)
+        assert exc.value.code == code, argv
+    out = capsys.readouterr()
+    assert "msmkit " in out.out and "usage:" in out.err
+
+
+@pytest.mark.parametrize("name, content, words", [
+    ("bad.npy", b"\x93NUMPY\x01\x00\x10\x00{'descr': 'zz'\n", "the header cannot be parsed"),
+    ("bad.csv", b"a,b\n1,2\n3\n", "line 3 has 1 value"),
+    ("bad.npz", b"PK\x05\x06" + b"\x00" * 18, "holds no runs"),
+    ("bad.tsv", b"1\t2\n\xff\xfe\t3\n", "line 2 is not UTF-8"),
+])
+def test_build_on_a_malformed_file_names_it_and_writes_nothing(name, content, words, demo_files, tmp_path, capsys):
+    bad = tmp_path / name
+    bad.write_bytes(content)
+    out = tmp_path / "m.npz"
+    assert main(["build", str(demo_files / "run00.npy"), str(bad), "--lag", "1", "--states", "3", "-o", str(out),
+                 "-q"]) == 1
+    err = _one_error_line(capsys)
+    assert name in err and words in err and "unexpected" not in err
+    assert not out.exists()

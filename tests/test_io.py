@@ -148,10 +148,11 @@ def test_missing_file_and_empty_glob(tmp_path):
         load_trajectories([])
 
 
-def test_unknown_type(tmp_path):
-    path = tmp_path / "run.xlsx"
-    path.write_text("x")
-    with pytest.raises(InputError, match=r"unknown file type '\.xlsx'"):
+@pytest.mark.parametrize("suffix", [".xlsx", ".txt", ".xvg", ".dat"])
+def test_unknown_type(tmp_path, suffix):
+    path = tmp_path / f"run{suffix}"
+    path.write_bytes(b"# a text table\n1 2\n\x00\xff binary junk")
+    with pytest.raises(InputError, match=rf"run\{suffix}: unknown file type '\{suffix}'; supported: .npy"):
         load_trajectories(path)
 
 
@@ -218,7 +219,7 @@ def test_nan_in_small_files_found_at_load(tmp_path, data):
     bad = data.copy()
     bad[42, 1] = np.nan
     pd.DataFrame(bad, columns=["a", "b", "c"]).to_csv(tmp_path / "bad.csv", index=False)
-    with pytest.raises(InputError, match=r"bad\.csv: frame 42 has nan in feature 1 \('b'\)"):
+    with pytest.raises(InputError, match=r"bad\.csv: frame 42 \(line 44\) has nan in feature 1 \('b'\)"):
         load_trajectories(tmp_path / "bad.csv")
     np.savez(tmp_path / "bad.npz", run=bad)
     with pytest.raises(InputError, match=r"bad\.npz:run: frame 42 has nan"):
@@ -310,3 +311,111 @@ def test_md_features_from_pdb_and_dcd(tmp_path, rng):
     # PDB stores coordinates to 0.001 Angstrom, which moves torsions of this tiny,
     # noisy chain by up to ~1e-2
     assert np.allclose(np.asarray(from_pdb[0]), x, atol=2e-2)
+
+
+# --------------------------------------------------------------------------------------------
+# Malformed files: InputError naming the file (and the line), never a silently changed run
+# --------------------------------------------------------------------------------------------
+
+def test_text_header_shorter_than_the_rows_is_refused(tmp_path):
+    # pandas alone would take the first column as an index and drop it (common practice:
+    # pandas.read_csv infers index_col when the header has one name fewer)
+    (tmp_path / "short_header.csv").write_text("a,b\n1,2,3\n4,5,6\n")
+    with pytest.raises(InputError, match=r"short_header\.csv: line 2 has 3 values but the header has 2"):
+        load_trajectories(tmp_path / "short_header.csv")
+
+
+def test_text_line_numbers_count_blank_lines_and_crlf(tmp_path):
+    (tmp_path / "gaps.csv").write_bytes(b"\xef\xbb\xbfa,b\r\n\r\n1,2\r\n\r\n3,x\r\n")
+    with pytest.raises(InputError, match=r"gaps\.csv: frame 1 \(line 5\) has 'x' in column 1 \('b'\)"):
+        load_trajectories(tmp_path / "gaps.csv")
+    (tmp_path / "ok.csv").write_bytes(b"\xef\xbb\xbfa,b\r\n\r\n1,2\r\n\r\n3,4\r\n")
+    trajs = load_trajectories(tmp_path / "ok.csv")
+    assert trajs.feature_names == ("a", "b") and np.array_equal(trajs[0], [[1, 2], [3, 4]])
+
+
+def test_text_quoted_names_with_separators_load(tmp_path, data):
+    names = ["d(1,2)", "d(3,4)", "angle"]
+    pd.DataFrame(data, columns=names).to_csv(tmp_path / "q.csv", index=False)
+    trajs = load_trajectories(tmp_path / "q.csv")
+    assert trajs.feature_names == tuple(names) and np.allclose(trajs[0], data)
+
+
+def test_text_not_utf8_and_duplicate_names(tmp_path):
+    (tmp_path / "latin.csv").write_bytes("a,b\n1,2\n3,\u00e9\n".encode("latin-1"))
+    with pytest.raises(InputError, match=r"latin\.csv: line 3 is not UTF-8 text \(byte 0xe9\)"):
+        load_trajectories(tmp_path / "latin.csv")
+    (tmp_path / "twice.csv").write_text("a,a\n1,2\n")
+    with pytest.raises(InputError, match=r"twice\.csv: the header names the column 'a' twice"):
+        load_trajectories(tmp_path / "twice.csv")
+
+
+def test_npy_longer_than_its_header_declares(tmp_path, data):
+    np.save(tmp_path / "long.npy", data)
+    with open(tmp_path / "long.npy", "ab") as fh:
+        fh.write(b"\0" * 24)
+    with pytest.raises(InputError, match=r"long\.npy is damaged \(longer than the header declares\)"):
+        load_trajectories(tmp_path / "long.npy")
+
+
+def test_npz_members_that_are_not_plain_arrays(tmp_path, data):
+    import zipfile
+    with zipfile.ZipFile(tmp_path / "extra.npz", "w") as zf:
+        zf.writestr("run.npy", _npy(data))
+        zf.writestr("README.txt", b"notes")
+    with pytest.raises(InputError, match=r"extra\.npz holds \['README\.txt'\], which is not a numpy array"):
+        load_trajectories(tmp_path / "extra.npz")
+    with zipfile.ZipFile(tmp_path / "lzma.npz", "w", zipfile.ZIP_LZMA) as zf:
+        zf.writestr("run.npy", _npy(data))
+    with pytest.raises(InputError, match=r"lzma\.npz:run uses zip compression method 14"):
+        load_trajectories(tmp_path / "lzma.npz")
+    np.savez(tmp_path / "names.npz", run=data, feature_names=np.array([1.0, 2.0, 3.0]))
+    with pytest.raises(InputError, match=r"names\.npz:feature_names must be a flat array of strings"):
+        load_trajectories(tmp_path / "names.npz")
+    np.savez(tmp_path / "mixed.npz", a=data, b=data[:, :2])
+    with pytest.raises(InputError, match=r"mixed\.npz: array 'a' has 3 features but 'b' has 2"):
+        load_trajectories(tmp_path / "mixed.npz")
+
+
+def _npy(arr) -> bytes:
+    import io
+    buf = io.BytesIO()
+    np.save(buf, arr)
+    return buf.getvalue()
+
+
+def test_encrypted_npz_member(tmp_path, data):
+    import zipfile
+    with zipfile.ZipFile(tmp_path / "locked.npz", "w") as zf:
+        zf.writestr("run.npy", _npy(data))
+    raw = bytearray((tmp_path / "locked.npz").read_bytes())
+    for sig, at in ((b"PK\x03\x04", 6), (b"PK\x01\x02", 8)):  # general-purpose flag bit 0 (zip APPNOTE 4.4.4)
+        raw[raw.find(sig) + at] |= 1
+    (tmp_path / "locked.npz").write_bytes(bytes(raw))
+    with pytest.raises(InputError, match=r"locked\.npz:run is encrypted"):
+        load_trajectories(tmp_path / "locked.npz")
+
+
+def test_stored_feature_names_are_checked_per_file(tmp_path, data):
+    h5py = pytest.importorskip("h5py")
+    with h5py.File(tmp_path / "runs.h5", "w") as fh:
+        fh.create_dataset("run", data=data).attrs["feature_names"] = ["a", "b"]
+    with pytest.raises(InputError, match=r"feature_names has 2 names but .*runs\.h5 \(feature names stored "
+                                         r"in the file\) has 3 features"):
+        load_trajectories(tmp_path / "runs.h5")
+    trajs = load_trajectories(tmp_path / "runs.h5", feature_names=["x", "y", "z"])  # the override wins
+    assert trajs.feature_names == ("x", "y", "z")
+
+
+def test_text_carriage_return_inside_a_line(tmp_path):
+    # pandas would split the line at the lone CR, so every later line number would be off
+    (tmp_path / "cr.csv").write_bytes(b"1,2\r\n3,4\r5,6\n")
+    with pytest.raises(InputError, match=r"cr\.csv: line 2 holds a carriage return"):
+        load_trajectories(tmp_path / "cr.csv")
+
+
+def test_text_words_true_false_are_not_numbers(tmp_path):
+    # pandas reads a column of True/False as booleans, which would become 1.0/0.0
+    (tmp_path / "flags.csv").write_text("a,b\nTrue,1\nFalse,2\n")
+    with pytest.raises(InputError, match=r"flags\.csv: frame 0 \(line 2\) has 'True' in column 0 \('a'\)"):
+        load_trajectories(tmp_path / "flags.csv")
