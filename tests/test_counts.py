@@ -104,7 +104,7 @@ def sticky_label_runs(draw, max_state=4, max_runs=3):
        block=st.integers(1, 9), parallel=st.booleans())
 def test_counts_match_python_loop_in_small_blocks(runs, lag, every_frame, block, parallel):
     # a tiny buffer makes the counting flush many partial blocks (and split runs across them);
-    # parallel=True forces the two-thread split of every run's pairs, even for tiny inputs
+    # parallel=True counts on three threads sharing the pieces, even for tiny inputs
     longest = max(r.size for r in runs)
     if lag >= longest or not any(np.any(r >= 0) for r in runs):
         return
@@ -112,7 +112,7 @@ def test_counts_match_python_loop_in_small_blocks(runs, lag, every_frame, block,
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(counts_module, "COUNT_BLOCK", block)
         mp.setattr(counts_module, "RLE_PROBE", 8)  # decide on sticky encoding from a short probe
-        mp.setattr(counts_module, "PARALLEL_MIN_PAIRS", 0 if parallel else 1 << 60)
+        mp.setattr(counts_module, "_count_threads", lambda n_pairs, cells: 3 if parallel else 1)
         C = count_transitions(runs, lag, every_frame=every_frame)
     np.testing.assert_array_equal(C.toarray(), loop_counts(runs, lag, n, every_frame))
 
