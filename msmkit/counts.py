@@ -253,13 +253,41 @@ def _drain(todo: queue.SimpleQueue):
 
 
 def _tally(pieces, n_states, block) -> np.ndarray:
-    """Dense int64 tally (length n_states**2) of the pairs of ``pieces``, on this thread."""
-    total = np.zeros(n_states * n_states, dtype=np.int64)
-    buf = np.empty(block, dtype=np.intp)
+    """Dense int64 tally (length n_states**2) of the pairs of ``pieces``, on this thread.
+
+    Stretches of sticky pieces go straight into the tally (np.add.at). Codes of other pieces
+    are gathered in a buffer and added when it fills: by np.bincount once they are at least
+    half as many as the cells (its pass over every cell then costs less than the slower
+    np.add.at), else by np.add.at. The buffer holds ``block`` codes, or up to one per cell
+    (at most :data:`PLAIN_BATCH_MAX`): no more than the tally itself.
+    """
+    size = n_states * n_states
+    total = np.zeros(size, dtype=np.int64)
+    buf = np.empty(max(block, min(size, PLAIN_BATCH_MAX)), dtype=np.intp)
+    filled = 0
     for piece, d in pieces:
-        codes, weights = _piece_codes(piece, d, n_states, buf)
-        np.add.at(total, codes, 1 if weights is None else weights)
+        if filled + piece.size - d > buf.size:
+            _add_codes(total, buf[:filled])
+            filled = 0
+        codes, weights = _piece_codes(piece, d, n_states, buf[filled:])
+        if weights is None:
+            filled += codes.size
+        else:
+            np.add.at(total, codes, weights)
+    _add_codes(total, buf[:filled])
     return total
+
+
+#: most pair codes gathered by a counting thread before they are added to its tally (16 MiB)
+PLAIN_BATCH_MAX = 1 << 21
+
+
+def _add_codes(total: np.ndarray, codes: np.ndarray) -> None:
+    """``total[c] += 1`` for every code c (repeats included)."""
+    if 2 * codes.size >= total.size:
+        total += np.bincount(codes, minlength=total.size)
+    elif codes.size:
+        np.add.at(total, codes, 1)
 
 
 def _count_sparse(pieces, n_states):
@@ -304,9 +332,8 @@ def _piece_codes(piece: np.ndarray, d: int, n_states: int, buf: np.ndarray):
     as ``(codes, weights)``, leaving out pairs with an end labeled -1.
 
     Sticky pieces (see :func:`_is_sticky`) give the stretches of equal pairs with their lengths
-    as weights; others one code per pair (weights None), written into ``buf`` (at least
-    ``piece.size - d`` long) by in-place passes without temporaries: the codes are valid until
-    ``buf`` is used again.
+    as weights; others one code per pair (weights None), written to the start of ``buf`` (at
+    least ``piece.size - d`` long) by in-place passes: the codes are a view of ``buf``.
     """
     if _is_sticky(piece):
         return _stretches(piece, d, n_states)
@@ -315,8 +342,10 @@ def _piece_codes(piece: np.ndarray, d: int, n_states: int, buf: np.ndarray):
     codes = buf[:m]
     np.multiply(start, n_states, out=codes, dtype=np.intp, casting="unsafe")
     codes += end
-    if piece.min() < 0:  # leave out pairs with an end labeled -1
-        codes = codes[(start >= 0) & (end >= 0)]
+    if piece.min() < 0:  # leave out pairs with an end labeled -1, keeping the codes in buf
+        kept = codes[(start >= 0) & (end >= 0)]
+        codes = codes[:kept.size]
+        codes[:] = kept
     return codes, None
 
 
