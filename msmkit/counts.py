@@ -257,7 +257,7 @@ def _tally(pieces, n_states, block) -> np.ndarray:
 
     Stretches of sticky pieces go straight into the tally (np.add.at). Codes of other pieces
     are gathered in a buffer and added when it fills: by np.bincount once they are at least
-    half as many as the cells (its pass over every cell then costs less than the slower
+    half as many as the cells (the pass of bincount over every cell then costs less than the slower
     np.add.at), else by np.add.at. The buffer holds ``block`` codes, or up to one per cell
     (at most :data:`PLAIN_BATCH_MAX`): no more than the tally itself.
     """
