@@ -138,15 +138,16 @@ def count_pairs(runs, lag, n_states, every_frame=True):
     """Counts of checked label runs as (sorted distinct flat codes ``i * n_states + j``, int64
     counts).
 
-    A dense tally (one int64 cell per possible pair) only when the count matrix has at most
-    :data:`DENSE_MAX_CELLS` cells and no more cells than there are pairs to count; otherwise
-    sorted pair codes, so that memory follows the pairs seen, never ``n_states**2`` beyond the
-    size of the input itself (a dask task of a few runs over many states stays small).
+    A dense tally (one int64 cell per possible pair) when the count matrix has at most
+    :data:`DENSE_MAX_CELLS` cells -- inside a dask worker only if it also has no more cells than
+    there are pairs to count, so that a task of a few runs over many states stays as small as the
+    input; otherwise sorted pair codes, so that memory follows the pairs seen, never
+    ``n_states**2``.
     """
     pieces = _pieces(runs, lag, every_frame)
     n_pairs = sum(p.size - d for p, d in pieces)
     cells = n_states * n_states
-    if cells <= DENSE_MAX_CELLS and cells <= n_pairs:
+    if cells <= DENSE_MAX_CELLS and (cells <= n_pairs or worker_threads() is None):
         flat = _count_flat(pieces, n_states)
         codes = np.flatnonzero(flat)
         return codes, flat[codes]
@@ -255,16 +256,17 @@ def _drain(todo: queue.SimpleQueue):
 def _tally(pieces, n_states, block) -> np.ndarray:
     """Dense int64 tally (length n_states**2) of the pairs of ``pieces``, on this thread.
 
-    Stretches of sticky pieces go straight into the tally (np.add.at). Codes of other pieces
-    are gathered in a buffer and added when it fills: by np.bincount once they are at least
-    half as many as the cells (the pass of bincount over every cell then costs less than the slower
-    np.add.at), else by np.add.at. The buffer holds ``block`` codes, or up to one per cell
-    (at most :data:`PLAIN_BATCH_MAX`): no more than the tally itself.
+    Pair codes of plain pieces, and stretches (code, length) of sticky ones, are gathered
+    until as many as the buffer holds, then added: by np.bincount once they are at least half
+    as many as the cells (the pass of bincount over every cell then costs less than the slower
+    np.add.at), else by np.add.at. The buffer holds ``block`` codes, or up to two per cell
+    (at most :data:`PLAIN_BATCH_MAX`): no more than twice the tally itself.
     """
     size = n_states * n_states
     total = np.zeros(size, dtype=np.int64)
-    buf = np.empty(max(block, min(size, PLAIN_BATCH_MAX)), dtype=np.intp)
+    buf = np.empty(max(block, min(2 * size, PLAIN_BATCH_MAX)), dtype=np.intp)
     filled = 0
+    stretches, weights_held, held = [], [], 0
     for piece, d in pieces:
         if filled + piece.size - d > buf.size:
             _add_codes(total, buf[:filled])
@@ -272,22 +274,29 @@ def _tally(pieces, n_states, block) -> np.ndarray:
         codes, weights = _piece_codes(piece, d, n_states, buf[filled:])
         if weights is None:
             filled += codes.size
-        else:
-            np.add.at(total, codes, weights)
+            continue
+        stretches.append(codes)
+        weights_held.append(weights)
+        held += codes.size
+        if held >= buf.size:
+            _add_codes(total, np.concatenate(stretches), np.concatenate(weights_held))
+            stretches, weights_held, held = [], [], 0
     _add_codes(total, buf[:filled])
+    if stretches:
+        _add_codes(total, np.concatenate(stretches), np.concatenate(weights_held))
     return total
 
 
-#: most pair codes gathered by a counting thread before they are added to its tally (16 MiB)
+#: most pair codes gathered by a counting thread before they are added to the tally of the thread (16 MiB)
 PLAIN_BATCH_MAX = 1 << 21
 
 
-def _add_codes(total: np.ndarray, codes: np.ndarray) -> None:
-    """``total[c] += 1`` for every code c (repeats included)."""
-    if 2 * codes.size >= total.size:
-        total += np.bincount(codes, minlength=total.size)
+def _add_codes(total: np.ndarray, codes: np.ndarray, weights=None) -> None:
+    """``total[c] += w`` for every code c with weight w (1 by default; repeats included)."""
+    if 2 * codes.size >= total.size:  # float64 sums of integer weights are exact below 2**53
+        total += np.bincount(codes, weights, minlength=total.size).astype(np.int64, copy=False)
     elif codes.size:
-        np.add.at(total, codes, 1)
+        np.add.at(total, codes, 1 if weights is None else weights)
 
 
 def _count_sparse(pieces, n_states):
@@ -360,15 +369,13 @@ def _stretches(piece: np.ndarray, d: int, n_states: int):
     """
     m = piece.size - d
     changed = piece[1:] != piece[:-1]
-    edge = changed[:m - 1]
-    edge |= changed[d:d + m - 1]
-    starts = np.flatnonzero(edge)
-    starts += 1
-    starts = np.concatenate(([0], starts))
+    begins = np.empty(m, dtype=bool)  # pair t begins a stretch; written in place, no temporaries
+    begins[0] = True
+    np.bitwise_or(changed[:m - 1], changed[d:d + m - 1], out=begins[1:])
+    starts = np.flatnonzero(begins)
     lengths = np.diff(starts, append=m)
-    first, second = piece[starts], piece[starts + d]
-    codes = first.astype(np.intp)
-    codes *= n_states
+    first, second = piece[starts], piece[d:][starts]
+    codes = np.multiply(first, n_states, dtype=np.intp)
     codes += second
     # every frame is the first (or second) end of the stretch holding its pair, so a -1 in the
     # piece shows in the stretches' ends: checking them is cheaper than checking every frame
