@@ -4,11 +4,12 @@ Writes one .npy file of --frames x --features float32 frames (default 2e7 x 4 = 
 chunk by chunk), then runs, reading lazily: TICA fit -> TICA transform to .npy files ->
 Microstates fit on a stride (which labels every frame) -> transition counting. Prints the
 peak growth of the resident memory (RSS, sampled every 2 ms, and the kernel's peak from
-getrusage as a cross-check) divided by the data size: target < 0.5.
+getrusage as a cross-check) divided by the data size: target <= 0.3.
 
-What may grow with the frames: the int32 labels (4 bytes per frame, 80 MB for 2e7 frames), the
-strided sample (1/stride of the frames, float64) and the counting buffer (at most 32 MiB); the
-rest is a few chunks (about 16 MiB of float64 frames each by default).
+What may grow with the frames: the int32 labels (4 bytes per frame, 80 MB for 2e7 frames, 0.25 of
+the data) and the strided sample (1/stride of the frames, float64); the rest is a few chunks
+(about 16 MiB of float64 frames each by default, read while fitting; assignment reads 2**16
+frames at a time) and the counting temporaries (near 4 MiB).
 
 Usage: python bench/bench_streaming.py [--frames N] [--features D] [--dir PATH] [--json]
 """
@@ -78,6 +79,7 @@ class PeakRSS:
 
 def run_pipeline(path, folder, *, lag=10, dim=2, n_states=100, stride=100, chunk_size=None) -> dict:
     """Stream the file through TICA -> transform to files -> Microstates -> counts."""
+    sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # this checkout's msmkit
     import msmkit as mk
     # Import everything the pipeline uses first: imports are not data and must not count.
     import scipy.spatial  # noqa: F401
@@ -155,9 +157,9 @@ def main(argv=None) -> int:
           f"peak {result['rss_peak'] / 1e6:.0f} MB; labels alone {result['labels_bytes'] / 1e6:.0f} MB")
     ratio = result["growth"] / data
     print(f"streaming peak RSS growth / data size: {result['growth'] / 1e6:.0f} MB / {data / 1e6:.0f} MB "
-          f"= {ratio:.3f} (target < 0.5); getrusage cross-check "
+          f"= {ratio:.3f} (target <= 0.3); getrusage cross-check "
           f"{result['growth_getrusage'] / data:.3f}")
-    return 0 if ratio < 0.5 else 1
+    return 0 if ratio <= 0.3 else 1
 
 
 if __name__ == "__main__":

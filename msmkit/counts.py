@@ -7,6 +7,7 @@ Prinz et al., J. Chem. Phys. 134, 174105 (2011): sliding-window counting, connec
 from __future__ import annotations
 
 import os
+import queue
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -15,19 +16,19 @@ from scipy.sparse import csgraph
 
 from . import _execution as execution
 from ._checks import as_label_trajectories, check_bool, check_int, check_lag
-from .distributed import ClusterError
+from .distributed import ClusterError, worker_threads
 from .errors import InputError
 
 __all__ = ["count_transitions", "communicating_classes", "kept_states", "run_count_rows"]
 
-#: count matrices of at most this many cells (n_states**2) are tallied densely with np.bincount (32 MiB);
+#: count matrices of at most this many cells (n_states**2, 32 MiB of int64) may be tallied densely;
 #: larger ones by sorting the pair codes, so that memory follows the pairs seen, not the largest label
 DENSE_MAX_CELLS = 1 << 22
 #: largest count matrix side: its CSR row pointers alone take 8 bytes per state (128 MiB here)
 MAX_STATES = 1 << 24
 
-#: codes inspected to decide whether run-length encoding pays off, and the change rate below which it does
-RLE_PROBE = 100_000
+#: frames of a piece inspected to decide whether run-length encoding pays off, and the change rate below which it does
+RLE_PROBE = 1 << 13
 RLE_CHANGE_FRACTION = 0.35
 
 
@@ -130,18 +131,27 @@ def count_transitions(labels, lag, *, n_states=None, every_frame=True, client=No
 def count_flat(runs, lag, n_states, every_frame=True) -> np.ndarray:
     """Counts of checked label runs (see :func:`prepare_counting`) as one flat row-major int64
     vector of length ``n_states**2``: entry ``i * n_states + j`` counts transitions i -> j."""
-    return _count_flat(runs, lag, n_states, every_frame)
+    return _count_flat(_pieces(runs, lag, every_frame), n_states)
 
 
 def count_pairs(runs, lag, n_states, every_frame=True):
     """Counts of checked label runs as (sorted distinct flat codes ``i * n_states + j``, int64
-    counts): dense tally for small matrices, sorted pair codes for large ones, so memory follows
-    the pairs seen, never ``n_states**2``."""
-    if n_states * n_states <= DENSE_MAX_CELLS:
-        flat = _count_flat(runs, lag, n_states, every_frame)
+    counts).
+
+    A dense tally (one int64 cell per possible pair) when the count matrix has at most
+    :data:`DENSE_MAX_CELLS` cells -- inside a dask worker only if it also has no more cells than
+    there are pairs to count, so that a task of a few runs over many states stays as small as the
+    input; otherwise sorted pair codes, so that memory follows the pairs seen, never
+    ``n_states**2``.
+    """
+    pieces = _pieces(runs, lag, every_frame)
+    n_pairs = sum(p.size - d for p, d in pieces)
+    cells = n_states * n_states
+    if cells <= DENSE_MAX_CELLS and (cells <= n_pairs or worker_threads() is None):
+        flat = _count_flat(pieces, n_states)
         codes = np.flatnonzero(flat)
         return codes, flat[codes]
-    return _count_pairs(runs, lag, n_states, every_frame)
+    return _count_sparse(pieces, n_states)
 
 
 def count_csr(runs, lag, n_states, every_frame=True) -> sp.csr_matrix:
@@ -161,69 +171,145 @@ def count_codes(runs, lag, n_states, every_frame=True):
     return count_pairs(runs, lag, n_states, every_frame), [int(np.asarray(r).size) for r in runs]
 
 
-#: Pair codes counted per histogram pass: bounds the temporary buffer to 32 MiB however many
-#: frames are counted (the int32 labels themselves take 4 bytes per frame).
-COUNT_BLOCK = 1 << 22
+#: Pairs counted at once, over all counting threads: each thread holds the codes of at most
+#: ``COUNT_BLOCK / threads`` pairs (8 bytes each) and a few bytes a pair of comparisons, so the
+#: temporaries stay near 4 MiB however many frames are counted (the int32 labels themselves
+#: take 4 bytes per frame).
+COUNT_BLOCK = 1 << 18
+#: pairs per counting thread below which counting stays on fewer threads
+PARALLEL_MIN_PAIRS = 1 << 20
+#: most counting threads (each adds an ``n_states**2`` int64 tally)
+MAX_COUNT_THREADS = 4
 
 
-#: below this many pairs counting stays on one thread
-PARALLEL_MIN_PAIRS = 1 << 21
+def _pieces(runs, lag, every_frame, block=None) -> list:
+    """The runs cut into pieces ``(labels, d)`` whose pairs ``(labels[t], labels[t + d])`` are
+    every counted pair exactly once; a piece holds at most ``block`` pairs (default
+    :data:`COUNT_BLOCK`) and overlaps the next by ``d`` frames. Strided counting is sliding
+    counting at lag 1 on every ``lag``-th frame (a view, nothing is copied)."""
+    block = max(1, COUNT_BLOCK if block is None else int(block))
+    out = []
+    for run in runs:
+        seq, d = (run, lag) if every_frame else (run[::lag], 1)
+        for lo in range(0, seq.size - d, block):
+            out.append((seq[lo:lo + block + d], d))
+    return out
 
 
-def _count_flat(runs, lag, n_states, every_frame) -> np.ndarray:
-    """Counts of all runs as one flat int64 vector of length n_states**2.
-
-    Large inputs are split in two halves by pair index (each run's pairs 0..m/2 and m/2..m,
-    cut on the strided grid) counted on two threads: building the pair codes -- most of the
-    work -- runs in numpy loops that release the interpreter lock. The halves add up exactly.
-    """
-    step = 1 if every_frame else lag
-    sizes = [len(range(0, r.size - lag, step)) if r.size > lag else 0 for r in runs]
-    sticky = next((_is_sticky(r if every_frame else r[::lag]) for r, m in zip(runs, sizes) if m), False)
-    if sum(sizes) < PARALLEL_MIN_PAIRS or (os.cpu_count() or 1) < 2 or sticky:
-        # sticky labels are counted by stretches, a light pass over the frames that a second thread
-        # (with its own n_states**2 accumulator) does not speed up
-        return _count_flat_serial(runs, lag, n_states, every_frame, COUNT_BLOCK)
-    halves = ([], [])
-    for run, m in zip(runs, sizes):
-        if m == 0:
-            continue
-        cut = m // 2  # pairs [0, cut) and [cut, m); a piece keeps the lag frames the pairs reach
-        halves[0].append(run[:(cut - 1) * step + lag + 1] if cut else run[:0])
-        halves[1].append(run[cut * step:])
-    with ThreadPoolExecutor(2) as pool:
-        first, second = pool.map(lambda part: _count_flat_serial(part, lag, n_states, every_frame, COUNT_BLOCK // 2),
-                                 halves)
-    first += second
-    return first
+def _count_threads(n_pairs: int, cells: int) -> int:
+    """Threads for a dense tally of ``n_pairs`` pairs into ``cells`` cells: one inside a dask
+    worker (the worker's other threads run other tasks) or for small inputs; else up to every
+    core, each thread given at least :data:`PARALLEL_MIN_PAIRS` pairs, and the tallies of all
+    threads together holding no more cells than there are pairs."""
+    cores = worker_threads()
+    if cores is not None:
+        return 1
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - not on Linux
+        cores = os.cpu_count() or 1
+    return max(1, min(cores, MAX_COUNT_THREADS, n_pairs // max(1, PARALLEL_MIN_PAIRS),
+                      n_pairs // max(1, cells)))
 
 
-def _count_flat_serial(runs, lag, n_states, every_frame, block) -> np.ndarray:
-    """Counts of all runs as one flat int64 vector of length n_states**2, on this thread.
+def _count_flat(pieces, n_states) -> np.ndarray:
+    """Counts of all pieces (see :func:`_pieces`) as one flat int64 vector of length n_states**2.
 
-    The pair codes come in blocks of at most ``block`` (see :func:`_code_blocks`), each counted
-    by one histogram pass into the flat vector.
+    Large inputs are counted on several threads, each pulling pieces from a shared queue into
+    a tally of the thread alone; the tallies add up exactly. The work per piece -- comparisons
+    of neighbouring labels, pair codes, index gathering -- runs in numpy loops that release the
+    interpreter lock; only the histogram update (np.add.at) holds it, so the threads overlap.
     """
     size = n_states * n_states
-    total = np.zeros(size, dtype=np.int64)
-    for codes, weights in _code_blocks(runs, lag, n_states, every_frame, block):
-        if weights is None:
-            total += _histogram(codes, size)
-        else:  # float64 sums of integer weights are exact below 2**53
-            total += np.bincount(codes, weights=weights, minlength=size).astype(np.int64)
+    n_pairs = sum(p.size - d for p, d in pieces)
+    threads = _count_threads(n_pairs, size)
+    block = max(1, COUNT_BLOCK // threads)
+    if threads == 1:
+        return _tally(_split(pieces, block), n_states, block)
+    todo = queue.SimpleQueue()
+    for piece in _split(pieces, block):
+        todo.put(piece)
+    with ThreadPoolExecutor(threads) as pool:
+        tallies = list(pool.map(lambda _: _tally(_drain(todo), n_states, block), range(threads)))
+    total = tallies[0]
+    for other in tallies[1:]:
+        total += other
     return total
 
 
-def _count_pairs(runs, lag, n_states, every_frame):
-    """Counts of all runs as (sorted distinct pair codes, how often each occurs), both int64.
+def _split(pieces, block):
+    """Pieces cut further to at most ``block`` pairs each (same pairs, in order)."""
+    for piece, d in pieces:
+        for lo in range(0, piece.size - d, block):
+            yield piece[lo:lo + block + d], d
 
-    Memory follows the number of distinct pairs seen (plus one block of codes), whatever the
-    largest label: each block is reduced to the distinct codes in it by sorting, and the blocks'
+
+def _drain(todo: queue.SimpleQueue):
+    """Items of a filled queue until it is empty (several threads may drain it at once)."""
+    while True:
+        try:
+            yield todo.get_nowait()
+        except queue.Empty:
+            return
+
+
+def _tally(pieces, n_states, block) -> np.ndarray:
+    """Dense int64 tally (length n_states**2) of the pairs of ``pieces``, on this thread.
+
+    Pair codes of plain pieces, and stretches (code, length) of sticky ones, are gathered
+    until as many as the buffer holds, then added: by np.bincount once they are at least half
+    as many as the cells (the pass of bincount over every cell then costs less than the slower
+    np.add.at), else by np.add.at. The buffer holds ``block`` codes, or up to two per cell
+    (at most :data:`PLAIN_BATCH_MAX`): no more than twice the tally itself.
+    """
+    size = n_states * n_states
+    total = np.zeros(size, dtype=np.int64)
+    buf = np.empty(max(block, min(2 * size, PLAIN_BATCH_MAX)), dtype=np.intp)
+    filled = 0
+    stretches, weights_held, held = [], [], 0
+    for piece, d in pieces:
+        if filled + piece.size - d > buf.size:
+            _add_codes(total, buf[:filled])
+            filled = 0
+        codes, weights = _piece_codes(piece, d, n_states, buf[filled:])
+        if weights is None:
+            filled += codes.size
+            continue
+        stretches.append(codes)
+        weights_held.append(weights)
+        held += codes.size
+        if held >= buf.size:
+            _add_codes(total, np.concatenate(stretches), np.concatenate(weights_held))
+            stretches, weights_held, held = [], [], 0
+    _add_codes(total, buf[:filled])
+    if stretches:
+        _add_codes(total, np.concatenate(stretches), np.concatenate(weights_held))
+    return total
+
+
+#: most pair codes gathered by a counting thread before they are added to the tally of the thread (16 MiB)
+PLAIN_BATCH_MAX = 1 << 21
+
+
+def _add_codes(total: np.ndarray, codes: np.ndarray, weights=None) -> None:
+    """``total[c] += w`` for every code c with weight w (1 by default; repeats included)."""
+    if 2 * codes.size >= total.size:  # float64 sums of integer weights are exact below 2**53
+        total += np.bincount(codes, weights, minlength=total.size).astype(np.int64, copy=False)
+    elif codes.size:
+        np.add.at(total, codes, 1 if weights is None else weights)
+
+
+def _count_sparse(pieces, n_states):
+    """Counts of all pieces as (sorted distinct pair codes, how often each occurs), both int64.
+
+    Memory follows the number of distinct pairs seen (plus one piece of codes), whatever the
+    largest label: each piece is reduced to the distinct codes in it by sorting, and the pieces'
     tallies are merged the same way at the end.
     """
+    buf = np.empty(max((p.size - d for p, d in pieces), default=1), dtype=np.intp)
     codes, counts = [], []
-    for block, weights in _code_blocks(runs, lag, n_states, every_frame, COUNT_BLOCK):
-        u, c = _distinct_counts(block, weights)
+    for piece, d in pieces:
+        u, c = _distinct_counts(*_piece_codes(piece, d, n_states, buf))
         codes.append(u)
         counts.append(c)
     if not codes:
@@ -250,8 +336,31 @@ def _is_sticky(seq: np.ndarray) -> bool:
     return 2 * np.count_nonzero(probe[1:] != probe[:-1]) < RLE_CHANGE_FRACTION * (probe.size - 1)
 
 
-def _stretches(piece: np.ndarray, d: int, n_states: int, unassigned: bool):
-    """Codes and lengths of the maximal stretches of equal pairs (piece[t], piece[t + d]).
+def _piece_codes(piece: np.ndarray, d: int, n_states: int, buf: np.ndarray):
+    """Pair codes ``i * n_states + j`` of the pairs ``(piece[t], piece[t + d])`` of one piece,
+    as ``(codes, weights)``, leaving out pairs with an end labeled -1.
+
+    Sticky pieces (see :func:`_is_sticky`) give the stretches of equal pairs with their lengths
+    as weights; others one code per pair (weights None), written to the start of ``buf`` (at
+    least ``piece.size - d`` long) by in-place passes: the codes are a view of ``buf``.
+    """
+    if _is_sticky(piece):
+        return _stretches(piece, d, n_states)
+    m = piece.size - d
+    start, end = piece[:m], piece[d:]
+    codes = buf[:m]
+    np.multiply(start, n_states, out=codes, dtype=np.intp, casting="unsafe")
+    codes += end
+    if piece.min() < 0:  # leave out pairs with an end labeled -1, keeping the codes in buf
+        kept = codes[(start >= 0) & (end >= 0)]
+        codes = codes[:kept.size]
+        codes[:] = kept
+    return codes, None
+
+
+def _stretches(piece: np.ndarray, d: int, n_states: int):
+    """Codes and lengths of the maximal stretches of equal pairs (piece[t], piece[t + d]),
+    leaving out the stretches whose pair has an end labeled -1.
 
     Pair t differs from pair t - 1 exactly when piece[t] != piece[t - 1] or
     piece[t + d] != piece[t + d - 1], so one comparison of neighbouring labels serves both ends:
@@ -260,85 +369,20 @@ def _stretches(piece: np.ndarray, d: int, n_states: int, unassigned: bool):
     """
     m = piece.size - d
     changed = piece[1:] != piece[:-1]
-    edge = changed[:m - 1]
-    edge |= changed[d:d + m - 1]
-    starts = np.flatnonzero(edge)
-    starts += 1
-    starts = np.concatenate(([0], starts))
+    begins = np.empty(m, dtype=bool)  # pair t begins a stretch; written in place, no temporaries
+    begins[0] = True
+    np.bitwise_or(changed[:m - 1], changed[d:d + m - 1], out=begins[1:])
+    starts = np.flatnonzero(begins)
     lengths = np.diff(starts, append=m)
-    first, second = piece[starts], piece[starts + d]
-    codes = first.astype(np.intp)
-    codes *= n_states
+    first, second = piece[starts], piece[d:][starts]
+    codes = np.multiply(first, n_states, dtype=np.intp)
     codes += second
-    if unassigned:
+    # every frame is the first (or second) end of the stretch holding its pair, so a -1 in the
+    # piece shows in the stretches' ends: checking them is cheaper than checking every frame
+    if first.min() < 0 or second.min() < 0:
         keep = (first >= 0) & (second >= 0)
         codes, lengths = codes[keep], lengths[keep]
     return codes, lengths
-
-
-def _code_blocks(runs, lag, n_states, every_frame, block):
-    """Yield the pair codes ``i * n_states + j`` of all runs as blocks ``(codes, weights)``.
-
-    Sticky runs (see :func:`_is_sticky`) give stretches of equal pairs, with their lengths as
-    weights; other runs give one code per pair (weights None), written into one preallocated
-    buffer (in-place passes, no temporaries) that is yielded each time it fills -- the consumer
-    must use a block before asking for the next. Either way at most ``block`` codes are held, so
-    the extra memory stays bounded for any number of frames. Pairs with an end labeled -1 are
-    left out. Strided counting is sliding counting at lag 1 on every ``lag``-th frame.
-    """
-    total = sum(max(r.size - lag, 0) for r in runs)
-    buf = np.empty(max(min(total, block), 1), dtype=np.intp)
-    filled = 0
-    seg_codes, seg_weights, seg_filled = [], [], 0
-    for run in runs:
-        seq, d = (run, lag) if every_frame else (run[::lag], 1)
-        m = seq.size - d
-        if m <= 0:
-            continue
-        unassigned = bool(run.min() < 0)
-        sticky = _is_sticky(seq)
-        for lo in range(0, m, buf.size):
-            hi = min(m, lo + buf.size)
-            piece = seq[lo:hi + d]
-            if sticky:
-                codes, lengths = _stretches(piece, d, n_states, unassigned)
-                seg_codes.append(codes)
-                seg_weights.append(lengths)
-                seg_filled += codes.size
-                if seg_filled >= buf.size:
-                    yield np.concatenate(seg_codes), np.concatenate(seg_weights)
-                    seg_codes, seg_weights, seg_filled = [], [], 0
-                continue
-            if filled + (hi - lo) > buf.size:
-                yield buf[:filled], None
-                filled = 0
-            start, end = piece[:hi - lo], piece[d:]
-            view = buf[filled:filled + (hi - lo)]
-            np.multiply(start, n_states, out=view, dtype=np.intp, casting="unsafe")
-            np.add(view, end, out=view, casting="unsafe")
-            if unassigned:  # leave out pairs with an end labeled -1
-                keep = (start >= 0) & (end >= 0)
-                kept = int(np.count_nonzero(keep))
-                view[:kept] = view[keep]
-                filled += kept
-            else:
-                filled += hi - lo
-    if filled:
-        yield buf[:filled], None
-    if seg_codes:
-        yield np.concatenate(seg_codes), np.concatenate(seg_weights)
-
-
-def _histogram(codes: np.ndarray, size: int) -> np.ndarray:
-    """np.bincount of ``codes`` as int64 of length ``size``, run-length encoded when sticky."""
-    probe = codes[:RLE_PROBE]
-    if probe.size > 1 and np.count_nonzero(probe[1:] != probe[:-1]) < RLE_CHANGE_FRACTION * (probe.size - 1):
-        starts = np.flatnonzero(codes[1:] != codes[:-1])
-        starts += 1
-        lengths = np.diff(starts, prepend=0, append=codes.size)
-        starts = np.concatenate(([0], starts))
-        return np.bincount(codes[starts], weights=lengths, minlength=size).astype(np.int64)
-    return np.bincount(codes, minlength=size).astype(np.int64, copy=False)
 
 
 def flat_counts_to_csr(flat: np.ndarray, n_states: int) -> sp.csr_matrix:

@@ -221,25 +221,57 @@ def nearest_center(frames, centers, *, chunk_size=None, n_threads=None) -> np.nd
                        check_chunk_size(chunk_size, centers.shape[1]))
 
 
-#: Frames labeled per call of the assigner: its temporaries (distances, indices, a float64
-#: copy: about 80 bytes a frame) stay near 20 MB whatever the chunk size.
-ASSIGN_BLOCK = 1 << 18
+#: Frames read and labeled at a time: the assigner's temporaries (distances, indices, a float64
+#: copy: about 80 bytes a frame) and the frames read stay near 6 MB whatever the chunk size, so
+#: that labeling adds little to the labels themselves (4 bytes a frame).
+ASSIGN_BLOCK = 1 << 16
 
 
 def _assign_run(run, assigner: _Assigner, chunk: int, bar=None) -> np.ndarray:
     out = np.empty(run.shape[0], dtype=np.int32)
     start = 0
-    for block in iter_chunks(run, chunk):
-        for lo in range(0, len(block), ASSIGN_BLOCK):
-            part = block[lo:lo + ASSIGN_BLOCK]
-            out[start + lo:start + lo + len(part)] = assigner(part)
+    for block in iter_chunks(run, min(chunk, ASSIGN_BLOCK)):
+        out[start:start + len(block)] = assigner(block)
         start += len(block)
         if bar is not None:
             bar.update(len(block))
     return out
 
 
-def _label_counts(labels, k: int, block: int = 1 << 20) -> np.ndarray:
+def _return_freed_memory() -> None:
+    """Hand memory already freed (by the clustering, by reading chunks) back to the operating
+    system before the labels are allocated, where the C library supports it (glibc's
+    malloc_trim; a no-op elsewhere).
+
+    The allocator keeps freed blocks of up to tens of MB for reuse, but the labels (4 bytes a
+    frame) are one large separate mapping that cannot reuse them: without this the resident
+    memory of a long assignment is the labels plus everything the clustering once held.
+    """
+    global _TRIM
+    if _TRIM is None:
+        import ctypes
+        import ctypes.util
+
+        try:
+            _TRIM = getattr(ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6"), "malloc_trim")
+        except (OSError, AttributeError, TypeError):
+            _TRIM = False
+    if _TRIM:
+        _TRIM(0)
+
+
+_TRIM = None
+
+
+def _joined_labels(pieces) -> np.ndarray:
+    """The int32 labels of one run from the labels of the pieces, copied only when there are several
+    (a copy of one whole run's labels would double the largest array of the step)."""
+    if len(pieces) == 1:
+        return pieces[0].astype(np.int32, copy=False)
+    return np.concatenate(pieces).astype(np.int32, copy=False) if pieces else np.empty(0, np.int32)
+
+
+def _label_counts(labels, k: int, block: int = ASSIGN_BLOCK) -> np.ndarray:
     """Frames per state over all label runs, counted in slices (no concatenated copy)."""
     counts = np.zeros(k, dtype=np.int64)
     for run in labels:
@@ -446,14 +478,15 @@ class Microstates:
         return self
 
     def _assign_runs(self, runs, chunk, client=None) -> list[np.ndarray]:
+        if client is None:
+            _return_freed_memory()
         bar = self._bar(sum(r.shape[0] for r in runs), "assigning frames")
         try:
             centers = np.ascontiguousarray(self.centers_, dtype=np.float64)
             per_run = execution.map_pieces(assign_pieces, runs, centers, chunk, client=client,
                                            minimum=min(chunk, 1 << 16), what="assignment",
                                            bar=bar, local_bar=True)
-            return [np.concatenate(p).astype(np.int32, copy=False) if p else np.empty(0, np.int32)
-                    for p in per_run]
+            return [_joined_labels(p) for p in per_run]
         finally:
             if bar is not None:
                 bar.close()

@@ -3,8 +3,12 @@
 References: a slow, obviously correct Python loop over frame pairs (sliding window: every pair
 (t, t + lag); strided: t = 0, lag, 2 lag, ...; Prinz et al., J. Chem. Phys. 134, 174105 (2011),
 Sec. IV), and brute-force reachability (transitive closure of the count graph) for the
-communicating classes (common practice).
+communicating classes (common practice); collections.Counter over the (i, j) pairs for the dense
+tally on several threads (common practice).
 """
+import tracemalloc
+from collections import Counter
+
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -104,7 +108,7 @@ def sticky_label_runs(draw, max_state=4, max_runs=3):
        block=st.integers(1, 9), parallel=st.booleans())
 def test_counts_match_python_loop_in_small_blocks(runs, lag, every_frame, block, parallel):
     # a tiny buffer makes the counting flush many partial blocks (and split runs across them);
-    # parallel=True forces the two-thread split of every run's pairs, even for tiny inputs
+    # parallel=True counts on three threads sharing the pieces, even for tiny inputs
     longest = max(r.size for r in runs)
     if lag >= longest or not any(np.any(r >= 0) for r in runs):
         return
@@ -112,9 +116,73 @@ def test_counts_match_python_loop_in_small_blocks(runs, lag, every_frame, block,
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(counts_module, "COUNT_BLOCK", block)
         mp.setattr(counts_module, "RLE_PROBE", 8)  # decide on sticky encoding from a short probe
-        mp.setattr(counts_module, "PARALLEL_MIN_PAIRS", 0 if parallel else 1 << 60)
+        mp.setattr(counts_module, "_count_threads", lambda n_pairs, cells: 3 if parallel else 1)
         C = count_transitions(runs, lag, every_frame=every_frame)
     np.testing.assert_array_equal(C.toarray(), loop_counts(runs, lag, n, every_frame))
+
+
+def counter_counts(runs, lag, every_frame):
+    """Counts by collections.Counter over the (i, j) pairs, -1 ends left out (common practice)."""
+    step = 1 if every_frame else lag
+    return Counter((int(r[t]), int(r[t + lag])) for r in runs for t in range(0, len(r) - lag, step)
+                   if r[t] >= 0 and r[t + lag] >= 0)
+
+
+@st.composite
+def mixed_label_runs(draw):
+    """Runs joined from sticky and jumpy stretches, with holes (-1): both tally paths in one run."""
+    seed = draw(st.integers(0, 2 ** 32 - 1))
+    rng = np.random.default_rng(seed)
+    n = draw(st.sampled_from([1, 3, 17, 60]))
+    runs = []
+    for _ in range(draw(st.integers(1, 4))):
+        parts = []
+        for _ in range(draw(st.integers(1, 4))):
+            size = int(rng.integers(1, 400))
+            if rng.random() < 0.5:  # sticky: dwell times of ~30 frames
+                parts.append(np.repeat(rng.integers(0, n, size // 30 + 1), 30)[:size])
+            else:
+                parts.append(rng.integers(0, n, size))
+        run = np.concatenate(parts).astype(np.int32)
+        run[rng.random(run.size) < draw(st.sampled_from([0.0, 0.02]))] = -1
+        runs.append(run)
+    return runs, n
+
+
+@settings(max_examples=60, deadline=None)
+@given(data=mixed_label_runs(), lag=st.integers(1, 9), every_frame=st.booleans(),
+       block=st.integers(1, 700), threads=st.integers(1, 4), probe=st.sampled_from([8, 1 << 13]))
+def test_dense_tally_on_threads_matches_a_counter(data, lag, every_frame, block, threads, probe):
+    # the dense tally alone (count_flat), on 1-4 threads sharing pieces of `block` pairs, against
+    # a Counter over the pairs: exact, whatever the split and whichever path each piece takes
+    runs, n = data
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(counts_module, "COUNT_BLOCK", block)
+        mp.setattr(counts_module, "RLE_PROBE", probe)
+        mp.setattr(counts_module, "_count_threads", lambda n_pairs, cells: threads)
+        flat = counts_module.count_flat(runs, lag, n, every_frame)
+    assert flat.dtype == np.int64 and flat.shape == (n * n,)
+    expected = np.zeros(n * n, dtype=np.int64)
+    for (i, j), k in counter_counts(runs, lag, every_frame).items():
+        expected[i * n + j] = k
+    np.testing.assert_array_equal(flat, expected)
+
+
+def test_the_group_kernel_on_a_worker_counts_sparsely_when_pairs_are_fewer_than_cells():
+    # a dask task over 2000 states with few pairs: the kernel must not build the 2000**2 int64
+    # tally (32 MB); its result is the Counter of the pairs
+    rng = np.random.default_rng(5)
+    runs = [rng.integers(0, 2000, 5000).astype(np.int32) for _ in range(3)]
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(counts_module, "worker_threads", lambda: 2)  # as inside a dask worker
+        tracemalloc.start()
+        try:
+            (codes, counts), sizes = counts_module.count_codes(runs, 3, 2000)
+            peak = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+    assert sizes == [5000] * 3 and peak < 4 << 20
+    assert {(int(c) // 2000, int(c) % 2000): int(k) for c, k in zip(codes, counts)} == counter_counts(runs, 3, True)
 
 
 def test_sticky_labels_match_python_loop():

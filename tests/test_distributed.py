@@ -244,6 +244,19 @@ def test_counts_equal_the_pair_loop(backend, sample_chain, reversible_chain, eve
     assert np.array_equal(got.toarray(), _count_reference(runs, 4, 3, every_frame))
 
 
+def test_counts_over_many_states_equal_a_counter(backend):
+    # 1500 states, a few thousand pairs per task: the workers tally sparsely (sorted pair codes)
+    # rather than in a 1500**2 array; the result is the Counter of the pairs (common practice)
+    from collections import Counter
+    rng = np.random.default_rng(8)
+    runs = [np.repeat(rng.integers(0, 1500, 400), rng.integers(1, 12, 400)).astype(np.int32) for _ in range(6)]
+    runs[2][50:80] = -1
+    got = mk.count_transitions(runs, 5, n_states=1500, **backend).tocoo()
+    expected = Counter((int(r[t]), int(r[t + 5])) for r in runs for t in range(len(r) - 5)
+                       if r[t] >= 0 and r[t + 5] >= 0)
+    assert {(int(i), int(j)): int(v) for i, j, v in zip(got.row, got.col, got.data)} == expected
+
+
 def test_lag_scan_bootstrap_is_the_same(backend, sample_chain, reversible_chain):
     runs = sample_chain(reversible_chain, 2000, n_runs=6, seed=1)
     scan = mk.lag_scan(runs, [1, 2, 5], n_samples=12, seed=7, reversible=False, n_processes=2,
