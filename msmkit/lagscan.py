@@ -191,6 +191,12 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     jack = np.full((L, jack_weights.shape[0], n_processes), np.nan)
     bar = _progress(L * (1 + n_samples + jack_weights.shape[0]), progress, "lag scan", cancel)
     pool = ThreadPoolExecutor(min(2, os.cpu_count() or 1))
+    # one BLAS thread throughout: the scan is many small solves (the samples run on the pool's
+    # threads); at 500 states a threaded dense eigen-solve was 3-5x slower than one thread when
+    # other jobs shared the cores, and barely faster on idle ones
+    from threadpoolctl import threadpool_limits  # a dependency of scikit-learn
+
+    limit = threadpool_limits(1, user_api="blas")
     try:
         for a, lag in enumerate(lags):
             rows, n = run_count_rows(placed, lag, n_states=n_states, every_frame=every_frame, blocks_per_run=blocks,
@@ -212,6 +218,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
                 samples[a], jack[a] = got[:n_samples], got[n_samples:]
     finally:
         pool.shutdown(cancel_futures=True)  # a cancelled scan does not wait for queued samples
+        limit.restore_original_limits()
         bar.close()
 
     if n_samples:
@@ -243,14 +250,10 @@ def _timescales_of(weights, rows, n, model, lag, dt, reversible, k, pool, bar, c
                                   what=f"bootstrap samples at lag {lag}", bar=bar)
 
     # samples are independent and run on the pool's threads (the sparse factorisations and
-    # eigen-solves release the interpreter lock); one BLAS thread each, or the threads
-    # oversubscribe the cores
-    from threadpoolctl import threadpool_limits  # a dependency of scikit-learn
-
-    with threadpool_limits(1, user_api="blas"):
-        for b, got in enumerate(pool.map(kernel, values)):
-            out[b, :got.size] = got
-            bar.update(1)
+    # eigen-solves release the interpreter lock), with one BLAS thread each (set by lag_scan)
+    for b, got in enumerate(pool.map(kernel, values)):
+        out[b, :got.size] = got
+        bar.update(1)
     return out
 
 

@@ -156,7 +156,7 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
         pi = _as_distribution(pi, n)
     if reversible is None:
         reversible = obeys_detailed_balance(T, pi)
-    if k < n and n > ITERATIVE_MIN_STATES and k <= n // 10:
+    if not solves_densely(n, k):
         return _leading_eigen(T, pi, k, reversible, vectors)
     if reversible:
         s = np.sqrt(pi)
@@ -185,6 +185,12 @@ def eigen_decomposition(T: np.ndarray, pi: np.ndarray | None = None, *, k: int |
     if np.isrealobj(w):
         v = v.real
     return w, v
+
+
+def solves_densely(n: int, k: int) -> bool:
+    """Whether :func:`eigen_decomposition` finds ``k`` of ``n`` eigenpairs by the full dense solve
+    (which yields all of them at the same cost) rather than iteratively."""
+    return not (k < n and n > ITERATIVE_MIN_STATES and k <= n // 10)
 
 
 def _as_distribution(pi, n: int) -> np.ndarray:
