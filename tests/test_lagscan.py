@@ -418,17 +418,19 @@ def _reference_timescales(C, lag, k):
     return -lag / np.log(np.abs(w))
 
 
-@pytest.mark.parametrize("n, lazy, seed", [(90, 20.0, 0), (150, 5.0, 1), (120, 0.0, 2)])
-def test_pattern_fit_equals_the_estimator(n, lazy, seed):
+@pytest.mark.parametrize("n, extra, lazy, seed", [(400, 200, 20.0, 0), (150, 0, 5.0, 1), (400, 200, 0.0, 2),
+                                                   (101, 0, 0.0, 3)])
+def test_pattern_fit_equals_the_estimator(n, extra, lazy, seed):
     # CountPattern.reversible_fit and flow_eigenvalues against estimate_transition_matrix and
-    # scipy.linalg.eig on random sparse counts (above DENSE_FLOW_STATES: the sparse paths);
+    # scipy.linalg.eig on random sparse counts (above DENSE_FLOW_STATES: the sparse paths; a
+    # plain ring (extra=0) is banded, random links are not: both factorizations are used);
     # lazy=0 leaves no staying counts on most states, so eigenvalues near -1 compete in
     # magnitude (the Gershgorin bound cannot exclude them).
     from msmkit.estimate import CountPattern
-    from msmkit.spectral import DENSE_FLOW_STATES, flow_eigenvalues
+    from msmkit.spectral import DENSE_FLOW_STATES, FlowSpectrum, flow_eigenvalues
     assert n > DENSE_FLOW_STATES
     rng = np.random.default_rng(seed)
-    C = _random_walk_counts(rng, n, n // 3, lazy)
+    C = _random_walk_counts(rng, n, extra, lazy)
     Cc = C.tocoo()
     pattern = CountPattern(Cc.row, Cc.col, n, anchor=int(np.argmax(np.asarray(C.sum(axis=1)))))
     start = rng.uniform(0.5, 1.5, n)  # a poor warm start: the fit must still reach the MLE
@@ -443,6 +445,12 @@ def test_pattern_fit_equals_the_estimator(n, lazy, seed):
     w_ref = w_ref[np.argsort(-np.abs(w_ref))][:6]
     w = flow_eigenvalues(pattern.flow_matrix(fit.flows), 6, shift=1 + 1e-4)
     np.testing.assert_allclose(w, np.real(w_ref), rtol=0, atol=1e-10)
+    spectrum = FlowSpectrum(pattern.sym_i, pattern.sym_j, n)
+    assert spectrum.banded == (extra == 0)
+    A, a, diag = spectrum.symmetric(fit.flows)
+    solve = spectrum._solver(a, diag, 1.01, -1.0)  # the factorization itself, not a fallback
+    b = rng.normal(size=n)
+    np.testing.assert_allclose(1.01 * solve(b) - A @ solve(b), b, atol=1e-10)
     if lazy == 0.0:
         assert np.any(np.real(w_ref[1:]) < 0)  # the case meant: a negative one among the leading
 
