@@ -7,7 +7,7 @@ Before / after in the same run: on ``--compare`` samples at every lag, the per-s
 the scan (msmkit._bootstrap.SampleTimescales) is timed against the route every sample took
 before it (the general estimator on a sample's CSR matrix, then a dense symmetric eigen-solve of
 the leading eigenvalues), both on one thread with one BLAS thread, and the scan time the earlier
-route would have needed is extrapolated from that (20 builds + samples x its mean time / 2
+route would have needed is extrapolated from that (20 builds + samples x the mean time / 2
 threads)."""
 import argparse
 import time

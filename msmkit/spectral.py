@@ -307,7 +307,7 @@ class FlowSpectrum:
         self.diag_entries = np.flatnonzero(self.rows == self.cols)
 
     def symmetric(self, flows) -> tuple:
-        """A = D^-1/2 X D^-1/2 as a CSR matrix (the pattern's structure) and its diagonal."""
+        """A = D^-1/2 X D^-1/2 as a CSR matrix (the pattern's structure), the values on the pattern and the diagonal."""
         import scipy.sparse as sp
         flows = np.asarray(flows, dtype=np.float64)
         d = 1.0 / np.sqrt(np.bincount(self.rows, weights=flows, minlength=self.n))
