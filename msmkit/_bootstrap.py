@@ -143,15 +143,16 @@ class SampleTimescales:
     of the bootstrap (and of anything else that makes many count matrices on that pattern).
 
     A matrix is given by the values on the pattern of a :class:`StateCounts` (rows of
-    :meth:`StateCounts.values`). A reversible sample that connects all the model's states is
-    fitted by :meth:`msmkit.estimate.CountPattern.reversible_fit` -- the maximum-likelihood
-    estimate, warm-started from the model's stationary vector, with sparse Newton steps -- and
-    the eigenvalues come from :class:`msmkit.spectral.FlowSpectrum` (built once per lag), shift-inverted about a
-    point just above 1 chosen from the model's spectrum and started from the model's slow
-    modes. Anything else (a sample that leaves some states unconnected, a non-reversible
-    estimate, a fit that did not converge in ``max_steps``) takes the general route: the
-    largest connected set, :func:`~msmkit.estimate.estimate_transition_matrix`, a dense
-    eigen-solve. Both give the same maximum-likelihood estimate to the tolerance of the fit
+    :meth:`StateCounts.values`). A reversible sample is fitted on its largest connected set
+    (all the model's states, whose pattern is prepared once per lag, or the states it connects,
+    prepared for that sample) by :meth:`msmkit.estimate.CountPattern.reversible_fit` -- the
+    maximum-likelihood estimate, warm-started from the model's stationary vector, with sparse
+    Newton steps -- and the eigenvalues come from :class:`msmkit.spectral.FlowSpectrum`,
+    shift-inverted about a point just above 1 chosen from the model's spectrum and started from
+    the model's slow modes. A non-reversible estimate, or a fit that did not converge in
+    ``max_steps``, takes the general route: :func:`fit_sample`
+    (:func:`~msmkit.estimate.estimate_transition_matrix`) and a dense eigen-solve. Both give the
+    same maximum-likelihood estimate to the tolerance of the fit
     (``tests/test_lagscan.py``). The object is small and picklable (it is sent to dask workers).
 
     Parameters
@@ -188,10 +189,14 @@ class SampleTimescales:
         on the pattern; NaN-free, shorter than ``k`` when the sample has fewer processes."""
         values = np.asarray(values, dtype=np.float64)
         n_eig = min(self.k + 1, self.pattern.n)
-        if self.reversible and self.pattern.is_connected(values):
-            fit = self.pattern.reversible_fit(values, self.equilibrium, max_steps=self.max_steps)
+        if self.reversible:
+            route = self._fast_route(values)
+            if route is None:
+                return np.empty(0)
+            pattern, spectrum, vals, init, start = route
+            fit = pattern.reversible_fit(vals, init, max_steps=self.max_steps)
             if fit.converged:
-                w = self.spectrum.eigenvalues(fit.flows, n_eig, shift=self.shift, start=self.start)
+                w = spectrum.eigenvalues(fit.flows, min(n_eig, pattern.n), shift=self.shift, start=start)
                 return implied_timescales(w[1:], self.lag, self.dt)
         fit = fit_sample(self.pattern.matrix(values), reversible=self.reversible, initial=self.equilibrium)
         if fit is None:
@@ -204,6 +209,25 @@ class SampleTimescales:
         else:
             w = eigen_decomposition(T, pi, k=n_eig, reversible=False)
         return implied_timescales(w[1:], self.lag, self.dt)
+
+    def _fast_route(self, values):
+        """(pattern, spectrum, values, warm start, start vector) of the sample on its largest
+        connected set: the prepared ones when it connects all the model's states, else made
+        for the states it connects (a sample of few runs often leaves some states out); None
+        when fewer than two states remain."""
+        p = self.pattern
+        if p.is_connected(values):
+            return p, self.spectrum, values, self.equilibrium, self.start
+        keep = kept_states(p.matrix(values))
+        if keep.size < 2:
+            return None
+        pos = np.full(p.n, -1, dtype=np.intp)
+        pos[keep] = np.arange(keep.size)
+        inside = (pos[p.rows] >= 0) & (pos[p.cols] >= 0)
+        rows, cols, vals = pos[p.rows[inside]], pos[p.cols[inside]], values[inside]
+        anchor = int(np.argmax(np.bincount(rows, weights=vals, minlength=keep.size)))
+        sub = CountPattern(rows, cols, keep.size, anchor=anchor)
+        return sub, FlowSpectrum(sub.sym_i, sub.sym_j, keep.size), vals, self.equilibrium[keep], self.start[keep]
 
     def batch(self, values) -> np.ndarray:
         """Timescales of many matrices (one row of values each), (n, k), NaN where a sample has

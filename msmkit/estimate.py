@@ -500,7 +500,8 @@ class CountPattern:
         # the CSR arrays of J read as CSC are J^T: factorise J^T and solve with the transpose
         Jt = sp.csc_matrix((data, self._jac_indices, self._jac_indptr), shape=(m, m))
         try:
-            return spla.splu(Jt, permc_spec="NATURAL", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+            # a wide band: fill-reducing ordering of the symmetric pattern
+            return spla.splu(Jt, permc_spec="MMD_AT_PLUS_A", options={"SymmetricMode": True})
         except RuntimeError:
             return None
 

@@ -333,15 +333,16 @@ class FlowSpectrum:
         import scipy.sparse.linalg as sla
         B = sp.csr_matrix((beta * a, self.indices, self.indptr), shape=(self.n, self.n)) \
             + alpha * sp.identity(self.n, format="csr")
-        B = B[self.order][:, self.order].tocsc()
-        try:  # a sparse LU without pivoting: all pivots positive exactly when positive definite
-            lu = sla.splu(B, permc_spec="NATURAL", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+        # a wide band: a sparse LU with a fill-reducing symmetric ordering and no pivoting, whose
+        # pivots are all positive exactly when B is positive definite
+        try:
+            lu = sla.splu(B.tocsc(), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
+                          options={"SymmetricMode": True})
         except RuntimeError:
             return None
-        if np.any(lu.perm_r != np.arange(self.n)) or not np.all(lu.U.diagonal() > 0):
+        if np.any(lu.perm_r != lu.perm_c) or not np.all(lu.U.diagonal() > 0):
             return None
-        order, rank = self.order, self.rank
-        return lambda b: lu.solve(b[order])[rank]
+        return lu.solve
 
     def eigenvalues(self, flows, k: int, *, shift: float | None = None, start=None) -> np.ndarray:
         """The ``k`` largest-magnitude eigenvalues of T (largest first, the stationary 1 first).
