@@ -143,7 +143,7 @@ class SampleTimescales:
     of the bootstrap (and of anything else that makes many count matrices on that pattern).
 
     A matrix is given by the values on the pattern of a :class:`StateCounts` (rows of
-    :meth:`StateCounts.values`). A reversible sample is fitted on its largest connected set
+    :meth:`StateCounts.values`). A reversible sample is fitted on the largest connected set
     (all the model's states, whose pattern is prepared once per lag, or the states it connects,
     prepared for that sample) by :meth:`msmkit.estimate.CountPattern.reversible_fit` -- the
     maximum-likelihood estimate, warm-started from the model's stationary vector, with sparse
@@ -211,7 +211,7 @@ class SampleTimescales:
         return implied_timescales(w[1:], self.lag, self.dt)
 
     def _fast_route(self, values):
-        """(pattern, spectrum, values, warm start, start vector) of the sample on its largest
+        """(pattern, spectrum, values, warm start, start vector) of the sample on the largest
         connected set: the prepared ones when it connects all the model's states, else made
         for the states it connects (a sample of few runs often leaves some states out); None
         when fewer than two states remain."""
