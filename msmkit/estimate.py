@@ -363,6 +363,8 @@ class CountPattern:
         p = rows.size
         sym, where = np.unique(np.concatenate([rows * n + cols, cols * n + rows]), return_inverse=True)
         self.n, self.rows, self.cols, self.anchor = int(n), rows, cols, int(anchor)
+        code = rows * n + cols
+        self._csr_order = bool(np.all(code[1:] > code[:-1]))
         self.sym_i, self.sym_j = sym // n, sym % n  # sorted by row, then column: CSR order
         self._fwd, self._bwd = where[:p], where[p:]
         self.sym_indptr = np.searchsorted(self.sym_i, np.arange(n + 1)).astype(np.int32)
@@ -401,9 +403,13 @@ class CountPattern:
 
     def matrix(self, values) -> sp.csr_matrix:
         """The count matrix as CSR (duplicate-free, zeros kept out)."""
+        values = np.asarray(values, dtype=float)
         nz = np.flatnonzero(values)
-        return sp.csr_matrix((np.asarray(values, dtype=float)[nz], (self.rows[nz], self.cols[nz])),
-                             shape=(self.n, self.n))
+        if not self._csr_order:
+            return sp.csr_matrix((values[nz], (self.rows[nz], self.cols[nz])), shape=(self.n, self.n))
+        indptr = np.zeros(self.n + 1, dtype=np.int32)  # pattern in CSR order: no sorting needed
+        np.cumsum(np.bincount(self.rows[nz], minlength=self.n), out=indptr[1:])
+        return sp.csr_matrix((values[nz], self.cols[nz].astype(np.int32), indptr), shape=(self.n, self.n))
 
     def is_connected(self, values) -> bool:
         """Whether the states of the pattern are strongly connected by the nonzero values."""
