@@ -20,7 +20,8 @@ import scipy.sparse as sp
 
 from .counts import kept_states
 from .errors import Cancelled, DiagnosticWarning, InputError
-from .estimate import estimate_transition_matrix
+from .estimate import CountPattern, estimate_transition_matrix
+from .spectral import FlowSpectrum, eigen_decomposition, flow_eigenvalues, implied_timescales
 
 #: with fewer runs than this, the bootstrap resamples contiguous blocks instead of whole runs
 MIN_RUNS_FOR_RUN_BOOTSTRAP = 5
@@ -135,6 +136,113 @@ class StateCounts:
         indptr = np.zeros(self.n_states + 1, dtype=np.int32)
         np.cumsum(np.bincount(self._rows_of[nz], minlength=self.n_states), out=indptr[1:])
         return sp.csr_matrix((values[nz], self._cols_of[nz], indptr), shape=(self.n_states, self.n_states))
+
+
+class SampleTimescales:
+    """Implied timescales of resampled count matrices on one model's states: the per-lag kernel
+    of the bootstrap (and of anything else that makes many count matrices on that pattern).
+
+    A matrix is given by the values on the pattern of a :class:`StateCounts` (rows of
+    :meth:`StateCounts.values`). A reversible sample is fitted on the largest connected set
+    (all the model's states, whose pattern is prepared once per lag, or the states it connects,
+    prepared for that sample) by :meth:`msmkit.estimate.CountPattern.reversible_fit` -- the
+    maximum-likelihood estimate, warm-started from the model's stationary vector, with sparse
+    Newton steps -- and the eigenvalues come from :class:`msmkit.spectral.FlowSpectrum`,
+    shift-inverted about a point just above 1 chosen from the model's spectrum and started from
+    the model's slow modes. A non-reversible estimate, or a fit that did not converge in
+    ``max_steps``, takes the general route: :func:`fit_sample`
+    (:func:`~msmkit.estimate.estimate_transition_matrix`) and a dense eigen-solve. Both give the
+    same maximum-likelihood estimate to the tolerance of the fit
+    (``tests/test_lagscan.py``). The object is small and picklable (it is sent to dask workers).
+
+    Parameters
+    ----------
+    on_states : StateCounts
+    model : MarkovModel
+        The full-data model at this lag (with the states of ``on_states``).
+    k : int
+        Timescales per sample (slowest first).
+    max_steps : int
+        Newton steps before a sample is handed to the general route.
+    """
+
+    def __init__(self, on_states: "StateCounts", model, k: int, max_steps: int = 50):
+        row = np.asarray(model.transition_counts.sum(axis=1)).ravel()
+        self.pattern = CountPattern(on_states._rows_of, on_states._cols_of, on_states.n_states,
+                                    anchor=int(np.argmax(row)))
+        self.spectrum = FlowSpectrum(self.pattern.sym_i, self.pattern.sym_j, on_states.n_states)
+        self.equilibrium = np.asarray(model.equilibrium, dtype=float)
+        self.reversible, self.lag, self.dt, self.k = bool(model.reversible), int(model.lag), float(model.dt), int(k)
+        self.max_steps = int(max_steps)
+        n_eig = min(self.k + 1, on_states.n_states)
+        if self.reversible:
+            w = np.real(model.spectrum(n_eig))
+            # just above 1 by a hundredth of the gap 1 - lambda_k of the full data: the slow
+            # eigenvalues of a sample are then the best separated ones after the inversion
+            self.shift = 1.0 + max(1e-2 * (1.0 - float(w[-1])), 1e-10)
+            self.start = (np.real(model.modes(n_eig)) * np.sqrt(self.equilibrium)[:, None]).sum(axis=1)
+        else:
+            self.shift, self.start = None, None
+
+    def __call__(self, values) -> np.ndarray:
+        """Timescales (slowest first, in the model's time unit) of one matrix given by the values
+        on the pattern; NaN-free, shorter than ``k`` when the sample has fewer processes."""
+        values = np.asarray(values, dtype=np.float64)
+        n_eig = min(self.k + 1, self.pattern.n)
+        if self.reversible:
+            route = self._fast_route(values)
+            if route is None:
+                return np.empty(0)
+            pattern, spectrum, vals, init, start = route
+            fit = pattern.reversible_fit(vals, init, max_steps=self.max_steps)
+            if fit.converged:
+                w = spectrum.eigenvalues(fit.flows, min(n_eig, pattern.n), shift=self.shift, start=start)
+                return implied_timescales(w[1:], self.lag, self.dt)
+        fit = fit_sample(self.pattern.matrix(values), reversible=self.reversible, initial=self.equilibrium)
+        if fit is None:
+            return np.empty(0)
+        _, T, pi = fit
+        n_eig = min(n_eig, T.shape[0])
+        if self.reversible:
+            X = pi[:, None] * T
+            w = flow_eigenvalues(sp.csr_matrix(0.5 * (X + X.T)), n_eig)
+        else:
+            w = eigen_decomposition(T, pi, k=n_eig, reversible=False)
+        return implied_timescales(w[1:], self.lag, self.dt)
+
+    def _fast_route(self, values):
+        """(pattern, spectrum, values, warm start, start vector) of the sample on the largest
+        connected set: the prepared ones when it connects all the model's states, else made
+        for the states it connects (a sample of few runs often leaves some states out); None
+        when fewer than two states remain."""
+        p = self.pattern
+        if p.is_connected(values):
+            return p, self.spectrum, values, self.equilibrium, self.start
+        keep = kept_states(p.matrix(values))
+        if keep.size < 2:
+            return None
+        pos = np.full(p.n, -1, dtype=np.intp)
+        pos[keep] = np.arange(keep.size)
+        inside = (pos[p.rows] >= 0) & (pos[p.cols] >= 0)
+        rows, cols, vals = pos[p.rows[inside]], pos[p.cols[inside]], values[inside]
+        anchor = int(np.argmax(np.bincount(rows, weights=vals, minlength=keep.size)))
+        sub = CountPattern(rows, cols, keep.size, anchor=anchor)
+        return sub, FlowSpectrum(sub.sym_i, sub.sym_j, keep.size), vals, self.equilibrium[keep], self.start[keep]
+
+    def batch(self, values) -> np.ndarray:
+        """Timescales of many matrices (one row of values each), (n, k), NaN where a sample has
+        fewer processes."""
+        values = np.atleast_2d(values)
+        out = np.full((values.shape[0], self.k), np.nan)
+        for b in range(values.shape[0]):
+            got = self(values[b])
+            out[b, :got.size] = got
+        return out
+
+
+def sample_timescales_batch(values, kernel: SampleTimescales) -> np.ndarray:
+    """Kernel of the bootstrap on a cluster: :meth:`SampleTimescales.batch` of a batch of rows."""
+    return kernel.batch(values)
 
 
 def unflatten(flat, n: int) -> sp.csr_matrix:

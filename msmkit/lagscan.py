@@ -13,11 +13,10 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.linalg as la
 
 from ._bootstrap import BLOCK_UNITS, MIN_RUNS_FOR_RUN_BOOTSTRAP  # noqa: F401  (re-exported constants)
-from ._bootstrap import StateCounts, bootstrap_interval, check_interval, fit_sample, resampling_plan, sample_rows
-from ._bootstrap import warn_few_samples
+from ._bootstrap import SampleTimescales, StateCounts, bootstrap_interval, check_interval, resampling_plan
+from ._bootstrap import sample_timescales_batch, warn_few_samples
 from ._bootstrap import progress_bar as _progress
 from ._bootstrap import unflatten as _unflatten
 from ._checks import (as_label_trajectories, check_bool, check_dt, check_int, check_probability, check_seed,
@@ -27,7 +26,6 @@ from .counts import prepare_counting, run_count_rows
 from .defaults import PROCESSES
 from .errors import InputError
 from .model import MarkovModel, fingerprint, model_from_counts, now_utc, package_version
-from .spectral import eigen_decomposition, implied_timescales, magnitude_order
 
 __all__ = ["LagScan", "lag_scan", "suggest_lag"]
 
@@ -193,6 +191,12 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     jack = np.full((L, jack_weights.shape[0], n_processes), np.nan)
     bar = _progress(L * (1 + n_samples + jack_weights.shape[0]), progress, "lag scan", cancel)
     pool = ThreadPoolExecutor(min(2, os.cpu_count() or 1))
+    # one BLAS thread throughout: the scan is many small solves (the samples run on the pool's
+    # threads); at 500 states a threaded dense eigen-solve was 3-5x slower than one thread when
+    # other jobs shared the cores, and barely faster on idle ones
+    from threadpoolctl import threadpool_limits  # a dependency of scikit-learn
+
+    limit = threadpool_limits(1, user_api="blas")
     try:
         for a, lag in enumerate(lags):
             rows, n = run_count_rows(placed, lag, n_states=n_states, every_frame=every_frame, blocks_per_run=blocks,
@@ -214,6 +218,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
                 samples[a], jack[a] = got[:n_samples], got[n_samples:]
     finally:
         pool.shutdown(cancel_futures=True)  # a cancelled scan does not wait for queued samples
+        limit.restore_original_limits()
         bar.close()
 
     if n_samples:
@@ -237,26 +242,18 @@ def _timescales_of(weights, rows, n, model, lag, dt, reversible, k, pool, bar, c
     out = np.full((weights.shape[0], k), np.nan)
     if not weights.shape[0]:
         return out
-    if client is not None:
-        initial = np.zeros(n)
-        # positive exactly on the model's states: the samples are restricted to them
-        initial[model.states] = np.maximum(model.equilibrium, np.finfo(float).tiny)
-        return map_sample_batches(sample_timescales_batch, sample_rows(weights, rows), n, lag, dt, reversible,
-                                  initial, k, client=client, what=f"bootstrap samples at lag {lag}", bar=bar)
     on_states = StateCounts(rows, n, model.states)
     values = on_states.values(weights)  # all samples in one product
+    kernel = SampleTimescales(on_states, model, k)
+    if client is not None:
+        return map_sample_batches(sample_timescales_batch, values, kernel, client=client,
+                                  what=f"bootstrap samples at lag {lag}", bar=bar)
 
-    def one(b):
-        return _fitted_timescales(on_states.matrix(values[b]), lag, dt, reversible, model.equilibrium, k)
-
-    # samples are independent and run on the pool's threads (the estimate and eigen-solve release
-    # the interpreter lock); one BLAS thread each, or the threads oversubscribe the cores
-    from threadpoolctl import threadpool_limits  # a dependency of scikit-learn
-
-    with threadpool_limits(1, user_api="blas"):
-        for b, got in enumerate(pool.map(one, range(weights.shape[0]))):
-            out[b, :got.size] = got
-            bar.update(1)
+    # samples are independent and run on the pool's threads (the sparse factorisations and
+    # eigen-solves release the interpreter lock), with one BLAS thread each (set by lag_scan)
+    for b, got in enumerate(pool.map(kernel, values)):
+        out[b, :got.size] = got
+        bar.update(1)
     return out
 
 
@@ -280,69 +277,11 @@ def _check_lags(lags, runs) -> list[int]:
     return sorted(set(values))
 
 
-def _sample_timescales(row, n, lag, dt, reversible, initial, k) -> np.ndarray:
-    """Timescales of one bootstrap sample given as a flattened count row; NaN-free, may be short.
-
-    ``initial`` is the full-data model's stationary vector over all ``n`` labels, zero outside
-    the model's states. The sample is restricted to those states (the largest connected set
-    among them): a sample drawn mostly from runs of a component the full-data model dropped
-    must not report that component's timescales.
-    """
-    states = np.flatnonzero(np.asarray(initial) > 0)
-    C = _unflatten(row, n)[states][:, states]
-    return _fitted_timescales(C, lag, dt, reversible, np.asarray(initial)[states], k)
-
-
-def _fitted_timescales(C, lag, dt, reversible, initial, k) -> np.ndarray:
-    """Timescales of one bootstrap sample's counts among the model's states (``initial``: the
-    model's stationary vector, the warm start); NaN-free, may be short."""
-    fit = fit_sample(C, reversible=reversible, initial=initial)
-    if fit is None:
-        return np.empty(0)
-    _, T, pi = fit
-    if reversible:
-        w = _leading_eigenvalues(T, pi, min(k + 1, T.shape[0]))
-    else:
-        w = eigen_decomposition(T, pi, k=min(k + 1, T.shape[0]), reversible=False)
-    return implied_timescales(w[1:k + 1], lag, dt)
-
-
-def sample_timescales_batch(rows, n, lag, dt, reversible, initial, k) -> np.ndarray:
-    """Kernel of the bootstrap on a cluster: the timescales of a batch of bootstrap samples
-    (one flattened count row each), ``(n_rows, k)``, NaN where a sample has fewer processes."""
-    out = np.full((rows.shape[0], k), np.nan)
-    for b in range(rows.shape[0]):
-        got = _sample_timescales(rows.getrow(b), n, lag, dt, reversible, initial, k)
-        out[b, :got.size] = got
-    return out
-
-
 #: a suggestion needs the candidate's interval narrower than this share of the estimate
 #: (upper - lower <= 0.5 x timescale, i.e. about +-25 %); wider intervals agree with anything
 MAX_RELATIVE_WIDTH = 0.5
 #: a suggestion needs at least this many larger scanned lags that confirm the value
 MIN_CONFIRMING_LAGS = 2
-
-
-def _leading_eigenvalues(T, pi, k) -> np.ndarray:
-    """The ``k`` largest-magnitude eigenvalues of a reversible T, largest first, from a partial
-    symmetric solve (only the k largest, and the k smallest when they could compete in magnitude).
-
-    The k of largest magnitude are among the k largest and the k smallest algebraic ones. All
-    eigenvalues lie in Gershgorin discs, so none is below min_i (2 T_ii - 1) (Horn & Johnson,
-    Matrix Analysis, Thm. 6.1.1): when that bound is above -|lambda_k|, the negative end is skipped.
-    """
-    n = T.shape[0]
-    if k >= n - 1:
-        return eigen_decomposition(T, pi, k=k, reversible=True)
-    s = np.sqrt(pi)
-    A = s[:, None] * T / s[None, :]
-    A = 0.5 * (A + A.T)
-    w = la.eigh(A, eigvals_only=True, subset_by_index=[n - k, n - 1], check_finite=False)
-    if 2 * np.min(np.diag(T)) - 1 < -np.min(np.abs(w)):
-        low = la.eigh(A, eigvals_only=True, subset_by_index=[0, k - 1], check_finite=False)
-        w = np.concatenate([w, low])
-    return w[magnitude_order(w)][:k]
 
 
 def suggest_lag(lags, timescales, lower, upper, *, dt: float, unit: str, n_slow: int = 2, rtol: float = 0.05,

@@ -22,7 +22,7 @@ from .errors import DiagnosticWarning, InputError
 from .estimate import EstimationInfo, estimate_transition_matrix
 from .modelfile import read_model_file, save_model
 from .spectral import (chain_diagnostics, changes_out, eigen_decomposition, implied_timescales,
-                       obeys_detailed_balance, equilibrium_distribution, slow_crossings)
+                       obeys_detailed_balance, equilibrium_distribution, slow_crossings, solves_densely)
 
 __all__ = ["MarkovModel", "build_model", "load_model", "GAS_CONSTANT_KJ"]
 
@@ -127,9 +127,12 @@ class MarkovModel:
         n = self.n_states
         k = n if k is None else min(check_int(k, "k", minimum=1), n)
         if self._spectrum is None or self._spectrum[0].size < k:
+            # one solve serves every later request: all pairs when the solve is dense anyway (it
+            # computes them all), else at least the pairs the diagnostics read
+            want = max(k, min(n, REPORTED + 1))
             self._spectrum = eigen_decomposition(self.propagator, self.equilibrium,
-                                                 k=None if k == n else k, reversible=self.reversible,
-                                                 vectors=True)
+                                                 k=None if solves_densely(n, want) else want,
+                                                 reversible=self.reversible, vectors=True)
         w, v = self._spectrum
         return w[:k], v[:, :k]
 

@@ -270,6 +270,17 @@ def test_lag_scan_bootstrap_is_the_same(backend, sample_chain, reversible_chain)
     np.testing.assert_array_equal(scan.lower, memory.lower)
 
 
+def test_reversible_lag_scan_bootstrap_is_the_same(backend, sample_chain, reversible_chain):
+    # the per-sample kernel (pattern fit + shift-invert eigenvalues) sent to the workers gives the
+    # samples of the in-memory scan, bit for bit (same arithmetic on the same values)
+    runs = sample_chain(reversible_chain, 2000, n_runs=6, seed=1)
+    scan = mk.lag_scan(runs, [1, 2, 5], n_samples=12, seed=7, n_processes=2, **backend)
+    memory = mk.lag_scan(runs, [1, 2, 5], n_samples=12, seed=7, n_processes=2)
+    assert np.all(np.isfinite(scan.samples))
+    np.testing.assert_array_equal(scan.samples, memory.samples)
+    np.testing.assert_array_equal(scan.lower, memory.lower)
+
+
 def test_chapman_kolmogorov_is_the_same(backend, sample_chain, reversible_chain):
     runs = sample_chain(reversible_chain, 1500, n_runs=6, seed=9)
     model = mk.build_model(runs, 2, reversible=True)

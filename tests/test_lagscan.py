@@ -16,8 +16,10 @@ import numpy as np
 import pandas as pd
 import pytest
 import scipy.linalg as la
+import scipy.sparse as sp
 
 from msmkit.errors import DiagnosticWarning, InputError
+from msmkit.estimate import estimate_transition_matrix
 from msmkit.lagscan import LagScan, lag_scan, suggest_lag
 from msmkit.model import build_model
 
@@ -389,3 +391,100 @@ def test_interval_coverage_on_a_known_chain(sample_chain):
         hits.append(scan.lower[0, 0] <= exact <= scan.upper[0, 0])
     coverage = np.mean(hits)
     assert abs(coverage - 0.95) <= 3 * np.sqrt(0.95 * 0.05 / R), coverage
+
+
+# --------------------------------------------------------------------------- the per-sample kernel
+
+def _random_walk_counts(rng, n, extra, lazy):
+    """A strongly connected sparse count matrix: a ring of n states plus ``extra`` random
+    links in both directions, Poisson counts; ``lazy`` scales the counts of staying."""
+    i = np.concatenate([np.arange(n), np.arange(n), rng.integers(0, n, extra)])
+    j = np.concatenate([(np.arange(n) + 1) % n, np.arange(n), rng.integers(0, n, extra)])
+    i, j = np.concatenate([i, j]), np.concatenate([j, i])
+    mean = np.where(i == j, lazy, 1.0) * rng.uniform(5, 200, i.size)
+    C = sp.coo_matrix((rng.poisson(mean) + (i != j), (i, j)), shape=(n, n)).tocsr()
+    C.sum_duplicates()
+    return C
+
+
+def _reference_timescales(C, lag, k):
+    """Timescales of the reversible MLE on the largest connected set: estimate_transition_matrix
+    and the eigenvalues of scipy.linalg.eig sorted by magnitude (exact linear algebra)."""
+    from msmkit.counts import kept_states
+    keep = kept_states(C)
+    T = estimate_transition_matrix(C[keep][:, keep], reversible=True, tol=1e-13)
+    w = la.eig(T, right=False)
+    w = np.real(w[np.argsort(-np.abs(w))])[1:k + 1]
+    return -lag / np.log(np.abs(w))
+
+
+@pytest.mark.parametrize("n, extra, lazy, seed", [(400, 200, 20.0, 0), (150, 0, 5.0, 1), (400, 200, 0.0, 2),
+                                                   (101, 0, 0.0, 3)])
+def test_pattern_fit_equals_the_estimator(n, extra, lazy, seed):
+    # CountPattern.reversible_fit and flow_eigenvalues against estimate_transition_matrix and
+    # scipy.linalg.eig on random sparse counts (above DENSE_FLOW_STATES: the sparse paths; a
+    # plain ring (extra=0) is banded, random links are not: both factorizations are used);
+    # lazy=0 leaves no staying counts on most states, so eigenvalues near -1 compete in
+    # magnitude (the Gershgorin bound cannot exclude them).
+    from msmkit.estimate import CountPattern
+    from msmkit.spectral import DENSE_FLOW_STATES, FlowSpectrum, flow_eigenvalues
+    assert n > DENSE_FLOW_STATES
+    rng = np.random.default_rng(seed)
+    C = _random_walk_counts(rng, n, extra, lazy)
+    Cc = C.tocoo()
+    pattern = CountPattern(Cc.row, Cc.col, n, anchor=int(np.argmax(np.asarray(C.sum(axis=1)))))
+    start = rng.uniform(0.5, 1.5, n)  # a poor warm start: the fit must still reach the MLE
+    fit = pattern.reversible_fit(Cc.data.astype(float), start / start.sum())
+    assert fit.converged
+    T_ref, info = estimate_transition_matrix(C, reversible=True, tol=1e-13, return_info=True)
+    X = pattern.flow_matrix(fit.flows).toarray()
+    np.testing.assert_allclose(X, X.T, rtol=0, atol=0)
+    np.testing.assert_allclose(X / X.sum(axis=1, keepdims=True), T_ref, rtol=0, atol=1e-11)
+    np.testing.assert_allclose(fit.equilibrium, info.equilibrium, rtol=1e-9)
+    w_ref = la.eig(T_ref, right=False)
+    w_ref = w_ref[np.argsort(-np.abs(w_ref))][:6]
+    w = flow_eigenvalues(pattern.flow_matrix(fit.flows), 6, shift=1 + 1e-4)
+    np.testing.assert_allclose(w, np.real(w_ref), rtol=0, atol=1e-10)
+    spectrum = FlowSpectrum(pattern.sym_i, pattern.sym_j, n)
+    assert spectrum.banded == (extra == 0)
+    A, a, diag = spectrum.symmetric(fit.flows)
+    solve = spectrum._solver(a, diag, 1.01, -1.0)  # the factorization itself, not a fallback
+    b = rng.normal(size=n)
+    np.testing.assert_allclose(1.01 * solve(b) - A @ solve(b), b, atol=1e-10)
+    if lazy == 0.0:
+        assert np.any(np.real(w_ref[1:]) < 0)  # the case meant: a negative one among the leading
+
+
+def test_sample_kernel_equals_the_estimator_on_every_sample():
+    # SampleTimescales (the lag scan's per-sample kernel, fast route and general route) against
+    # the estimator + scipy.linalg.eig on the same resampled counts, units of a random walk
+    # among 100 states of which some are visited by few units (some samples disconnect them).
+    from msmkit._bootstrap import SampleTimescales, StateCounts, resampling_plan
+    from msmkit.counts import run_count_rows
+    from msmkit.model import model_from_counts
+    rng = np.random.default_rng(5)
+    n = 100
+    C = _random_walk_counts(rng, n, 40, 10.0)
+    T = C.toarray() / np.asarray(C.sum(axis=1))
+    runs = []
+    for r in range(8):  # each run wanders over part of the ring
+        x = [int(rng.integers(0, n))]
+        for u in rng.random(3000):
+            x.append(int(np.searchsorted(np.cumsum(T[x[-1]]), u * 0.999999999)))
+        runs.append(np.array(x))
+    lag, k = 3, 4
+    rows, n_labels = run_count_rows(runs, lag)
+    full = np.asarray(rows.sum(axis=0)).ravel()
+    model = quiet(model_from_counts, sp.csr_matrix(full.reshape(n_labels, n_labels)), lag, dt=1.0, unit="step",
+                  reversible=True)
+    on_states = StateCounts(rows, n_labels, model.states)
+    kernel = SampleTimescales(on_states, model, k)
+    _, weights, _ = resampling_plan(len(runs), 12, np.random.default_rng(0))
+    values = on_states.values(weights)
+    general = 0
+    for b in range(values.shape[0]):
+        Cb = on_states.matrix(values[b])
+        general += not kernel.pattern.is_connected(values[b])
+        ref = _reference_timescales(Cb, lag, k)
+        np.testing.assert_allclose(kernel(values[b]), ref, rtol=1e-8)
+    assert 0 < general < values.shape[0]  # both routes were taken
