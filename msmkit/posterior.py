@@ -63,6 +63,9 @@ from .spectral import eigen_decomposition, equilibrium_distribution, obeys_detai
 
 __all__ = ["iter_reversible_posterior", "sample_reversible_posterior"]
 
+#: how the intervals of lag scans and Chapman–Kolmogorov tests are obtained
+UNCERTAINTIES = ("bootstrap", "bayes")
+
 #: off-diagonal random-walk step in log x_ij, in units of the conditional's standard deviation
 #: (about 2.4 is the usual optimum of a one-dimensional Gaussian random walk, common practice)
 STEP_FACTOR = 2.4
@@ -261,6 +264,47 @@ def iter_reversible_posterior(counts, n_samples, *, seed=None, burn_in=100, thin
     n_samples = _check_int("n_samples", n_samples, 1)
     chain, burn_in, thin = _prepare(counts, burn_in, thin, prior_count, initial, seed)
     return _draw(chain, n_samples, burn_in, thin)
+
+
+def check_uncertainty(uncertainty, reversible: bool = True) -> str:
+    """The uncertainty method ("bootstrap" or "bayes"), or InputError naming the choices.
+
+    "bayes" samples the posterior of reversible matrices only: with ``reversible=False`` it is
+    refused, naming both arguments."""
+    if not isinstance(uncertainty, str) or uncertainty not in UNCERTAINTIES:
+        raise InputError(f"uncertainty must be one of {', '.join(map(repr, UNCERTAINTIES))}, "
+                         f"but got {uncertainty!r}")
+    if uncertainty == "bayes" and not reversible:
+        raise InputError("uncertainty='bayes' samples the posterior of reversible transition matrices and needs "
+                         "reversible=True (a reversible model); with reversible=False use "
+                         "uncertainty='bootstrap'")
+    return uncertainty
+
+
+def effective_counts(counts, lag: int, every_frame: bool) -> sp.csr_matrix:
+    """Counts as independent transitions for the posterior: sliding-window counts
+    (``every_frame=True``) divided by the lag.
+
+    Windows that start less than a lag apart overlap, so a run of N frames holds about
+    N / lag independent transitions at lag ``lag``, not N - lag; a posterior of the raw sliding
+    counts would be about sqrt(lag) times too narrow (common practice)."""
+    C = as_count_matrix(counts)
+    return C / float(lag) if every_frame and lag > 1 else C
+
+
+def posterior_at_lag(counts, n_samples: int, *, lag: int, every_frame: bool, seed=None, initial=None):
+    """Posterior samples ``(T, pi)`` for the counts of one lag, the sliding windows counted as
+    :func:`effective_counts`; ``initial`` (the reversible estimate of the same counts, which
+    does not depend on that scaling) saves the estimate the sampler would otherwise start from.
+    Used by the ``uncertainty="bayes"`` intervals of lag scans and Chapman–Kolmogorov tests."""
+    C = effective_counts(counts, lag, every_frame)
+    try:
+        return iter_reversible_posterior(C, n_samples, seed=seed, initial=initial)
+    except InputError:
+        if initial is None:
+            raise
+        # an estimate converged only to its own tolerance may fail the strict detailed-balance check
+        return iter_reversible_posterior(C, n_samples, seed=seed)
 
 
 def _draw(chain: _FluxChain, n_samples: int, burn_in: int, thin: int):

@@ -334,7 +334,7 @@ def test_estimate_outside_its_interval_is_flagged():
     scan = LagScan(lags, ts, lower, upper, np.empty((2, 0, 2)), 1.0, "ns", 0.95, 20, None, "")
     assert scan.table()["estimate_outside"].tolist() == [False, True, False, False]
     note = next(n for n in _scan_findings(lags, ts, {}, 1.0, "ns", lower, upper) if "outside" in n)
-    assert note.startswith("At lag(s) [1] frames 1 timescale(s) lie outside the bootstrap interval")
+    assert note.startswith("At lag(s) [1] frames 1 timescale(s) lie outside the interval")
 
 
 def test_samples_stay_on_the_full_data_states(sample_chain):
