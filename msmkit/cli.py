@@ -175,7 +175,7 @@ class _Outputs:
 def _scan_and_choose(labels, args, lags, dt, unit):
     from .lagscan import lag_scan
     scan = lag_scan(labels, lags, dt=dt, unit=unit, n_processes=args.timescales, n_samples=args.samples,
-                    seed=args.seed, progress=not args.quiet)
+                    seed=args.seed, uncertainty=args.uncertainty, progress=not args.quiet)
     return scan
 
 
@@ -202,7 +202,7 @@ def _validate(model, labels, args, out: _Outputs):
     longest = max(len(r) for r in labels)
     multiples = max(1, min(args.multiples, (longest - 1) // model.lag))
     ck = chapman_kolmogorov(model, labels, n_sets=n_sets, multiples=multiples, n_samples=args.ck_samples,
-                            seed=args.seed, progress=not args.quiet)
+                            seed=args.seed, uncertainty=args.uncertainty, progress=not args.quiet)
     out.add_figure("chapman_kolmogorov.png", plot_chapman_kolmogorov(ck))
     out.add_text("chapman_kolmogorov.csv", ck.table().to_csv(index=False))
     out.add_figure("lag_flow.png", plot_lag_flow(lag_flow(ck)))
@@ -371,6 +371,15 @@ _positive_float = _positive(float, "a number")
 _positive_int = _positive(int, "a whole number")
 
 
+def add_uncertainty_option(sp, what: str) -> None:
+    """``--uncertainty {bootstrap,bayes}``: one definition for every command that forms intervals
+    (``what`` says which ones, e.g. "of the implied timescales")."""
+    from .posterior import UNCERTAINTIES
+    sp.add_argument("--uncertainty", choices=UNCERTAINTIES, default=UNCERTAINTIES[0],
+                    help=f"how the intervals {what} are obtained: bootstrap over runs, or bayes, the "
+                         f"posterior of reversible transition matrices (default %(default)s)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="msmkit", description="Markov state models from simulation trajectories.")
     p.add_argument("--version", action="version", version=f"msmkit {_version()}")
@@ -412,14 +421,17 @@ def build_parser() -> argparse.ArgumentParser:
     def scanning(sp, default_lags, *, validates):
         sp.add_argument("--lags", default=default_lags, help=f"comma-separated lags in frames (default {default_lags})")
         sp.add_argument("--samples", type=int, default=BOOTSTRAP_SAMPLES,
-                        help="bootstrap samples per lag for the intervals (default %(default)s; 0 = none)")
+                        help="samples per lag for the intervals, bootstrap or posterior (default %(default)s; "
+                             "0 = none)")
         sp.add_argument("--timescales", type=_positive_int, default=PROCESSES, help="slow processes to follow (default %(default)s)")
+        add_uncertainty_option(sp, "of the implied timescales" + (" and the Chapman–Kolmogorov test" if validates
+                                                                   else ""))
         if not validates:
             return
         sp.add_argument("--multiples", type=_positive_int, default=CK_MULTIPLES,
                         help="Chapman–Kolmogorov test up to this multiple of the lag (default %(default)s)")
         sp.add_argument("--ck-samples", type=int, default=CK_SAMPLES,
-                        help="bootstrap samples of the Chapman–Kolmogorov test (default %(default)s)")
+                        help="samples of the Chapman–Kolmogorov test, bootstrap or posterior (default %(default)s)")
 
     d = sub.add_parser("demo", help="run the whole job headless on the demo scenario",
                        description="Demo scenario -> TICA -> microstates -> lag scan -> chosen model; writes "
