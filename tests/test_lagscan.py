@@ -408,7 +408,8 @@ def bayes_scan(markov_runs):
 @pytest.mark.parametrize("lag", [1, 2])
 def test_bayes_timescale_of_two_states_follows_the_beta_posterior(sample_chain, lag):
     # Reference (module docstring): T_00 ~ Beta(C_00 + b + 1, C_01 + b + 1) and T_11 likewise,
-    # independent, b = -0.5; sliding-window counts at lag 2 enter divided by 2. The equal-tailed
+    # independent, with the intervals' prior count b = -1; sliding-window counts at lag 2 enter
+    # divided by 2. The equal-tailed
     # interval must leave 2.5 % of the reference posterior beyond each end; with 4000 nearly
     # independent samples a level is uncertain by about 0.0025, allowed 0.008 (three of that).
     # The posterior of the undivided counts at lag 2 is narrower: only 0.002-0.003 of it lies beyond
@@ -417,7 +418,7 @@ def test_bayes_timescale_of_two_states_follows_the_beta_posterior(sample_chain, 
     runs = sample_chain(T, 3000, n_runs=4, seed=3)
     scan = lag_scan(runs, [lag], n_processes=1, n_samples=4000, seed=0, uncertainty="bayes")
     C = quiet(build_model, runs, lag).transition_counts.toarray() / lag
-    b = -0.5
+    b = -1.0  # msmkit.posterior.INTERVAL_PRIOR_COUNT: the likelihood alone
     rng = np.random.default_rng(1)
     t00 = stats.beta(C[0, 0] + b + 1, C[0, 1] + b + 1).rvs(200_000, random_state=rng)
     t11 = stats.beta(C[1, 1] + b + 1, C[1, 0] + b + 1).rvs(200_000, random_state=rng)
