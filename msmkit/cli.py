@@ -110,6 +110,9 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
     lines.append("  most populated states (label: population):")
     lines += [f"    {int(r.state)}: {r.population:.4f}" for r in pops.itertuples()]
     if scan is not None:
+        if scan.n_samples:
+            lines.append(f"  intervals:         {100 * scan.confidence:g}% from {scan.n_samples} samples per lag, "
+                         f"{scan.uncertainty}")
         lines.append(f"  suggested lag:     {scan.suggested_lag}")
         lines.append(f"  reason:            {scan.reason}")
         lines += [f"  note: {n}" for n in scan.notes]

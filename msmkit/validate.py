@@ -88,7 +88,7 @@ class CKResult:
         (:attr:`uncertainty`), of ``estimated`` (NaN without samples).
     deviation : ndarray, shape (K, m, m)
         (predicted - estimated) in units of the standard error of the estimate (the standard
-        deviation of its samples); NaN where no interval was usable.
+        deviation of the samples); NaN where no interval was usable.
     within : ndarray of bool, shape (K, m, m)
         The prediction passes: the deviation stays below :attr:`threshold` (the family-wise
         limit over all compared points), or within ``tolerance`` where no interval was usable.
@@ -304,6 +304,16 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
     "inconclusive" when the data change between the sets, or cross the slowest process, fewer
     than 20 times at the model's lag. Read the number of failing points, the deviations and the
     figure, not only the verdict.
+
+    With ``uncertainty="bayes"`` the same rule is applied to the posterior standard deviations of
+    the estimates. Measured (10 runs; Markov data: a 20-state chain with 4 sets at lag 5, 30
+    replicates; lumped data: the observed two sets of a hidden four-state chain, 20-30
+    replicates): false alarms 0 of 30 with either method; lumped data failed at lags 1-10 in
+    every replicate with either method, at lag 20 in 4 of 20 with the bootstrap and 0 of 20
+    with the posterior. The posterior of sliding-window counts divided by the lag is wider than
+    the sampling error at long lags (posterior standard deviation over the spread across replicates: 1.02
+    at lag 1, 1.05-1.22 at lags 3-12, 1.18-1.59 at lags 10-40; the bootstrap's 0.91-0.99), so
+    the bayes verdict is the more conservative one at long lags.
 
     References
     ----------

@@ -10,7 +10,7 @@ External references:
   practice);
 - build_model at the same lag (same counts, same estimator) for LagScan.model;
 - uncertainty="bayes": for two states the posterior of msmkit.posterior is a product of Beta
-  distributions, one per row (derived in its module notes and checked against scipy there), so the
+  distributions, one per row (derived in the notes of that module and checked against scipy there), so the
   posterior of the timescale -lag / ln(T_00 + T_11 - 1) is sampled here from scipy.stats.beta; at
   lag 1 the posterior spread approaches the first-order sampling error (Bernstein-von Mises,
   common practice).
