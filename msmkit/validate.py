@@ -328,7 +328,7 @@ def chapman_kolmogorov(model, labels, *, n_sets=None, sets=None, multiples=CK_MU
     >>> model = build_model(runs, lag=1)
     >>> ck = chapman_kolmogorov(model, runs, multiples=3, n_samples=10, seed=0)
     >>> ck.passed, ck.table().shape
-    (True, (12, 15))
+    (True, (12, 17))
     """
     model = _check_model(model)
     runs = as_label_trajectories(labels)

@@ -152,7 +152,9 @@ def test_ck_table_units_and_intervals(markov_ck):
     assert isinstance(df, pd.DataFrame)
     assert list(df.columns) == ["from_set", "to_set", "k", "lag", "lag_time", "predicted", "estimated", "lower",
                                 "upper", "deviation", "within", "outside_interval", "used_tolerance", "outside_by",
-                                "estimate_outside"]
+                                "estimate_outside", "predicted_lower", "predicted_upper"]
+    assert df.attrs["uncertainty"] == "bootstrap" and df.attrs["confidence"] == 0.95
+    assert df["predicted_lower"].isna().all()  # prediction intervals come with uncertainty="bayes" only
     assert df.attrs["n_compared"] == markov_ck.n_compared and df.attrs["threshold"] == markov_ck.threshold
     assert len(df) == 3 * 3 * 5 and df.attrs["unit"] == "ns"
     first = df.iloc[:5]
