@@ -1,72 +1,112 @@
-"""Coverage of 95 % credible intervals from the reversible posterior, and the cost of one sample.
+"""Coverage of nominal 95 % intervals: the bootstrap and the Bayesian posterior side by side,
+and the cost of one posterior sample.
 
-Known chain: four states in two slowly exchanging pairs (slowest implied timescale 154 steps).
-Each replicate simulates 10 runs from equilibrium, counts transitions at lag 1, draws posterior
-samples (msmkit.sample_reversible_posterior, default burn-in and thinning) and checks whether the
-central 95 % credible interval of the slowest implied timescale and of each state population holds
-the true value. Coverage = fraction of replicates that hold it (target 0.93-0.97), with the
-binomial standard error.
+Known chains (truth from scipy.linalg.eig): "pairs", four states in two slowly exchanging pairs
+(slowest implied timescale 154 steps), at 10 runs x 1000 and x 4000 frames; and the two chains of
+bench_coverage.py ("four", 1000 steps; "lattice", 49 states, 2000 steps, lag 2). Each replicate
+simulates 10 runs from equilibrium and forms the intervals a user gets:
+
+* bootstrap: ``lag_scan(..., uncertainty="bootstrap")`` (bias-corrected, widened for few runs)
+  for the timescales, ``bootstrap_interval(method="bc", n_units=runs)`` of
+  ``MarkovModel.bootstrap_stationary`` for the populations;
+* bayes: ``lag_scan(..., uncertainty="bayes")`` for the timescales and equal-tailed intervals of
+  the populations of ``msmkit.posterior.posterior_at_lag`` samples of the model's counts.
+
+Coverage = share of replicates whose interval holds the truth (target 0.93-0.97), with the
+binomial standard error sqrt(c (1 - c) / R); "below" / "above" = share with the truth below the
+lower / above the upper end (0.025 each expected). Populations are pooled over states. Also
+printed: the relative bias of the maximum-likelihood estimate, and the median number of
+crossings of the slowest process per data set (``MarkovModel.state_changes``).
 
 Speed: time per posterior sample (default thinning) against one reversible maximum-likelihood fit
 of the same counts, measured in the same run (ratio = sample / fit).
 """
 import argparse
 import time
+import warnings
 
 import numpy as np
 
 import msmkit as mk
 from _chains import sample_chain
 from _timing import best_time
+from bench_coverage import four_state_chain, lattice_chain, truth
+from msmkit._bootstrap import bootstrap_interval, percentile_interval
+from msmkit.posterior import posterior_at_lag
 
 FLUX = np.array([[1000, 60, 2, 0],
                  [60, 800, 3, 1],
                  [2, 3, 700, 50],
                  [0, 1, 50, 900]], dtype=float)  # symmetric: detailed balance by construction
 
-
-def true_chain():
-    T = FLUX / FLUX.sum(axis=1, keepdims=True)
-    pi = FLUX.sum(axis=1) / FLUX.sum()
-    return T, pi, slowest_timescales(T[None], pi[None])[0]
+METHODS = ("bootstrap", "bayes")
+QUANTITIES = ("slowest timescale", "2nd timescale", "populations")
 
 
-def slowest_timescales(Ts, pis):
-    """Slowest implied timescale -1 / ln(lambda_2) (lag 1, in steps) of each reversible matrix,
-    from the symmetrized matrices; NaN where lambda_2 <= 0."""
-    s = np.sqrt(pis)
-    A = s[:, :, None] * Ts / s[:, None, :]
-    lam2 = np.linalg.eigvalsh(0.5 * (A + np.transpose(A, (0, 2, 1))))[:, -2]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(lam2 > 0, -1.0 / np.log(lam2), np.nan)
+def pairs_chain() -> np.ndarray:
+    return FLUX / FLUX.sum(axis=1, keepdims=True)
 
 
-def replicate(T, pi, t_true, n_runs, n_frames, n_samples, rng, prior_count=None):
-    """One simulated data set: (covered?, interval width / truth) for [timescale, pi_0 .. pi_n-1]."""
-    runs = sample_chain(T, pi, n_runs, n_frames, rng)
-    C = mk.count_transitions(runs, 1)
-    keep = mk.kept_states(C)
-    if keep.size < T.shape[0]:
-        return None  # a state never visited or never left: no model of the full chain
-    options = {} if prior_count is None else {"prior_count": prior_count}
-    Ts, pis = mk.sample_reversible_posterior(C, n_samples, seed=rng, return_equilibrium=True, **options)
-    values = np.column_stack([slowest_timescales(Ts, pis), pis])
-    lo, hi = np.nanpercentile(values, 2.5, axis=0), np.nanpercentile(values, 97.5, axis=0)
-    truth = np.concatenate([[t_true], pi])
-    crossings = int(C[:2, 2:].sum() + C[2:, :2].sum())
-    return (lo <= truth) & (truth <= hi), (hi - lo) / truth, crossings
+def replicate(T, runs, lag, n_samples, seed):
+    """{method: (lower, upper) of [t_1, t_2, pi_0 .. pi_n-1]}, the MLE values and the crossings of
+    the slowest process; None when the model does not keep every state."""
+    n = T.shape[0]
+    model = mk.build_model(runs, lag)
+    if model.n_states != n:
+        return None
+    est = np.concatenate([model.relaxation_times(2), model.equilibrium])
+    out = {}
+    for method in METHODS:
+        scan = mk.lag_scan(runs, [lag], n_processes=2, n_samples=n_samples, seed=seed, uncertainty=method)
+        if method == "bootstrap":
+            pops = model.bootstrap_stationary(runs, n_samples=n_samples, seed=seed)
+            p_lo, p_hi = bootstrap_interval(pops, model.equilibrium, 0.95, method="bc", n_units=len(runs))
+        else:
+            pis = np.array([pi for _, pi in posterior_at_lag(model.transition_counts, n_samples, lag=lag,
+                                                             every_frame=True, seed=seed, initial=model.propagator)])
+            p_lo, p_hi = percentile_interval(pis, 0.95)
+        out[method] = (np.concatenate([scan.lower[0], p_lo]), np.concatenate([scan.upper[0], p_hi]))
+    return out, est, model.state_changes()[1]
 
 
-def coverage_table(n_runs, n_frames, n_replicates, n_samples, seed=0, prior_count=None):
-    T, pi, t_true = true_chain()
+def study(name, T, *, n_runs, n_frames, lag, n_reps, n_samples, seed):
+    true_t, true_pi = truth(T, 2)
+    exact = np.concatenate([true_t, true_pi])
     rng = np.random.default_rng(seed)
-    results = [r for r in (replicate(T, pi, t_true, n_runs, n_frames, n_samples, rng, prior_count)
-                           for _ in range(n_replicates)) if r is not None]
-    hit = np.array([r[0] for r in results], dtype=float)
-    width = np.array([r[1] for r in results])
-    crossings = np.array([r[2] for r in results])
-    return t_true, hit.mean(axis=0), np.sqrt(hit.mean(axis=0) * (1 - hit.mean(axis=0)) / len(hit)), \
-        np.median(width, axis=0), len(results), np.median(crossings)
+    inside = {m: [] for m in METHODS}
+    below = {m: [] for m in METHODS}
+    width = {m: [] for m in METHODS}
+    bias, crossings = [], []
+    start = time.perf_counter()
+    for rep in range(n_reps):
+        got = replicate(T, sample_chain(T, true_pi, n_runs, n_frames, rng), lag, n_samples, seed=rep)
+        if got is None:
+            continue
+        intervals, est, cross = got
+        bias.append((est - exact) / exact)
+        crossings.append(cross)
+        for m, (lo, hi) in intervals.items():
+            inside[m].append((lo <= exact) & (exact <= hi))
+            below[m].append(exact < lo)
+            width[m].append((hi - lo) / exact)
+    R = len(bias)
+    print(f"\n{name}: {n_runs} runs x {n_frames} frames, lag {lag}, {R} of {n_reps} replicates kept every state, "
+          f"{n_samples} samples each ({time.perf_counter() - start:.0f} s); true timescales "
+          f"{np.round(true_t, 2).tolist()} steps; median {np.median(crossings):.0f} crossings of the slowest "
+          f"process per data set")
+    b = np.mean(bias, axis=0)
+    print(f"  relative bias of the estimate: timescales {np.round(100 * b[:2], 1).tolist()} %, populations "
+          f"{100 * np.mean(np.abs(b[2:])):.1f} % (mean absolute over states)")
+    print(f"  {'quantity':<20}" + "".join(f"{m + ' coverage':>20}{'below':>7}{'above':>7}{'width':>7}" for m in METHODS)
+          + "   (nominal 0.95, target 0.93-0.97)")
+    for q, cols in zip(QUANTITIES, (slice(0, 1), slice(1, 2), slice(2, None))):
+        row = f"  {q:<20}"
+        for m in METHODS:
+            h, lo, w = (np.asarray(x[m])[:, cols] for x in (inside, below, width))
+            c = h.mean()
+            se = np.sqrt(c * (1 - c) / h.size)
+            row += f"{c:>14.3f} +-{se:.3f}{lo.mean():>7.3f}{1 - c - lo.mean():>7.3f}{np.median(w):>7.3f}"
+        print(row)
 
 
 def double_well_counts(n_states=100, n_counts=1e6, seed=2):
@@ -93,28 +133,29 @@ def speed(C, n=200):
 
 
 def main():
-    ap = argparse.ArgumentParser(description=__doc__)
-    ap.add_argument("--replicates", type=int, default=150)
-    ap.add_argument("--samples", type=int, default=400, help="posterior samples per replicate")
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--reps", type=int, default=200, help="replicates per chain and length")
+    ap.add_argument("--samples", type=int, default=200, help="bootstrap / posterior samples per replicate")
     ap.add_argument("--runs", type=int, default=10)
-    ap.add_argument("--frames", type=int, nargs="+", default=[1000, 4000], help="frames per run")
-    ap.add_argument("--prior-count", type=float, default=None, help="default: the library default")
+    ap.add_argument("--frames", type=int, nargs="+", default=[1000, 4000], help="frames per run (pairs chain)")
+    ap.add_argument("--chain", choices=["pairs", "four", "lattice", "all"], default="all")
+    ap.add_argument("--no-speed", action="store_true", help="skip the timing part")
     a = ap.parse_args()
-    names = ["slowest timescale"] + [f"population {i}" for i in range(FLUX.shape[0])]
-    prior_label = "default" if a.prior_count is None else f"{a.prior_count:g}"
-    for frames in a.frames:
-        start = time.perf_counter()
-        t_true, cov, se, width, n_used, crossings = coverage_table(a.runs, frames, a.replicates, a.samples,
-                                                                    prior_count=a.prior_count)
-        print(f"\n{a.runs} runs x {frames} frames, lag 1, true slowest timescale {t_true:.1f} steps, "
-              f"median {crossings:.0f} crossings between the two pairs per data set; "
-              f"{n_used} replicates x {a.samples} posterior samples, prior count {prior_label} "
-              f"({time.perf_counter() - start:.0f} s)")
-        print(f"{'quantity':<20} {'coverage':>9} {'+-':>6} {'width/true':>11}  (nominal 0.95, target 0.93-0.97)")
-        for name, c, s, w in zip(names, cov, se, width):
-            print(f"{name:<20} {c:9.3f} {s:6.3f} {w:11.3f}")
-        print(f"{'pooled':<20} {cov.mean():9.3f}")
-    T, pi, _ = true_chain()
+    warnings.simplefilter("ignore", mk.DiagnosticWarning)
+    if a.chain in ("pairs", "all"):
+        for frames in a.frames:
+            study("pairs chain (4 states)", pairs_chain(), n_runs=a.runs, n_frames=frames, lag=1, n_reps=a.reps,
+                  n_samples=a.samples, seed=0)
+    if a.chain in ("four", "all"):
+        study("4-state chain of bench_coverage", four_state_chain(), n_runs=a.runs, n_frames=1000, lag=1,
+              n_reps=a.reps, n_samples=a.samples, seed=1)
+    if a.chain in ("lattice", "all"):
+        study("7 x 7 lattice walk", lattice_chain(), n_runs=a.runs, n_frames=2000, lag=2, n_reps=a.reps,
+              n_samples=a.samples, seed=2)
+    if a.no_speed:
+        return
+    T = pairs_chain()
+    pi = FLUX.sum(axis=1) / FLUX.sum()
     cases = [("4 states, 10 runs x 1000 frames",
               mk.count_transitions(sample_chain(T, pi, a.runs, 1000, np.random.default_rng(1)), 1)),
              ("100-state double well", double_well_counts())]
@@ -122,6 +163,7 @@ def main():
     for name, C in cases:
         fit, per_sample = speed(C)
         print(f"{name}: sample {per_sample * 1e3:.3g} ms, fit {fit * 1e3:.3g} ms, ratio {per_sample / fit:.3g}")
+
 
 if __name__ == "__main__":
     main()

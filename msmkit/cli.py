@@ -113,6 +113,9 @@ def summary_text(model, scan=None, *, macro=None, macro_reason="", ck=None) -> s
     lines.append("  most populated states (label: population):")
     lines += [f"    {int(r.state)}: {r.population:.4f}" for r in pops.itertuples()]
     if scan is not None:
+        if scan.n_samples:
+            lines.append(f"  intervals:         {100 * scan.confidence:g}% from {scan.n_samples} samples per lag, "
+                         f"{scan.uncertainty}")
         lines.append(f"  suggested lag:     {scan.suggested_lag}")
         lines.append(f"  reason:            {scan.reason}")
         lines += [f"  note: {n}" for n in scan.notes]
@@ -197,7 +200,7 @@ class _Outputs:
 def _scan_and_choose(labels, args, lags, dt, unit):
     from .lagscan import lag_scan
     scan = lag_scan(labels, lags, dt=dt, unit=unit, n_processes=args.timescales, n_samples=args.samples,
-                    seed=args.seed, progress=not args.quiet)
+                    seed=args.seed, uncertainty=args.uncertainty, progress=not args.quiet)
     return scan
 
 
@@ -223,7 +226,7 @@ def _validate(model, labels, args, out: _Outputs):
     longest = max(len(r) for r in labels)
     multiples = max(1, min(args.multiples, (longest - 1) // model.lag))
     ck = chapman_kolmogorov(model, labels, n_sets=n_sets, multiples=multiples, n_samples=args.ck_samples,
-                            seed=args.seed, progress=not args.quiet)
+                            seed=args.seed, uncertainty=args.uncertainty, progress=not args.quiet)
     out.add_figure("chapman_kolmogorov.png", plot_chapman_kolmogorov(ck))
     out.add_text("chapman_kolmogorov.csv", ck.table().to_csv(index=False))
     out.add_figure("lag_flow.png", plot_lag_flow(lag_flow(ck)))
@@ -419,6 +422,14 @@ _positive_float = _positive(float, "a number")
 _positive_int = _positive(int, "a whole number")
 
 
+def add_uncertainty_option(sp, what: str) -> None:
+    """``--uncertainty {bootstrap,bayes}``: one definition for every command that forms intervals
+    (``what`` says which ones, e.g. "of the implied timescales")."""
+    sp.add_argument("--uncertainty", choices=UNCERTAINTIES, default=UNCERTAINTIES[0],
+                    help=f"how the intervals {what} are obtained: bootstrap over runs, or bayes, the "
+                         f"posterior of reversible transition matrices (default %(default)s)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="msmkit", description="Markov state models from simulation trajectories.")
     p.add_argument("--version", action="version", version=f"msmkit {_version()}")
@@ -457,27 +468,27 @@ def build_parser() -> argparse.ArgumentParser:
         sp.add_argument("--seed", type=int, default=0, help="random seed (default %(default)s)")
         sp.add_argument("-q", "--quiet", action="store_true", help="no progress bars or messages")
 
-    def kinetics_intervals(sp, *, samples):
-        if samples:
-            sp.add_argument("--samples", type=int, default=BOOTSTRAP_SAMPLES,
-                            help="sampled models behind the intervals of the macrostate populations, passage "
-                                 "times and rates (default %(default)s; 0 = none)")
-        sp.add_argument("--uncertainty", choices=UNCERTAINTIES, default="bootstrap",
-                        help="how the models behind the intervals on the macrostate populations, passage times "
-                             "and rates are sampled: bootstrap over runs, or bayes (posterior of reversible "
-                             "transition matrices; reversible models only) (default %(default)s)")
+    def kinetics_intervals(sp):
+        sp.add_argument("--samples", type=int, default=BOOTSTRAP_SAMPLES,
+                        help="sampled models behind the intervals of the macrostate populations, passage "
+                             "times and rates (default %(default)s; 0 = none)")
+        add_uncertainty_option(sp, "on the macrostate populations, passage times and rates")
 
     def scanning(sp, default_lags, *, validates):
         sp.add_argument("--lags", default=default_lags, help=f"comma-separated lags in frames (default {default_lags})")
         sp.add_argument("--samples", type=int, default=BOOTSTRAP_SAMPLES,
-                        help="bootstrap samples per lag for the intervals (default %(default)s; 0 = none)")
+                        help="samples per lag for the intervals, bootstrap or posterior (default %(default)s; "
+                             "0 = none)")
         sp.add_argument("--timescales", type=_positive_int, default=PROCESSES, help="slow processes to follow (default %(default)s)")
+        add_uncertainty_option(sp, "of the implied timescales" + (", the Chapman–Kolmogorov test, the macrostate "
+                                                                   "populations, passage times and rates"
+                                                                   if validates else ""))
         if not validates:
             return
         sp.add_argument("--multiples", type=_positive_int, default=CK_MULTIPLES,
                         help="Chapman–Kolmogorov test up to this multiple of the lag (default %(default)s)")
         sp.add_argument("--ck-samples", type=int, default=CK_SAMPLES,
-                        help="bootstrap samples of the Chapman–Kolmogorov test (default %(default)s)")
+                        help="samples of the Chapman–Kolmogorov test, bootstrap or posterior (default %(default)s)")
 
     d = sub.add_parser("demo", help="run the whole job headless on the demo scenario",
                        description="Demo scenario -> TICA -> microstates -> lag scan -> chosen model; writes "
@@ -487,7 +498,6 @@ def build_parser() -> argparse.ArgumentParser:
     common(d, files=False)
     d.set_defaults(states=60, tica_dim=2, tica_lag=5, stride=2)
     scanning(d, "1,2,5,10,20,40", validates=True)
-    kinetics_intervals(d, samples=False)
     d.set_defaults(func=cmd_demo)
 
     b = sub.add_parser("build", help="build one model at a given lag",
@@ -497,7 +507,7 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--non-reversible", action="store_true", help="do not enforce detailed balance")
     b.add_argument("-o", "--output", required=True, help="model file to write (.npz)")
     b.add_argument("--force", action="store_true", help="overwrite an existing model file")
-    kinetics_intervals(b, samples=True)
+    kinetics_intervals(b)
     b.set_defaults(func=cmd_build)
 
     s = sub.add_parser("scan", help="implied timescales across lags, and a suggested lag",

@@ -241,11 +241,12 @@ class MarkovModel:
             ``macro.samples.between_sets(macro.members)``).
         """
         from .macro import find_macrostates
-        from .uncertainty import check_uncertainty, sample_models
+        from .posterior import check_uncertainty
+        from .uncertainty import sample_models
         n_sets = check_int(n_sets, "n_sets", minimum=1, maximum=self.n_states)
         n_samples = check_int(n_samples, "n_samples", minimum=0)
         optimize, seed = check_bool(optimize, "optimize"), check_seed(seed)
-        uncertainty = check_uncertainty(uncertainty)
+        uncertainty = check_uncertainty(uncertainty, self.reversible)
         if n_samples and uncertainty == "bootstrap" and labels is None:
             raise InputError("n_samples > 0 with uncertainty='bootstrap' needs labels= (the label trajectories of "
                              "the model) to resample; or use uncertainty='bayes'")

@@ -57,11 +57,21 @@ import numbers
 import numpy as np
 import scipy.sparse as sp
 
+from .defaults import UNCERTAINTIES
 from .errors import InputError
 from .estimate import as_count_matrix, check_connected, estimate_transition_matrix
 from .spectral import eigen_decomposition, equilibrium_distribution, obeys_detailed_balance
 
 __all__ = ["iter_reversible_posterior", "sample_reversible_posterior"]
+
+#: how the intervals of lag scans and Chapman–Kolmogorov tests are obtained
+#: prior count of the interval posteriors (posterior_at_lag): the likelihood alone on the counted
+#: pattern. Every prior count adds (b + 1) to each counted pair; at long lags the pattern holds many
+#: rarely counted pairs across barriers, and b = -0.5 made the slow processes fast (measured on the
+#: 49-state lattice walk of bench_coverage.py at lag 4: posterior median 62 steps against a
+#: maximum-likelihood 111 and a truth of 118; with b = -1: 114). At few crossings (33, lag 1)
+#: -0.5 put the truth above the interval 8.5 % of the time and below it 1 %; -1 balances the misses.
+INTERVAL_PRIOR_COUNT = -1.0
 
 #: off-diagonal random-walk step in log x_ij, in units of the conditional's standard deviation
 #: (about 2.4 is the usual optimum of a one-dimensional Gaussian random walk, common practice)
@@ -241,9 +251,9 @@ def _prepare(counts, burn_in, thin, prior_count, initial, seed):
     burn_in = _check_int("burn_in", burn_in, 0)
     thin = _check_int("thin", thin, 1)
     if not isinstance(prior_count, numbers.Real) or isinstance(prior_count, bool) \
-            or not np.isfinite(prior_count) or prior_count <= -1:
-        raise InputError(f"prior_count must be a number > -1 (default -0.5), got {prior_count!r}; "
-                         f"at -1 or below the posterior of a pair seen in one direction only cannot be normalized")
+            or not np.isfinite(prior_count) or prior_count < -1:
+        raise InputError(f"prior_count must be a number >= -1 (default -0.5), got {prior_count!r}; "
+                         f"below -1 the posterior of a pair counted once cannot be normalized")
     chain = _FluxChain(C, prior_count, _initial_matrix(C, initial), np.random.default_rng(seed))
     return chain, burn_in, thin
 
@@ -261,6 +271,50 @@ def iter_reversible_posterior(counts, n_samples, *, seed=None, burn_in=100, thin
     n_samples = _check_int("n_samples", n_samples, 1)
     chain, burn_in, thin = _prepare(counts, burn_in, thin, prior_count, initial, seed)
     return _draw(chain, n_samples, burn_in, thin)
+
+
+def check_uncertainty(uncertainty, reversible: bool = True) -> str:
+    """The uncertainty method ("bootstrap" or "bayes"), or InputError naming the choices.
+
+    "bayes" samples the posterior of reversible matrices only: with ``reversible=False`` it is
+    refused, naming both arguments."""
+    if not isinstance(uncertainty, str) or uncertainty not in UNCERTAINTIES:
+        raise InputError(f"uncertainty must be one of {', '.join(map(repr, UNCERTAINTIES))}, "
+                         f"but got {uncertainty!r}")
+    if uncertainty == "bayes" and not reversible:
+        raise InputError("uncertainty='bayes' samples the posterior of reversible transition matrices and needs "
+                         "reversible=True (a reversible model); with reversible=False use "
+                         "uncertainty='bootstrap'")
+    return uncertainty
+
+
+def effective_counts(counts, lag: int, every_frame: bool) -> sp.csr_matrix:
+    """Counts as independent transitions for the posterior: sliding-window counts
+    (``every_frame=True``) divided by the lag.
+
+    Windows that start less than a lag apart overlap, so a run of N frames holds about
+    N / lag independent transitions at lag ``lag``, not N - lag; a posterior of the raw sliding
+    counts would be about sqrt(lag) times too narrow (common practice)."""
+    C = as_count_matrix(counts)
+    return C / float(lag) if every_frame and lag > 1 else C
+
+
+def posterior_at_lag(counts, n_samples: int, *, lag: int, every_frame: bool, seed=None, initial=None,
+                     prior_count: float = INTERVAL_PRIOR_COUNT):
+    """Posterior samples ``(T, pi)`` for the counts of one lag, the sliding windows counted as
+    :func:`effective_counts`, with prior count :data:`INTERVAL_PRIOR_COUNT` (-1) unless given; ``initial`` (the reversible estimate of the same counts, which
+    does not depend on that scaling) saves the estimate the sampler would otherwise start from.
+    Used by every ``uncertainty="bayes"`` interval: lag scans, Chapman–Kolmogorov tests and
+    :func:`msmkit.sample_models`."""
+    C = effective_counts(counts, lag, every_frame)
+    b = prior_count
+    try:
+        return iter_reversible_posterior(C, n_samples, seed=seed, initial=initial, prior_count=b)
+    except InputError:
+        if initial is None:
+            raise
+        # an estimate converged only to its own tolerance may fail the strict detailed-balance check
+        return iter_reversible_posterior(C, n_samples, seed=seed, prior_count=b)
 
 
 def _draw(chain: _FluxChain, n_samples: int, burn_in: int, thin: int):
@@ -298,15 +352,19 @@ def sample_reversible_posterior(counts, n_samples, *, seed=None, burn_in=100, th
         Sweeps between consecutive samples; raise it when the samples are strongly correlated
         (many states, very slow processes).
     prior_count : float, default -0.5
-        Prior count b added to every counted pair in both directions; must be > -1. For two
+        Prior count b added to every counted pair in both directions; must be >= -1. For two
         states each row is then Beta(C_ii + b + 1, C_ij + b + 1): the default -0.5 is Jeffreys'
-        prior of every such row, 0 a uniform prior, values towards -1 put the posterior mean at
-        the maximum-likelihood estimate. Larger values pull the slow rates up when few crossings
-        were counted (measured on a four-state chain with about 32 crossings of the slow
-        process: 95 % intervals of the slowest timescale covered 0.78 of 150 replicates with 0,
-        0.89-0.95 in two runs of 100-150 replicates with -0.5; bench/bench_posterior_coverage.py).
-        With so few crossings the intervals are still somewhat too narrow (populations covered
-        about 0.91); with about 130 crossings coverage was 0.94-0.95 for every quantity.
+        prior of every such row, 0 a uniform prior, -1 the likelihood alone on the counted
+        pattern (proper for strongly connected counts: every row then has counts to other
+        states; the posterior mean of a two-state row is the maximum-likelihood value). Larger
+        values pull the slow rates up when few crossings were counted, and the more so the more
+        rarely counted pairs the pattern holds (long lags): the intervals of lag scans and
+        Chapman–Kolmogorov tests use -1 (``INTERVAL_PRIOR_COUNT``). Measured on a four-state
+        chain with about 33 crossings of the slow process, 200 replicates
+        (bench/bench_posterior_coverage.py): 95 % intervals of the slowest timescale covered
+        0.905 with -0.5 (truth above the interval 8.5 %, below 1 %), 0.92 with -0.95 (3.5 % /
+        4.5 %); populations 0.89-0.92 with any of them. So few crossings leave the intervals too
+        narrow whatever the prior; with about 130 crossings coverage was 0.94-0.95.
     initial : ndarray, shape (n, n), optional
         Reversible transition matrix to start from, positive on every counted pair; default: the
         reversible maximum-likelihood estimate.

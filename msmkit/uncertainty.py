@@ -38,23 +38,13 @@ from .counts import run_count_rows
 from .defaults import BOOTSTRAP_SAMPLES, PROCESSES, UNCERTAINTIES
 from .errors import DiagnosticWarning, InputError
 from .kinetics import mean_passage_time, passage_time_matrix, transition_paths
+from .posterior import INTERVAL_PRIOR_COUNT, check_uncertainty, posterior_at_lag
 from .spectral import eigen_decomposition, implied_timescales
 
 __all__ = ["ModelSamples", "sample_models", "UNCERTAINTIES"]
 
-#: prior count of the posterior (``"bayes"``), see :func:`sample_models`: near -1, so that the prior
-#: does not pull models with many sparsely counted pairs (measured in bench/bench_coverage.py)
-PRIOR_COUNT = -0.99
 #: sampled matrices held in memory at most (bytes)
 MAX_SAMPLE_BYTES = 2 ** 31
-
-
-def check_uncertainty(uncertainty) -> str:
-    """The sampling method, or InputError naming the choices."""
-    if not isinstance(uncertainty, str) or uncertainty not in UNCERTAINTIES:
-        raise InputError(f"uncertainty must be one of {', '.join(map(repr, UNCERTAINTIES))}, but got "
-                         f"{uncertainty!r}")
-    return uncertainty
 
 
 @dataclass(eq=False)
@@ -385,7 +375,7 @@ class ModelSamples:
 
 
 def sample_models(model, labels=None, *, uncertainty: str = "bootstrap", n_samples: int = BOOTSTRAP_SAMPLES,
-                  seed=None, prior_count: float = PRIOR_COUNT, progress: bool = False, cancel=None) -> ModelSamples:
+                  seed=None, prior_count: float = INTERVAL_PRIOR_COUNT, progress: bool = False, cancel=None) -> ModelSamples:
     """Sample transition matrices on a model's states for intervals on the kinetic numbers of the model.
 
     Parameters
@@ -403,7 +393,7 @@ def sample_models(model, labels=None, *, uncertainty: str = "bootstrap", n_sampl
         Matrices drawn; fewer than 200 give 95 % intervals whose ends rest on few samples (the
         tables then issue a DiagnosticWarning).
     seed : int or numpy.random.Generator, optional
-    prior_count : float, default -0.99
+    prior_count : float, default -1 (``msmkit.posterior.INTERVAL_PRIOR_COUNT``, as in lag scans and tests)
         ``"bayes"`` only: the prior count added to every counted pair in both directions
         (:func:`msmkit.posterior.sample_reversible_posterior`). It acts on every counted pair,
         so with many states and few transitions per pair a prior of -0.5 pulls the slow
@@ -433,7 +423,7 @@ def sample_models(model, labels=None, *, uncertainty: str = "bootstrap", n_sampl
         if not hasattr(model, name):
             raise InputError(f"model must be a MarkovModel (from build_model, lag_scan or load_model), but got "
                              f"{type(model).__name__}")
-    uncertainty = check_uncertainty(uncertainty)
+    uncertainty = check_uncertainty(uncertainty, getattr(model, "reversible", True))
     n_samples = check_int(n_samples, "n_samples", minimum=1)
     seed, progress = check_seed(seed), check_bool(progress, "progress")
     n = model.n_states
@@ -489,22 +479,16 @@ def _bootstrap_samples(model, runs, n_samples, seed, progress, cancel) -> ModelS
 
 
 def _posterior_samples(model, n_samples, seed, prior_count, progress, cancel) -> ModelSamples:
-    from .posterior import iter_reversible_posterior
-
-    if not model.reversible:
-        raise InputError("uncertainty='bayes' samples reversible transition matrices, but this model is "
-                         "non-reversible; use uncertainty='bootstrap' or build the model with reversible=True")
     notes = []
-    counts = model.transition_counts
     if model.lag > 1 and _every_frame(model):
-        counts = counts / model.lag
         notes.append(f"The counts come from overlapping windows at lag {model.lag} (every_frame=True); the posterior "
                      f"is drawn for the counts divided by the lag, about the number of independent transitions. "
                      f"That is an approximation: compare with uncertainty='bootstrap'.")
     n = model.n_states
     Ts = np.empty((n_samples, n, n))
     pis = np.empty((n_samples, n))
-    stream = iter_reversible_posterior(counts, n_samples, seed=seed, prior_count=prior_count)
+    stream = posterior_at_lag(model.transition_counts, n_samples, lag=model.lag, every_frame=_every_frame(model),
+                              seed=seed, initial=model.propagator, prior_count=prior_count)
     bar = progress_bar(n_samples, progress, "posterior", cancel)
     try:
         for b, (T, pi) in enumerate(stream):

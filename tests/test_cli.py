@@ -174,6 +174,34 @@ def test_help_states_the_defaults_each_command_uses(capsys):
     assert "microstates (default 100)" in " ".join(capsys.readouterr().out.split())
 
 
+def test_uncertainty_option_help_and_choices(capsys, tmp_path):
+    # one definition (cli.add_uncertainty_option) for scan and demo; argparse prints %(default)s
+    for command in ("scan", "demo"):
+        with pytest.raises(SystemExit):
+            main([command, "--help"])
+        text = " ".join(capsys.readouterr().out.split())
+        assert "--uncertainty {bootstrap,bayes}" in text and "(default bootstrap)" in text
+    with pytest.raises(SystemExit) as exc:
+        main(["scan", "x.npy", "--uncertainty", "jackknife", "-o", str(tmp_path / "o")])
+    assert exc.value.code == 2 and "--uncertainty" in capsys.readouterr().err
+
+
+def test_scan_with_bayes_intervals(demo_files, tmp_path):
+    # the same labels and models as the bootstrap scan (same seed and states): the timescales
+    # agree exactly and only the intervals differ
+    common = [str(demo_files / "*.npy"), "--lags", "1,2,5", "--states", "20", "--samples", "50", "-q"]
+    assert main(["scan", *common, "-o", str(tmp_path / "boot")]) == 0
+    assert main(["scan", *common, "--uncertainty", "bayes", "-o", str(tmp_path / "bayes")]) == 0
+    boot = pd.read_csv(tmp_path / "boot" / "implied_timescales.csv")
+    bayes = pd.read_csv(tmp_path / "bayes" / "implied_timescales.csv")
+    np.testing.assert_allclose(bayes.timescale, boot.timescale, rtol=1e-12)
+    assert not np.allclose(bayes.lower, boot.lower)
+    assert np.all(bayes.lower <= bayes.upper)
+    summary = (tmp_path / "bayes" / "summary.txt").read_text()
+    assert "intervals:         95% from 50 samples per lag, bayes" in summary
+    assert "credible intervals from 50 samples of the posterior" in summary
+
+
 def test_options_a_command_does_not_use_are_refused(capsys, tmp_path):
     # scan runs no Chapman–Kolmogorov test, so --multiples is a usage error (exit 2), not ignored
     with pytest.raises(SystemExit) as exc:

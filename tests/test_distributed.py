@@ -294,6 +294,20 @@ def test_chapman_kolmogorov_is_the_same(backend, sample_chain, reversible_chain)
     assert ck.passed == memory.passed
 
 
+def test_bayes_intervals_are_the_same(backend, sample_chain, reversible_chain):
+    # uncertainty="bayes": runs counted on the back end, the posterior sampled in process; the
+    # same seed gives the same samples as in memory
+    runs = sample_chain(reversible_chain, 1500, n_runs=6, seed=9)
+    kw = dict(n_samples=10, seed=3, uncertainty="bayes")
+    scan = mk.lag_scan(runs, [1, 3], **kw, **backend)
+    np.testing.assert_array_equal(scan.samples, mk.lag_scan(runs, [1, 3], **kw).samples)
+    model = mk.build_model(runs, 2)
+    ck = mk.chapman_kolmogorov(model, runs, sets=[[0], [1, 2]], multiples=3, **kw, **backend)
+    memory = mk.chapman_kolmogorov(model, runs, sets=[[0], [1, 2]], multiples=3, **kw)
+    np.testing.assert_array_equal(ck.samples, memory.samples)
+    np.testing.assert_array_equal(ck.predicted_upper, memory.predicted_upper)
+
+
 def test_streamed_pipeline_on_the_cluster_equals_memory(dask_client, npy_runs, ou_runs, tmp_path):
     trajs, _ = npy_runs
     tica = mk.TICA(10, dim=2, chunk_size=400).fit(trajs, client=dask_client)

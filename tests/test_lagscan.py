@@ -8,7 +8,12 @@ External references:
 - the bootstrap standard error estimates the sampling standard error (Efron, Ann. Stat. 7, 1
   (1979)), here compared with first-order error propagation (conftest.timescale_sigma, common
   practice);
-- build_model at the same lag (same counts, same estimator) for LagScan.model.
+- build_model at the same lag (same counts, same estimator) for LagScan.model;
+- uncertainty="bayes": for two states the posterior of msmkit.posterior is a product of Beta
+  distributions, one per row (derived in the notes of that module and checked against scipy there), so the
+  posterior of the timescale -lag / ln(T_00 + T_11 - 1) is sampled here from scipy.stats.beta; at
+  lag 1 the posterior spread approaches the first-order sampling error (Bernstein-von Mises,
+  common practice).
 """
 import warnings
 
@@ -17,6 +22,7 @@ import pandas as pd
 import pytest
 import scipy.linalg as la
 import scipy.sparse as sp
+from scipy import stats
 
 from msmkit.errors import DiagnosticWarning, InputError
 from msmkit.estimate import estimate_transition_matrix
@@ -336,7 +342,7 @@ def test_estimate_outside_its_interval_is_flagged():
     scan = LagScan(lags, ts, lower, upper, np.empty((2, 0, 2)), 1.0, "ns", 0.95, 20, None, "")
     assert scan.table()["estimate_outside"].tolist() == [False, True, False, False]
     note = next(n for n in _scan_findings(lags, ts, {}, 1.0, "ns", lower, upper) if "outside" in n)
-    assert note.startswith("At lag(s) [1] frames 1 timescale(s) lie outside the bootstrap interval")
+    assert note.startswith("At lag(s) [1] frames 1 timescale(s) lie outside the interval")
 
 
 def test_samples_stay_on_the_full_data_states(sample_chain):
@@ -488,3 +494,80 @@ def test_sample_kernel_equals_the_estimator_on_every_sample():
         ref = _reference_timescales(Cb, lag, k)
         np.testing.assert_allclose(kernel(values[b]), ref, rtol=1e-8)
     assert 0 < general < values.shape[0]  # both routes were taken
+
+
+# --------------------------------------------------------------------------- uncertainty="bayes"
+
+@pytest.fixture(scope="module")
+def bayes_scan(markov_runs):
+    return lag_scan(markov_runs, LAGS, dt=0.5, unit="ns", n_processes=2, n_samples=300, seed=0,
+                    uncertainty="bayes")
+
+
+@pytest.mark.parametrize("lag", [1, 2])
+def test_bayes_timescale_of_two_states_follows_the_beta_posterior(sample_chain, lag):
+    # Reference (module docstring): T_00 ~ Beta(C_00 + b + 1, C_01 + b + 1) and T_11 likewise,
+    # independent, with the intervals' prior count b = -1; sliding-window counts at lag 2 enter
+    # divided by 2. The equal-tailed
+    # interval must leave 2.5 % of the reference posterior beyond each end; with 4000 nearly
+    # independent samples a level is uncertain by about 0.0025, allowed 0.008 (three of that).
+    # The posterior of the undivided counts at lag 2 is narrower: only 0.002-0.003 of it lies beyond
+    # each end of the interval (measured), so the check tells the two apart.
+    T = np.array([[0.95, 0.05], [0.08, 0.92]])
+    runs = sample_chain(T, 3000, n_runs=4, seed=3)
+    scan = lag_scan(runs, [lag], n_processes=1, n_samples=4000, seed=0, uncertainty="bayes")
+    C = quiet(build_model, runs, lag).transition_counts.toarray() / lag
+    b = -1.0  # msmkit.posterior.INTERVAL_PRIOR_COUNT: the likelihood alone
+    rng = np.random.default_rng(1)
+    t00 = stats.beta(C[0, 0] + b + 1, C[0, 1] + b + 1).rvs(200_000, random_state=rng)
+    t11 = stats.beta(C[1, 1] + b + 1, C[1, 0] + b + 1).rvs(200_000, random_state=rng)
+    reference = -lag / np.log(t00 + t11 - 1)
+    assert scan.uncertainty == "bayes" and scan.table().attrs["uncertainty"] == "bayes"
+    assert np.mean(reference < scan.lower[0, 0]) == pytest.approx(0.025, abs=0.008)
+    assert np.mean(reference > scan.upper[0, 0]) == pytest.approx(0.025, abs=0.008)
+    assert np.median(scan.samples[0, :, 0]) == pytest.approx(np.median(reference), rel=0.02)
+
+
+def test_bayes_intervals_are_equal_tailed_and_contain_the_truth(bayes_scan, markov_scan):
+    # equal-tailed: the 2.5 and 97.5 % quantiles of the samples (numpy reference), not widened
+    lo, hi = np.percentile(bayes_scan.samples, [2.5, 97.5], axis=1)
+    np.testing.assert_allclose(bayes_scan.lower, lo, rtol=1e-12)
+    np.testing.assert_allclose(bayes_scan.upper, hi, rtol=1e-12)
+    # the same full-data models as the bootstrap scan; only the intervals differ
+    np.testing.assert_array_equal(bayes_scan.timescales, markov_scan.timescales)
+    # the truth (scipy.linalg.eigvals of the simulated chain) lies inside every interval in this
+    # seeded case: 100 runs of 2000 frames, lags 1-8
+    w = np.sort(la.eigvals(true_chain()).real)[::-1]
+    expected = np.broadcast_to(-0.5 / np.log(w[1:3]), bayes_scan.lower.shape)
+    assert np.all((bayes_scan.lower <= expected) & (expected <= bayes_scan.upper)), \
+        (bayes_scan.lower, expected, bayes_scan.upper)
+    assert bayes_scan.suggested_lag == 1  # the lag rule reads the intervals whatever their method
+    assert any("credible intervals from 300 samples of the posterior" in n for n in bayes_scan.notes)
+    assert markov_scan.uncertainty == "bootstrap" and markov_scan.table().attrs["uncertainty"] == "bootstrap"
+
+
+def test_bayes_spread_matches_first_order_error(bayes_scan, timescale_sigma):
+    # at lag 1 (independent transitions) the posterior standard deviation approaches the sampling
+    # error of first-order propagation; 300 correlated samples: allow 25 %
+    model = bayes_scan.model(1)
+    counts_out = np.asarray(model.transition_counts.sum(axis=1)).ravel()
+    for k in (1, 2):
+        _, _, sigma = timescale_sigma(true_chain(), counts_out, 1, 0.5, which=k)
+        spread = np.std(bayes_scan.samples[0, :, k - 1], ddof=1)
+        assert 1 / 1.25 < spread / sigma < 1.25, (k, spread, sigma)
+
+
+def test_bayes_same_seed_same_intervals(sample_chain):
+    runs = sample_chain(true_chain(), 300, n_runs=6, seed=2)
+    a, b, c = (quiet(lag_scan, runs, [1, 3], n_processes=2, n_samples=20, seed=s, uncertainty="bayes")
+               for s in (3, 3, 4))
+    np.testing.assert_array_equal(a.samples, b.samples)
+    assert not np.array_equal(a.samples, c.samples)
+
+
+def test_bayes_refuses_non_reversible_and_unknown_methods(sample_chain):
+    runs = sample_chain(true_chain(), 300, n_runs=6, seed=2)
+    with pytest.raises(InputError, match=r"uncertainty='bayes'.*reversible=True.*uncertainty='bootstrap'"):
+        lag_scan(runs, [1], n_samples=10, reversible=False, uncertainty="bayes")
+    with pytest.raises(InputError, match=r"uncertainty must be one of 'bootstrap', 'bayes', but got 'jackknife'"):
+        lag_scan(runs, [1], uncertainty="jackknife")

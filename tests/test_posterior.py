@@ -27,7 +27,7 @@ def _batch_se(values: np.ndarray, n_batches: int = 40) -> np.ndarray:
     return b.std(axis=0, ddof=1) / np.sqrt(n_batches)
 
 
-@pytest.mark.parametrize("prior_count", [0.0, -0.5])
+@pytest.mark.parametrize("prior_count", [0.0, -0.5, -1.0])
 def test_two_states_rows_are_independent_betas(prior_count):
     C = np.array([[12, 5], [3, 20]])
     Ts = sample_reversible_posterior(C, 20000, seed=3, thin=1, prior_count=prior_count)
@@ -153,11 +153,12 @@ def _posterior_means_by_importance(C, prior_count, n_draws, rng):
 @pytest.mark.parametrize("C", [np.array([[8, 3, 1], [2, 6, 2], [1, 3, 9]]),
                                np.array([[8, 3, 0], [2, 6, 2], [0, 3, 9]])],
                          ids=["full", "sparse"])
-def test_three_states_match_importance_sampling(C):
+@pytest.mark.parametrize("prior_count", [-0.5, -1.0])
+def test_three_states_match_importance_sampling(C, prior_count):
     rng = np.random.default_rng(11)
-    ref_T, ref_pi, se_T_ref, se_pi_ref, ess = _posterior_means_by_importance(C, -0.5, 200_000, rng)
+    ref_T, ref_pi, se_T_ref, se_pi_ref, ess = _posterior_means_by_importance(C, prior_count, 200_000, rng)
     assert ess > 50_000  # the reference itself is precise
-    Ts, pis = sample_reversible_posterior(C, 20000, seed=5, thin=2, return_equilibrium=True)  # default -0.5
+    Ts, pis = sample_reversible_posterior(C, 20000, seed=5, thin=2, return_equilibrium=True, prior_count=prior_count)
     pattern = (C + C.T) > 0
     z_T = (Ts.mean(axis=0) - ref_T)[pattern] / np.hypot(_batch_se(Ts), se_T_ref)[pattern]
     z_pi = (pis.mean(axis=0) - ref_pi) / np.hypot(_batch_se(pis), se_pi_ref)
@@ -212,7 +213,7 @@ def test_initial_matrix_is_used_and_checked():
     (np.array([[1, -1], [1, 1]]), {}, "non-negative"),
     (np.array([[5, 0], [0, 5]]), {}, "strongly connected"),
     (np.zeros((2, 2)), {}, "no transitions"),
-    (np.ones((2, 2)), {"prior_count": -1}, "prior_count"),
+    (np.ones((2, 2)), {"prior_count": -1.5}, "prior_count"),
     (np.ones((2, 2)), {"thin": 0}, "thin"),
     (np.ones((2, 2)), {"burn_in": -1}, "burn_in"),
     (np.ones((2, 2)), {"burn_in": 2.5}, "burn_in"),

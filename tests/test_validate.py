@@ -12,7 +12,9 @@ External references:
   1 + sum lambda_i^2 for a reversible one, and every singular value is at most 1 (Wu & Noe,
   J. Nonlinear Sci. 30, 23 (2020)); reference values from scipy.linalg.eigvals / svdvals;
 - held-out scores peak at the right model: too coarse misses processes, too fine fits noise
-  (McGibbon & Pande, J. Chem. Phys. 142, 124105 (2015)).
+  (McGibbon & Pande, J. Chem. Phys. 142, 124105 (2015));
+- uncertainty="bayes": for two states the posterior of reversible matrices is a product of Beta
+  distributions, one per row (msmkit.posterior module notes), sampled here with scipy.stats.beta.
 Robustness: the pass/fail outcomes below were checked offline over 30 seeds of the same
 generators (Markov data: 30 of 30 passed; lumped data: 0 of 30 passed) and the cross-validation
 over 10 seeds (10 of 10 picked the true number of states).
@@ -24,6 +26,7 @@ import pandas as pd
 import pytest
 import scipy.linalg as la
 import scipy.sparse as sp
+from scipy import stats
 
 from msmkit.errors import DiagnosticWarning, InputError
 from msmkit.model import MarkovModel, build_model, model_from_counts
@@ -149,7 +152,9 @@ def test_ck_table_units_and_intervals(markov_ck):
     assert isinstance(df, pd.DataFrame)
     assert list(df.columns) == ["from_set", "to_set", "k", "lag", "lag_time", "predicted", "estimated", "lower",
                                 "upper", "deviation", "within", "outside_interval", "used_tolerance", "outside_by",
-                                "estimate_outside"]
+                                "estimate_outside", "predicted_lower", "predicted_upper"]
+    assert df.attrs["uncertainty"] == "bootstrap" and df.attrs["confidence"] == 0.95
+    assert df["predicted_lower"].isna().all()  # prediction intervals come with uncertainty="bayes" only
     assert df.attrs["n_compared"] == markov_ck.n_compared and df.attrs["threshold"] == markov_ck.threshold
     assert len(df) == 3 * 3 * 5 and df.attrs["unit"] == "ns"
     first = df.iloc[:5]
@@ -299,6 +304,101 @@ def test_ck_bad_inputs(markov_model, markov_runs):
         chapman_kolmogorov(markov_model, markov_runs, multiples=0)
     with pytest.raises(InputError, match=r"longest run has 5 frames, not more than the model's lag"):
         chapman_kolmogorov(m10, [r[:5] for r in short])
+
+
+# --------------------------------------------------------------------------- Chapman–Kolmogorov, uncertainty="bayes"
+
+@pytest.fixture(scope="module")
+def two_state_bayes(sample_chain):
+    runs = sample_chain(np.array([[0.9, 0.1], [0.15, 0.85]]), 2000, n_runs=5, seed=8)
+    model = quiet(build_model, runs, 1)
+    ck = quiet(chapman_kolmogorov, model, runs, sets=[[0], [1]], multiples=2, n_samples=4000, seed=0,
+               uncertainty="bayes")
+    return runs, model, ck
+
+
+def test_ck_bayes_two_states_follow_the_beta_posterior(two_state_bayes):
+    # Reference: for two states the posterior of msmkit.posterior is T_00 ~ Beta(C_00 + b + 1,
+    # C_01 + b + 1), T_11 ~ Beta(C_11 + b + 1, C_10 + b + 1), independent, b = -1 for intervals (module notes,
+    # checked with scipy in test_posterior.py); sliding-window counts at lag k enter divided by k.
+    # With singleton sets the estimate at k is T(k tau)_00 itself and the prediction at k = 2 is
+    # (T^2)_00 = T_00^2 + (1 - T_00)(1 - T_11). Drawn here from scipy.stats.beta; each equal-tailed
+    # interval end must sit at the reference's 2.5 / 97.5 % level within 0.008 (4000 samples: about
+    # 0.0025 of Monte Carlo error).
+    runs, model, ck = two_state_bayes
+    rng = np.random.default_rng(2)
+    b = -1.0  # msmkit.posterior.INTERVAL_PRIOR_COUNT: the likelihood alone
+
+    def rows(C):
+        t00 = stats.beta(C[0, 0] + b + 1, C[0, 1] + b + 1).rvs(200_000, random_state=rng)
+        t11 = stats.beta(C[1, 1] + b + 1, C[1, 0] + b + 1).rvs(200_000, random_state=rng)
+        return t00, t11
+
+    def levels(reference, lo, hi):
+        return np.mean(reference < lo), np.mean(reference > hi)
+
+    for k in (1, 2):
+        C = quiet(build_model, runs, k).transition_counts.toarray() / k
+        t00, _ = rows(C)
+        assert levels(t00, ck.lower[k - 1, 0, 0], ck.upper[k - 1, 0, 0]) == pytest.approx((0.025, 0.025), abs=0.008)
+    t00, t11 = rows(model.transition_counts.toarray())
+    for k, reference in ((1, t00), (2, t00 ** 2 + (1 - t00) * (1 - t11))):
+        got = levels(reference, ck.predicted_lower[k - 1, 0, 0], ck.predicted_upper[k - 1, 0, 0])
+        assert got == pytest.approx((0.025, 0.025), abs=0.008), (k, got)
+    assert ck.uncertainty == "bayes"
+    assert ck.table().attrs["uncertainty"] == "bayes" and ck.table().attrs["confidence"] == 0.95
+
+
+def test_ck_bayes_verdicts_on_markov_and_lumped_data(markov_model, markov_runs, lumped_runs):
+    ck = quiet(chapman_kolmogorov, markov_model, markov_runs, n_sets=3, multiples=5, seed=0, uncertainty="bayes")
+    assert ck.passed, ck.criterion
+    assert "posterior standard errors of that estimate" in ck.criterion
+    assert any(n.startswith("Intervals: equal-tailed 95% credible intervals from 20 samples") for n in ck.notes)
+    # equal-tailed percentiles of the samples (numpy reference); the prediction inside its own interval
+    np.testing.assert_allclose(ck.lower, np.percentile(ck.samples, 2.5, axis=1), rtol=1e-12)
+    assert np.all((ck.predicted_lower <= ck.predicted + 1e-12) & (ck.predicted <= ck.predicted_upper + 1e-12))
+    table = ck.table()
+    assert {"predicted_lower", "predicted_upper"} <= set(table.columns)
+    lumped_model = quiet(build_model, lumped_runs, 1, dt=0.1, unit="ns")
+    failed = quiet(chapman_kolmogorov, lumped_model, lumped_runs, multiples=5, seed=0, uncertainty="bayes")
+    assert failed.verdict == "failed" and failed.n_failed >= 4, failed.criterion
+    # with the bootstrap there are no prediction intervals
+    boot = quiet(chapman_kolmogorov, markov_model, markov_runs, n_sets=3, multiples=2, n_samples=5, seed=0)
+    assert boot.uncertainty == "bootstrap" and np.all(np.isnan(boot.predicted_upper))
+
+
+def test_ck_bayes_refuses_a_non_reversible_model(markov_runs):
+    model = quiet(build_model, markov_runs, 1, reversible=False)
+    with pytest.raises(InputError, match=r"uncertainty='bayes'.*reversible=True.*uncertainty='bootstrap'"):
+        chapman_kolmogorov(model, markov_runs, n_sets=2, multiples=2, uncertainty="bayes")
+    with pytest.raises(InputError, match=r"uncertainty must be one of 'bootstrap', 'bayes', but got 'exact'"):
+        chapman_kolmogorov(model, markov_runs, n_sets=2, multiples=2, uncertainty="exact")
+
+
+@pytest.mark.slow
+def test_ck_bayes_false_alarms_and_power(sample_chain):
+    # The family-wise verdict over posterior samples: on Markov data (the 20-state, 4-set chain of
+    # test_ck_false_alarms_on_markov_data_with_four_sets) at most one false alarm in 10 replicates
+    # (measured offline: 0 of 30, as with the bootstrap); on lumped flicker data at lag 1 every
+    # replicate fails (measured offline: 30 of 30).
+    rng = np.random.default_rng(0)
+    n = 20
+    same = np.arange(n)[:, None] // 5 == np.arange(n)[None, :] // 5
+    X = rng.uniform(0.5, 1.5, (n, n)) * np.where(same, 0.3, 0.004)
+    X = np.triu(X, 1) + np.triu(X, 1).T + np.eye(n)
+    T = X / X.sum(axis=1, keepdims=True)
+    false_alarms, detected = 0, 0
+    for r in range(10):
+        runs = sample_chain(T, 2000, n_runs=10, seed=1000 + r)
+        ck = quiet(chapman_kolmogorov, quiet(build_model, runs, 5), runs, n_sets=4, multiples=5, seed=r,
+                   uncertainty="bayes")
+        false_alarms += not ck.passed
+        hidden = sample_chain(flicker_chain(), 1000, n_runs=20, seed=201 + r)
+        lumped = [(h >= 2).astype(np.int32) for h in hidden]
+        ck = quiet(chapman_kolmogorov, quiet(build_model, lumped, 1), lumped, multiples=5, seed=r,
+                   uncertainty="bayes")
+        detected += ck.verdict == "failed"
+    assert false_alarms <= 1 and detected == 10, (false_alarms, detected)
 
 
 # --------------------------------------------------------------------------- lag flow
