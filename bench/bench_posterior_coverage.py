@@ -6,11 +6,9 @@ Known chains (truth from scipy.linalg.eig): "pairs", four states in two slowly e
 bench_coverage.py ("four", 1000 steps; "lattice", 49 states, 2000 steps, lag 2). Each replicate
 simulates 10 runs from equilibrium and forms the intervals a user gets:
 
-* bootstrap: ``lag_scan(..., uncertainty="bootstrap")`` (bias-corrected, widened for few runs)
-  for the timescales, ``bootstrap_interval(method="bc", n_units=runs)`` of
-  ``MarkovModel.bootstrap_stationary`` for the populations;
-* bayes: ``lag_scan(..., uncertainty="bayes")`` for the timescales and equal-tailed intervals of
-  the populations of ``msmkit.posterior.posterior_at_lag`` samples of the model's counts.
+* timescales: ``lag_scan(..., uncertainty=method)`` (bootstrap: bias-corrected, widened for few
+  runs; bayes: equal-tailed posterior intervals);
+* populations: ``sample_models(model, runs, uncertainty=method).populations()``.
 
 Coverage = share of replicates whose interval holds the truth (target 0.93-0.97), with the
 binomial standard error sqrt(c (1 - c) / R); "below" / "above" = share with the truth below the
@@ -31,8 +29,6 @@ import msmkit as mk
 from _chains import sample_chain
 from _timing import best_time
 from bench_coverage import four_state_chain, lattice_chain, truth
-from msmkit._bootstrap import bootstrap_interval, percentile_interval
-from msmkit.posterior import posterior_at_lag
 
 FLUX = np.array([[1000, 60, 2, 0],
                  [60, 800, 3, 1],
@@ -58,13 +54,8 @@ def replicate(T, runs, lag, n_samples, seed):
     out = {}
     for method in METHODS:
         scan = mk.lag_scan(runs, [lag], n_processes=2, n_samples=n_samples, seed=seed, uncertainty=method)
-        if method == "bootstrap":
-            pops = model.bootstrap_stationary(runs, n_samples=n_samples, seed=seed)
-            p_lo, p_hi = bootstrap_interval(pops, model.equilibrium, 0.95, method="bc", n_units=len(runs))
-        else:
-            pis = np.array([pi for _, pi in posterior_at_lag(model.transition_counts, n_samples, lag=lag,
-                                                             every_frame=True, seed=seed, initial=model.propagator)])
-            p_lo, p_hi = percentile_interval(pis, 0.95)
+        pops = mk.sample_models(model, runs, uncertainty=method, n_samples=n_samples, seed=seed).populations()
+        p_lo, p_hi = pops["lower"].to_numpy(), pops["upper"].to_numpy()
         out[method] = (np.concatenate([scan.lower[0], p_lo]), np.concatenate([scan.upper[0], p_hi]))
     return out, est, model.state_changes()[1]
 

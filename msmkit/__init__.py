@@ -20,6 +20,7 @@ from .modelfile import save_model
 from .posterior import iter_reversible_posterior, sample_reversible_posterior
 from .reduce import TICA
 from .report import write_report
+from .session import Session, load_session, save_session
 from .spectral import eigen_decomposition, implied_timescales, equilibrium_distribution
 from .states import Microstates, nearest_center
 from .uncertainty import ModelSamples, sample_models
@@ -79,4 +80,7 @@ __all__ = sorted([
     "suggest_lag",
     "suggest_n_macrostates",
     "write_report",
+    "Session",
+    "save_session",
+    "load_session",
 ])

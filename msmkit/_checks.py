@@ -398,3 +398,17 @@ def as_float_trajectories(trajs, name: str = "trajs", *, feature_names=None) -> 
     if feature_names is not None and len(feature_names) != n_features:
         raise InputError(f"feature_names has {len(feature_names)} names for {n_features} features")
     return out
+
+
+def zip_member_problem(info) -> str | None:
+    """Why numpy cannot read the zip member ``info`` (a ``zipfile.ZipInfo``) as it stands, in
+    words that follow its name, or None: encrypted members and compression methods other than
+    none (0) and deflate (8), the two that numpy.savez / savez_compressed write."""
+    import zipfile
+
+    if info.flag_bits & 0x1:
+        return "is encrypted (password protected)"
+    if info.compress_type not in (zipfile.ZIP_STORED, zipfile.ZIP_DEFLATED):
+        return (f"uses zip compression method {info.compress_type}; numpy writes deflate (8) "
+                f"or none (0)")
+    return None

@@ -56,6 +56,7 @@ from pathlib import Path
 import numpy as np
 
 from ._checks import (
+    zip_member_problem,
     as_float_run,
     brief,
     as_float_trajectories,
@@ -608,12 +609,9 @@ def _read_npy(path: str, **_):
 def _npz_member(zf, info, path: str) -> np.ndarray:
     """One member of an .npz archive, checked from the header before the data are read."""
     where = f"{path}:{info.filename[:-4]}"
-    if info.flag_bits & 0x1:
-        raise InputError(f"{where} is encrypted (password protected); msmkit reads plain archives "
-                         f"only: save the runs again with numpy.savez")
-    if info.compress_type not in (zipfile.ZIP_STORED, zipfile.ZIP_DEFLATED):
-        raise InputError(f"{where} uses zip compression method {info.compress_type}; numpy.savez "
-                         f"(no compression) and numpy.savez_compressed (deflate) are read")
+    problem = zip_member_problem(info)
+    if problem:
+        raise InputError(f"{where} {problem}: save the runs again with numpy.savez or numpy.savez_compressed")
     with zf.open(info) as fh:
         shape, fortran, dtype = _npy_header(fh, where)
         nbytes = math.prod(shape) * dtype.itemsize

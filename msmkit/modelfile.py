@@ -44,6 +44,7 @@ from pathlib import Path
 import numpy as np
 import scipy.sparse as sp
 
+from ._checks import zip_member_problem
 from .errors import InputError, ModelFileError
 
 __all__ = ["FORMAT", "FORMAT_VERSION", "model_fields", "read_model_file", "save_model"]
@@ -407,11 +408,10 @@ def _known_members(zf: zipfile.ZipFile, path) -> dict:
             continue  # unknown members are skipped unread, however large they claim to be
         if key in members:
             raise ModelFileError(f"{path}: key '{key}' appears twice in the archive")
-        if info.flag_bits & 0x1:
-            raise ModelFileError(f"{path}: key '{key}' is encrypted; model files are never encrypted")
-        if info.compress_type not in (zipfile.ZIP_STORED, zipfile.ZIP_DEFLATED):
-            raise ModelFileError(f"{path}: key '{key}' uses zip compression method {info.compress_type}; "
-                                 f"model files use deflate (8) or none (0); re-save the model with msmkit")
+        problem = zip_member_problem(info)
+        if problem:
+            raise ModelFileError(f"{path}: key '{key}' {problem}: model files never are; re-save the model "
+                                 f"with msmkit")
         members[key] = info
     missing = [k for k in REQUIRED_KEYS if k not in members]
     if missing:

@@ -39,7 +39,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ._checks import check_bool
+from ._checks import check_bool, zip_member_problem
 from .errors import InputError, ModelFileError
 from .lagscan import LagScan
 from .macro import Macrostates
@@ -306,11 +306,10 @@ def _read_archive(path: Path) -> dict:
                 key = info.filename[:-4]
                 if key in headers:
                     raise InputError(f"{where}: member '{key}' appears twice in the archive")
-                if info.flag_bits & 0x1:
-                    raise InputError(f"{where}: member '{key}' is encrypted; session files never are")
-                if info.compress_type not in (zipfile.ZIP_STORED, zipfile.ZIP_DEFLATED):
-                    raise InputError(f"{where}: member '{key}' uses zip compression method {info.compress_type}; "
-                                     f"session files use deflate or none")
+                problem = zip_member_problem(info)
+                if problem:
+                    raise InputError(f"{where}: member '{key}' {problem}: session files never are; write it "
+                                     f"with msmkit.save_session")
                 headers[key] = _header(zf, info, key, where)
                 total += headers[key][1]
                 if total > MAX_TOTAL_BYTES:

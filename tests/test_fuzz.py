@@ -200,7 +200,7 @@ def test_load_unsupported_compression(tmp_path, good_file, method):
     path = tmp_path / "method.npz"
     path.write_bytes(raw)
     with pytest.raises(ModelFileError, match=rf"method\.npz: key 'propagator' uses zip compression method "
-                                             rf"{method}; model files use deflate"):
+                                             rf"{method}; numpy writes deflate"):
         load_model(path)
 
 

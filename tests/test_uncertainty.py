@@ -23,7 +23,7 @@ from scipy import stats
 
 import msmkit as mk
 from msmkit.errors import Cancelled
-from msmkit.uncertainty import PRIOR_COUNT as B
+from msmkit.posterior import INTERVAL_PRIOR_COUNT as B
 
 TWO = np.array([[0.97, 0.03], [0.05, 0.95]])
 FOUR = np.array([[0.90, 0.09, 0.01, 0.00],
@@ -238,7 +238,7 @@ def test_bad_input(two_state, sample_chain):
     with pytest.raises(mk.InputError, match="no transition counts"):
         mk.sample_models(quiet(mk.MarkovModel.from_transition_matrix, TWO), runs)
     other = quiet(mk.build_model, runs, 1, reversible=False)
-    with pytest.raises(mk.InputError, match="non-reversible; use uncertainty='bootstrap'"):
+    with pytest.raises(mk.InputError, match="needs reversible=True.*use uncertainty='bootstrap'"):
         mk.sample_models(other, uncertainty="bayes")
     draw = mk.sample_models(model, runs, n_samples=200, seed=0)
     with pytest.raises(mk.InputError, match="confidence must be"):

@@ -244,6 +244,16 @@ def test_ck_verdict_holds_the_family_wise_error_with_holm():
     assert got["outside_by"][7, 1, 1] == pytest.approx((6.0 - got["threshold"]) * spread[7, 1, 1], rel=1e-9)
 
 
+def four_set_chain(n=20):
+    """A chain of n states in 4 metastable sets of n/4, detailed balance by construction
+    (symmetric flows)."""
+    rng = np.random.default_rng(0)
+    same = np.arange(n)[:, None] // (n // 4) == np.arange(n)[None, :] // (n // 4)
+    X = rng.uniform(0.5, 1.5, (n, n)) * np.where(same, 0.3, 0.004)
+    X = np.triu(X, 1) + np.triu(X, 1).T + np.eye(n)
+    return X / X.sum(axis=1, keepdims=True)
+
+
 @pytest.mark.slow
 def test_ck_false_alarms_on_markov_data_with_four_sets(sample_chain):
     # Markov data from a 20-state chain with 4 metastable sets (detailed balance by construction),
@@ -252,12 +262,7 @@ def test_ck_false_alarms_on_markov_data_with_four_sets(sample_chain):
     # (measured offline: 8 of 30 replicates); the family-wise verdict must keep false alarms near
     # 5 % (measured offline: 1 of 30). Here 10 replicates: the old pointwise rule, read off the
     # same results, fails more often than the new one, and the new one at most once.
-    rng = np.random.default_rng(0)
-    n = 20
-    same = np.arange(n)[:, None] // 5 == np.arange(n)[None, :] // 5
-    X = rng.uniform(0.5, 1.5, (n, n)) * np.where(same, 0.3, 0.004)
-    X = np.triu(X, 1) + np.triu(X, 1).T + np.eye(n)
-    T = X / X.sum(axis=1, keepdims=True)
+    T = four_set_chain()
     old_rule, new_rule = 0, 0
     for r in range(10):
         runs = sample_chain(T, 2000, n_runs=10, seed=1000 + r)
@@ -381,12 +386,7 @@ def test_ck_bayes_false_alarms_and_power(sample_chain):
     # test_ck_false_alarms_on_markov_data_with_four_sets) at most one false alarm in 10 replicates
     # (measured offline: 0 of 30, as with the bootstrap); on lumped flicker data at lag 1 every
     # replicate fails (measured offline: 30 of 30).
-    rng = np.random.default_rng(0)
-    n = 20
-    same = np.arange(n)[:, None] // 5 == np.arange(n)[None, :] // 5
-    X = rng.uniform(0.5, 1.5, (n, n)) * np.where(same, 0.3, 0.004)
-    X = np.triu(X, 1) + np.triu(X, 1).T + np.eye(n)
-    T = X / X.sum(axis=1, keepdims=True)
+    T = four_set_chain()
     false_alarms, detected = 0, 0
     for r in range(10):
         runs = sample_chain(T, 2000, n_runs=10, seed=1000 + r)

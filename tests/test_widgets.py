@@ -8,6 +8,7 @@ import io
 import json
 import subprocess
 import sys
+import warnings
 
 import numpy as np
 import pandas as pd
@@ -17,7 +18,7 @@ pytest.importorskip("ipywidgets")
 
 import msmkit as mk  # noqa: E402
 from msmkit import demo  # noqa: E402
-from msmkit.errors import InputError  # noqa: E402
+from msmkit.errors import DiagnosticWarning, InputError  # noqa: E402
 from msmkit.lagscan import lag_scan  # noqa: E402
 from msmkit.plots import figure_png, plot_timescales  # noqa: E402
 from msmkit.reduce import TICA  # noqa: E402
@@ -469,8 +470,7 @@ def test_kinetics_button_gives_the_public_numbers(wb):
     assert res is not None, status_text(panel.status)
     assert "msmkit-error" not in panel.status.value
 
-    from msmkit.widgets.kinetics import POPULATION_SAMPLES
-    macro = model.find_macrostates(n_sets, labels=wb.labels, n_samples=POPULATION_SAMPLES, seed=0)
+    macro = model.find_macrostates(n_sets, labels=wb.labels, n_samples=panel.n_samples.value, seed=0)
     np.testing.assert_allclose(wb.macrostates.affinity, macro.affinity)
     pd.testing.assert_frame_equal(res.population_table, macro.populations())
     assert {"population_lower", "population_upper"} <= set(res.population_table.columns)
@@ -485,6 +485,15 @@ def test_kinetics_button_gives_the_public_numbers(wb):
         np.testing.assert_allclose(row.rate, model.transition_paths(macro.members[a], macro.members[b]).rate_constant, rtol=1e-12)
     assert len(res.passage) == n_sets * (n_sets - 1)
     assert f"{mfpt[0, 1]:.4g}" in panel.passage_html.value and f"({model.unit})" in panel.passage_html.value
+    # intervals on passage times and rates: those of the library's table for the same sampled models
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DiagnosticWarning)
+        table = macro.kinetics_table()
+    for ours, theirs in (("mfpt", "passage_time"), ("rate", "rate_constant")):
+        for end in ("lower", "upper"):
+            np.testing.assert_allclose(res.passage[f"{ours}_{end}"], table[f"{theirs}_{end}"], rtol=1e-12)
+    assert (res.passage["mfpt_lower"] <= res.passage["mfpt"]).all() or "outside" in panel.status.value
+    assert "95% interval (time)" in panel.passage_html.value and "bootstrap samples" in panel.passage_html.value
     assert f"{macro.populations()['population'][0]:.4g}" in panel.populations_html.value
 
     flux = model.transition_paths(macro.members[0], macro.members[1])
@@ -1124,3 +1133,42 @@ def test_session_before_any_result_keeps_the_settings(trajs, tmp_path):
     again.load_session(path)
     assert again.states_panel.n_states.value == 9 and again.lag_panel.lags.value == "1, 2"
     assert again.lag_panel.reversible.value is False and again.model is None
+
+
+def test_one_uncertainty_choice_for_scan_test_and_kinetics(trajs):
+    # the choice made in the lag step reaches the test and the kinetics step; the numbers are
+    # those of the library called with uncertainty="bayes" (reference: lag_scan, chapman_kolmogorov)
+    from msmkit.validate import chapman_kolmogorov
+
+    wb = Workbench(trajs, n_states=6, lags=[1, 2], n_samples=30, ck_samples=10, progress=False)
+    wb.make_states()
+    wb.lag_panel.uncertainty.value = "bayes"
+    assert wb.validation_panel.uncertainty.value == "bayes" == wb.kinetics_panel.uncertainty.value
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DiagnosticWarning)
+        scan = wb.lag_panel.scan()
+        want = lag_scan(wb.labels, [1, 2], dt=wb.dt, unit=wb.unit, n_samples=30, seed=0, uncertainty="bayes")
+        assert scan.uncertainty == "bayes"
+        np.testing.assert_allclose(scan.lower, want.lower, rtol=1e-12)
+        np.testing.assert_allclose(scan.upper, want.upper, rtol=1e-12)
+        ck = wb.validation_panel.run(n_sets=2, multiples=2)
+        ref = chapman_kolmogorov(wb.model, wb.labels, n_sets=2, multiples=2, n_samples=10, seed=0,
+                                 uncertainty="bayes")
+        assert ck.uncertainty == "bayes"
+        np.testing.assert_allclose(ck.lower, ref.lower, rtol=1e-12, equal_nan=True)
+        res = wb.kinetics_panel.compute(n_sets=2, n_samples=25)
+    assert res.macrostates.samples.uncertainty == "bayes" and res.macrostates.samples.propagators.shape[0] == 25
+    assert "posterior samples" in wb.kinetics_panel.passage_html.value
+    # non-reversible models have no posterior here: a message, not a traceback
+    wb.kinetics_panel.set_model(quiet_build(wb.labels, 1, reversible=False))
+    wb.kinetics_panel.compute_button.click()
+    wb.kinetics_panel.wait(60)
+    assert "reversible=True" in status_text(wb.kinetics_panel.status)
+    # a session keeps the choice
+    assert wb.session().settings["fields"]["lags"]["uncertainty"] == "bayes"
+
+
+def quiet_build(labels, lag, **kw):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DiagnosticWarning)
+        return mk.build_model(labels, lag, **kw)

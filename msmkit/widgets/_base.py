@@ -36,6 +36,23 @@ def field(kind, value, description, tooltip="", width="350px", **kw):
     return w
 
 
+#: the choices of an "error bars from" field: (shown, value of ``uncertainty=``)
+UNCERTAINTY_CHOICES = (("resampled runs (bootstrap)", "bootstrap"), ("Bayesian posterior", "bayes"))
+#: what the samples of each method are called in messages
+SAMPLES_OF = {"bootstrap": "bootstrap samples", "bayes": "posterior samples"}
+
+
+def uncertainty_field(value: str, css_class: str, what: str):
+    """A choice of where the intervals of ``what`` come from (the library's ``uncertainty=``)."""
+    from ..posterior import check_uncertainty
+    w = field(widgets.Dropdown, check_uncertainty(value), "error bars from",
+              f"How the intervals of {what} are obtained: resampling whole runs (bootstrap), or the "
+              f"posterior of reversible transition matrices given the counts (reversible models only)",
+              options=list(UNCERTAINTY_CHOICES))
+    w.add_class(css_class)
+    return w
+
+
 def row(children):
     """A row of widgets that wraps onto the next line in a narrow window instead of clipping."""
     return widgets.HBox(children, layout=widgets.Layout(flex_flow="row wrap", align_items="flex-start"))

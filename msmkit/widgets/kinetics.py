@@ -8,11 +8,13 @@ import pandas as pd
 import traitlets
 
 from .._checks import check_int
-from ..defaults import ROUTE_SHARE
+from ..defaults import BOOTSTRAP_SAMPLES, ROUTE_SHARE
 from ..errors import InputError
+from ..posterior import check_uncertainty
 from ..plots import plot_kinetics_maps, plot_macrostate_network
 from . import _render
-from ._base import MacrostateCount, SetPair, Step, button, field, set_value, row, widgets
+from ._base import (SAMPLES_OF, MacrostateCount, SetPair, Step, button, field, set_value, row, uncertainty_field,
+                    widgets)
 from ._render import frames
 from .lags import SAMPLING_CAUTION
 
@@ -51,7 +53,9 @@ class KineticsSummary:
     passage : pandas.DataFrame
         One row per ordered pair of macrostates: ``from_macrostate``, ``to_macrostate``,
         ``mfpt`` (``macrostates.passage_time_table()``, in ``unit``) and ``rate`` (the
-        transition-path-theory rate ``model.transition_paths(sets[a], sets[b]).rate_constant``, in 1/``unit``).
+        transition-path-theory rate ``model.transition_paths(sets[a], sets[b]).rate_constant``, in 1/``unit``);
+        with sampled models also ``mfpt_lower``, ``mfpt_upper``, ``rate_lower``, ``rate_upper``
+        (``macrostates.kinetics_table()``).
     routes : pandas.DataFrame
         ``flux.routes_table(fraction, max_paths=max_paths)``; states by original label.
     fraction : float
@@ -73,8 +77,6 @@ class KineticsSummary:
 
 #: most routes between macrostates listed above the pathway table
 MACRO_ROUTES = 6
-#: bootstrap samples behind the macrostate population intervals
-POPULATION_SAMPLES = 30
 
 
 class KineticsPanel(Step):
@@ -101,10 +103,8 @@ class KineticsPanel(Step):
     """
 
     result = traitlets.Any(None)
-    interrupt_thread = True  # the macrostate bootstrap has no cancel points of its own
-
     def __init__(self, model=None, *, n_sets=None, fraction: float = ROUTE_SHARE, max_paths: int = 20,
-                 progress: bool = True):
+                 n_samples: int = BOOTSTRAP_SAMPLES, uncertainty: str = "bootstrap", progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-kinetics")
         self.model = None
         self.labels = None
@@ -113,6 +113,12 @@ class KineticsPanel(Step):
         self.fraction = field(widgets.FloatText, float(fraction), "flux share to explain",
                               "List routes until they carry this share of the source → target flux")
         self.max_paths = field(widgets.IntText, int(max_paths), "routes shown", "Most routes listed")
+        self.n_samples = field(widgets.IntText, int(n_samples), "samples for intervals",
+                               "Sampled models behind the intervals of the populations, passage times and rates "
+                               "(0: estimates only)")
+        self.n_samples.add_class("msmkit-kinetics-samples")
+        self.uncertainty = uncertainty_field(uncertainty, "msmkit-kinetics-uncertainty",
+                                             "the populations, passage times and rates")
         self.compute_button = button("Compute", "msmkit-kinetics-button",
                                      "Find the macrostates and the times, rates and routes between them",
                                      icon="random")
@@ -148,6 +154,7 @@ class KineticsPanel(Step):
             "flux and the routes that carry it, microstate by microstate."))
         settings = row([
             widgets.VBox([self.n_sets.field, widgets.HBox([self.compute_button, self.cancel_button, self.progress_bar])]),
+            widgets.VBox([self.n_samples, self.uncertainty]),
             widgets.VBox([self.fraction, self.max_paths]),
         ])
         self.children = [intro, settings, self.n_sets.reason, self.status, self.populations_html, self.passage_html,
@@ -158,7 +165,7 @@ class KineticsPanel(Step):
 
     # -- inputs ------------------------------------------------------------------------------
     def set_labels(self, labels):
-        """The label trajectories of the model: macrostate populations then get bootstrap intervals."""
+        """The label trajectories of the model, resampled for bootstrap intervals."""
         self.labels = labels
 
     def set_centers(self, centers, names=None):
@@ -190,7 +197,8 @@ class KineticsPanel(Step):
         return None if self.result is None else self.result.macrostates
 
     # -- actions -----------------------------------------------------------------------------
-    def compute(self, n_sets=None, source=None, target=None, *, fraction=None, max_paths=None):
+    def compute(self, n_sets=None, source=None, target=None, *, fraction=None, max_paths=None, n_samples=None,
+                uncertainty=None):
         """Macrostates, their populations, first-passage times and rates, and the reactive flux
         from ``source`` to ``target``; given arguments replace the panel's settings first.
 
@@ -203,6 +211,9 @@ class KineticsPanel(Step):
             it still exists, else 0 and 1.
         fraction, max_paths : optional
             Route list settings.
+        n_samples, uncertainty : optional
+            Sampled models behind the intervals (:func:`msmkit.sample_models`); the bootstrap
+            needs the label trajectories (:meth:`set_labels`), without them there are no intervals.
 
         Returns
         -------
@@ -217,9 +228,16 @@ class KineticsPanel(Step):
             model = self.model
             m = self.n_sets.get(n_sets, model)
             source, target = _check_pair(*_default_pair(source, target, self.pair.value, m), m)
+            if n_samples is not None:
+                set_value(self.n_samples, check_int(n_samples, "n_samples", minimum=0), "n_samples")
+            if uncertainty is not None:
+                self.uncertainty.value = check_uncertainty(uncertainty)
+            method, count = self.uncertainty.value, max(int(self.n_samples.value), 0)
+            if method == "bootstrap" and self.labels is None:
+                count = 0  # nothing to resample
             self._stage(1, 3, "macrostates")
-            macro = (model.find_macrostates(m) if self.labels is None else
-                     model.find_macrostates(m, labels=self.labels, n_samples=POPULATION_SAMPLES, seed=0))
+            macro = model.find_macrostates(m, labels=self.labels, n_samples=count, uncertainty=method, seed=0,
+                                           cancel=self._cancel_point(count + 3, start=1, what="sampling models"))
             result = self._summarize(macro, source, target)
         self._show_result(result)
         self._report(f"{m} macrostates of the model at lag {frames(model.lag)}; reactive flux from macrostate "
@@ -256,12 +274,15 @@ class KineticsPanel(Step):
             raise InputError(f"n_sets={m}: macrostate(s) {empty} hold no state by largest membership, so no "
                              f"time or flux can be given for them; choose fewer macrostates")
         populations = macro.populations()
-        mfpt = macro.passage_time_table()
         self._stage(2, 3, "rates and flux")
-        rows = [(a, b, mfpt.iloc[a, b], model.transition_paths(macro.members[a], macro.members[b]).rate_constant)
-                for a in range(m) for b in range(m) if a != b]
-        passage = pd.DataFrame(rows, columns=["from_macrostate", "to_macrostate", "mfpt", "rate"])
-        passage.attrs["unit"] = model.unit
+        table = macro.kinetics_table()
+        passage = pd.DataFrame({"from_macrostate": table["from_set"], "to_macrostate": table["to_set"],
+                                "mfpt": table["passage_time"], "rate": table["rate_constant"]})
+        for ours, theirs in (("mfpt", "passage_time"), ("rate", "rate_constant")):
+            for end in ("lower", "upper"):
+                if f"{theirs}_{end}" in table.columns:
+                    passage[f"{ours}_{end}"] = table[f"{theirs}_{end}"].to_numpy()
+        passage.attrs.update(table.attrs, unit=model.unit)
         result = self._with_flux(KineticsSummary(macro, source, target, None, populations, passage, None,
                                                  self.fraction.value, self.max_paths.value, model.unit))
         self._stage(3, 4, "drawing")
@@ -393,10 +414,20 @@ def _passage_html(result, model) -> str:
     df = result.passage
     unit = model.unit
     shown = pd.DataFrame({"from": df["from_macrostate"], "to": df["to_macrostate"],
-                          f"mean first-passage time ({unit})": df["mfpt"], f"rate (1/{unit})": df["rate"]})
+                          f"mean first-passage time ({unit})": df["mfpt"]})
+    sampled = "mfpt_lower" in df.columns
+    if sampled:
+        shown["95% interval (time)"] = [f"{lo:.3g} – {hi:.3g}" for lo, hi in zip(df["mfpt_lower"], df["mfpt_upper"])]
+    shown[f"rate (1/{unit})"] = df["rate"]
+    if sampled:
+        shown["95% interval (rate)"] = [f"{lo:.3g} – {hi:.3g}" for lo, hi in zip(df["rate_lower"], df["rate_upper"])]
+    samples = result.macrostates.samples
+    interval = (f" Intervals from {samples.propagators.shape[0]} {SAMPLES_OF[samples.uncertainty]}."
+                if sampled else " No intervals: the numbers come from the one chosen model.")
     caption = (f"Between macrostates: mean first-passage time into the target, starting from the stationary "
-               f"distribution inside the source, and the transition-path-theory rate (reactive events per time "
-               f"spent last in the source), in {unit}.")
+               f"distribution inside the source (at the resolution of the lag time, {model.lag_time:g} {unit}), "
+               f"and the transition-path-theory rate (reactive events per time spent last in the source), in "
+               f"{unit}.{interval}")
     fmt = "{:.4g}".format
     return _render.table_html(shown, caption=caption, formatters={f"mean first-passage time ({unit})": fmt,
                                                                   f"rate (1/{unit})": fmt})

@@ -8,10 +8,12 @@ from .._checks import check_bool, check_dt, check_int, check_unit
 from ..defaults import BOOTSTRAP_SAMPLES, PROCESSES
 from ..errors import InputError
 from ..lagscan import lag_scan
+from ..posterior import check_uncertainty
 from ..plots import plot_timescales
 from ..report import lag_cautions
 from . import _render
-from ._base import DESCRIPTION_WIDTH, Step, button, field, parse_int_list, set_value, row, widgets
+from ._base import (DESCRIPTION_WIDTH, SAMPLES_OF, Step, button, field, parse_int_list, set_value, row,
+                    uncertainty_field, widgets)
 from ._render import frames
 
 __all__ = ["LagPanel", "TimescaleView", "default_lags", "lag_cautions"]
@@ -90,8 +92,12 @@ class LagPanel(Step):
     n_processes : int, default 4
         How many of the slowest timescales to follow.
     n_samples : int, default 200 (``msmkit.defaults.BOOTSTRAP_SAMPLES``)
-        Bootstrap samples for the intervals (error bars) of the timescales (0: none).
+        Samples for the intervals (error bars) of the timescales (0: none).
     seed : int, default 0
+    uncertainty : {"bootstrap", "bayes"}, default "bootstrap"
+        Where the samples come from (:func:`msmkit.lag_scan`): resampled runs, or the posterior of
+        reversible transition matrices (needs ``reversible``). The Chapman–Kolmogorov test and the
+        macrostate intervals of the workbench follow this choice.
     reversible : bool, default True
         Estimate reversible models (detailed balance, the usual choice for equilibrium
         simulations); False: non-reversible maximum-likelihood models (runs driven out of
@@ -111,7 +117,7 @@ class LagPanel(Step):
 
     def __init__(self, labels=None, *, dt: float = 1.0, unit: str = "step", lags=None, n_processes: int = PROCESSES,
                  n_samples: int = BOOTSTRAP_SAMPLES, seed: int = 0, reversible: bool = True,
-                 progress: bool = True):
+                 uncertainty: str = "bootstrap", progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-lags")
         self.dt, self.unit = check_dt(dt), check_unit(unit)
         self.labels = None
@@ -126,8 +132,10 @@ class LagPanel(Step):
         self.n_processes = field(widgets.IntText, int(n_processes), "timescales shown",
                                  "How many of the slowest processes to follow")
         self.n_samples = field(widgets.IntText, int(n_samples), "bootstrap samples",
-                               "Resampled data sets for the error bars (95% intervals) of the timescales (0: none)")
+                               "Resampled data sets (or posterior samples) for the error bars (95% intervals) "
+                               "of the timescales (0: none)")
         self.n_samples.add_class("msmkit-lag-samples")
+        self.uncertainty = uncertainty_field(uncertainty, "msmkit-lag-uncertainty", "the timescales")
         self.seed = field(widgets.IntText, int(seed), "seed", "Seed of the resampling")
         self.reversible = widgets.Checkbox(value=bool(reversible), description="reversible estimate",
                                            style={"description_width": DESCRIPTION_WIDTH},
@@ -157,7 +165,7 @@ class LagPanel(Step):
             "smallest lag from which they stay constant. Timescales below the line t = τ are "
             "faster than the lag and cannot be resolved."))
         settings = row([widgets.VBox([self.lags, self.n_processes]),
-                                 widgets.VBox([self.n_samples, self.seed, self.reversible])])
+                                 widgets.VBox([self.n_samples, self.uncertainty, self.seed, self.reversible])])
         self._plots = [self.plot]
         self.children = [intro, settings, widgets.HBox([self.scan_button, self.cancel_button, self.progress_bar]),
                          self.status, self.plot, self.suggestion, self.slider, self.diagnostics,
@@ -186,7 +194,7 @@ class LagPanel(Step):
         return None if self.model is None else int(self.model.lag)
 
     # -- actions -----------------------------------------------------------------------------
-    def scan(self, lags=None, n_samples=None, *, n_processes=None, seed=None, reversible=None):
+    def scan(self, lags=None, n_samples=None, *, n_processes=None, seed=None, reversible=None, uncertainty=None):
         """Run the lag scan with the panel's settings; given arguments replace them first.
 
         The suggested lag is chosen (or the smallest one when none is suggested).
@@ -204,6 +212,8 @@ class LagPanel(Step):
                     set_value(getattr(self, name), check_int(value, name), name)
             if reversible is not None:
                 self.reversible.value = check_bool(reversible, "reversible")
+            if uncertainty is not None:
+                self.uncertainty.value = check_uncertainty(uncertainty)
             if self.labels is None:
                 raise InputError("there are no microstates yet: make them first (step 1, Cluster)")
             wanted = parse_int_list(self.lags.value, "lags")
@@ -212,14 +222,14 @@ class LagPanel(Step):
             result = lag_scan(self.labels, wanted, dt=self.dt, unit=self.unit,
                               n_processes=check_int(self.n_processes.value, "timescales shown", minimum=1),
                               n_samples=self.n_samples.value, seed=self.seed.value,
-                              reversible=self.reversible.value,
+                              reversible=self.reversible.value, uncertainty=self.uncertainty.value,
                               cancel=self._cancel_point(units + 1, what=f"{len(wanted)} lags"))
             self._stage(units, units + 1, "drawing")
             lag = result.suggested_lag if result.suggested_lag is not None else int(result.lags[0])
             view = TimescaleView(result, lag)
         self._show_scan(result, lag, view)
         self._report(f"Scanned {len(result.lags)} lags"
-                     f"{f' with {result.n_samples} bootstrap samples' if result.n_samples else ''}. "
+                     f"{f' with {result.n_samples} {SAMPLES_OF[result.uncertainty]}' if result.n_samples else ''}. "
                      f"Move the slider to choose the lag; populations are in step 3.", caught + list(result.notes))
         return result
 
@@ -241,6 +251,7 @@ class LagPanel(Step):
             set_value(self.n_processes, int(scan.timescales.shape[1]), "n_processes")
             set_value(self.n_samples, int(scan.n_samples), "n_samples")
             self.reversible.value = bool(scan.model(lag).reversible)
+            self.uncertainty.value = check_uncertainty(getattr(scan, "uncertainty", "bootstrap"))
             view = TimescaleView(scan, lag)
         self._show_scan(scan, lag, view)
         self._report(f"The scan of {len(scan.lags)} lags, as saved; lag {frames(lag)} chosen.",

@@ -6,10 +6,12 @@ import traitlets
 from .._checks import check_int
 from ..defaults import CK_MULTIPLES, CK_SAMPLES
 from ..errors import InputError
+from ..posterior import check_uncertainty
 from ..plots import plot_chapman_kolmogorov, plot_lag_flow
 from ..validate import chapman_kolmogorov, lag_flow
 from . import _render
-from ._base import MacrostateCount, SetPair, Step, button, field, set_value, row, widgets
+from ._base import (SAMPLES_OF, MacrostateCount, SetPair, Step, button, field, set_value, row, uncertainty_field,
+                    widgets)
 from ._render import frames
 from .lags import SAMPLING_CAUTION
 
@@ -39,8 +41,10 @@ class ValidationPanel(Step):
     multiples : int, default 4 (``msmkit.defaults.CK_MULTIPLES``)
         Largest k: the model's T(tau)^k is compared with the data at lag k tau, k = 1..multiples.
     n_samples : int, default 20 (``msmkit.defaults.CK_SAMPLES``)
-        Bootstrap samples for the intervals of the estimates (0: a fixed tolerance instead).
+        Samples for the intervals of the estimates (0: a fixed tolerance instead).
     seed : int, default 0
+    uncertainty : {"bootstrap", "bayes"}, default "bootstrap"
+        Where the samples come from (:func:`msmkit.chapman_kolmogorov`).
     progress : bool, default True
 
     Attributes
@@ -54,7 +58,7 @@ class ValidationPanel(Step):
     ck = traitlets.Any(None)
 
     def __init__(self, model=None, labels=None, *, n_sets=None, multiples: int = CK_MULTIPLES, n_samples: int = CK_SAMPLES,
-                 seed: int = 0, progress: bool = True):
+                 seed: int = 0, uncertainty: str = "bootstrap", progress: bool = True):
         super().__init__(progress=progress, css_class="msmkit-validate")
         self.model = None
         self.labels = None
@@ -67,6 +71,7 @@ class ValidationPanel(Step):
                                "Resampled data sets for the intervals of the estimates (0: judge by a fixed "
                                "tolerance instead)")
         self.n_samples.add_class("msmkit-validate-samples")
+        self.uncertainty = uncertainty_field(uncertainty, "msmkit-validate-uncertainty", "the estimates")
         self.seed = field(widgets.IntText, int(seed), "seed", "Seed of the resampling")
         self.run_button = button("Run test", "msmkit-validate-button",
                                  "Run the Chapman–Kolmogorov test with these settings", icon="check-square-o")
@@ -92,7 +97,7 @@ class ValidationPanel(Step):
             "data at lag kτ. The lag flow below draws the same numbers for two sets as paths toward equilibrium."))
         settings = row([
             widgets.VBox([self.n_sets.field, self.multiples]),
-            widgets.VBox([self.n_samples, self.seed, widgets.HBox([self.run_button, self.cancel_button, self.progress_bar])]),
+            widgets.VBox([self.n_samples, self.uncertainty, self.seed, widgets.HBox([self.run_button, self.cancel_button, self.progress_bar])]),
         ])
         self._plots = [self.ck_plot, self.flow_plot]
         self.children = [intro, settings, self.n_sets.reason, self.status, self.verdict, self.ck_plot,
@@ -126,7 +131,7 @@ class ValidationPanel(Step):
         _render.show_message(self.status, "" if self.model is not None else "No model yet: choose a lag in step 2.")
 
     # -- actions -----------------------------------------------------------------------------
-    def run(self, n_sets=None, multiples=None, n_samples=None, *, seed=None):
+    def run(self, n_sets=None, multiples=None, n_samples=None, *, seed=None, uncertainty=None):
         """Run the Chapman–Kolmogorov test with the panel's settings; given arguments replace them.
 
         Returns
@@ -143,6 +148,8 @@ class ValidationPanel(Step):
             for name, value in (("multiples", multiples), ("n_samples", n_samples), ("seed", seed)):
                 if value is not None:
                     set_value(getattr(self, name), check_int(value, name), name)
+            if uncertainty is not None:
+                self.uncertainty.value = check_uncertainty(uncertainty)
             if self.model is None or self.labels is None:
                 raise InputError("there is no model to test yet: make microstates (step 1), then scan and "
                                  "choose a lag (step 2)")
@@ -151,12 +158,13 @@ class ValidationPanel(Step):
             units = check_int(self.multiples.value, "multiples", minimum=1) * (1 + max(int(self.n_samples.value), 0))
             ck = chapman_kolmogorov(self.model, self.labels, n_sets=m, multiples=self.multiples.value,
                                     n_samples=self.n_samples.value, seed=self.seed.value,
+                                    uncertainty=self.uncertainty.value,
                                     cancel=self._cancel_point(units + 1, what="testing"))
             self._stage(units, units + 1, "drawing")
             flow = self._draw(ck, (0, 1))
         self._show_test(ck, flow)
         self._report(f"Tested the model at lag {frames(ck.lag)} on {ck.n_sets} sets, k = 1..{len(ck.multiples)}"
-                     f"{f', {ck.n_samples} bootstrap samples' if ck.n_samples else ', no bootstrap'}: "
+                     f"{f', {ck.n_samples} {SAMPLES_OF[ck.uncertainty]}' if ck.n_samples else ', no samples'}: "
                      f"{ck.verdict} (the rule is below).", caught)
         return ck
 
@@ -175,6 +183,7 @@ class ValidationPanel(Step):
             self.n_sets.get(len(ck.members), self.model)
             set_value(self.multiples, int(len(ck.multiples)), "multiples")
             set_value(self.n_samples, int(ck.n_samples), "n_samples")
+            self.uncertainty.value = check_uncertainty(getattr(ck, "uncertainty", "bootstrap"))
             flow = self._draw(ck, tuple(int(x) for x in flow_pair))
         self._show_test(ck, flow)
         self._report(f"The test of the model at lag {frames(ck.lag)} on {ck.n_sets} sets, as saved: {ck.verdict}.",

@@ -43,8 +43,10 @@ class Workbench(widgets.VBox):
         Time unit (default: ``trajs.unit`` when given, else "step").
     features, use_tica, tica_lag, tica_dim, n_states, method, stride, seed, scale
         Starting settings of the microstates step (see :class:`StatesPanel`).
-    lags, n_processes, n_samples, reversible
-        Starting settings of the lag step (see :class:`LagPanel`).
+    lags, n_processes, n_samples, reversible, uncertainty
+        Starting settings of the lag step (see :class:`LagPanel`). ``uncertainty`` ("bootstrap"
+        or "bayes") is one choice for the whole workbench: the lag scan, the Chapman–Kolmogorov
+        test and the macrostate intervals follow it (changing it in one step changes it in all).
     temperature : float or None, default 300.0
         Kelvin, for free energies in kJ/mol.
     n_sets : int, optional
@@ -69,7 +71,7 @@ class Workbench(widgets.VBox):
     def __init__(self, trajs, *, dt=None, unit=None, features=None, use_tica: bool = True, tica_lag: int = 10,
                  tica_dim: int = 2, n_states: int = 100, method: str = "kmeans", stride: int = 1, seed: int = 0,
                  scale: str = "standard", lags=None, n_processes: int = PROCESSES, n_samples: int = BOOTSTRAP_SAMPLES,
-                 reversible: bool = True, temperature=300.0, n_sets=None,
+                 reversible: bool = True, uncertainty: str = "bootstrap", temperature=300.0, n_sets=None,
                  multiples: int = CK_MULTIPLES, ck_samples: int = CK_SAMPLES, file_name: str = "msmkit_model.npz",
                  session_file: str = "msmkit_session.npz", progress: bool = True):
         super().__init__()
@@ -84,11 +86,14 @@ class Workbench(widgets.VBox):
         self.lag_panel = LagPanel(None, dt=self.dt, unit=self.unit,
                                   lags=lags if lags is not None else default_lags(lengths),
                                   n_processes=n_processes, n_samples=n_samples, seed=seed, reversible=reversible,
-                                  progress=progress)
+                                  uncertainty=uncertainty, progress=progress)
         self.populations_panel = PopulationsPanel(None, temperature=temperature, progress=progress)
         self.validation_panel = ValidationPanel(n_sets=n_sets, multiples=multiples, n_samples=ck_samples,
-                                                seed=seed, progress=progress)
-        self.kinetics_panel = KineticsPanel(n_sets=n_sets, progress=progress)
+                                                seed=seed, uncertainty=uncertainty, progress=progress)
+        self.kinetics_panel = KineticsPanel(n_sets=n_sets, uncertainty=uncertainty, progress=progress)
+        # one choice of where intervals come from, shown in every step that forms them
+        self._uncertainty_links = [widgets.link((self.lag_panel.uncertainty, "value"), (panel.uncertainty, "value"))
+                                   for panel in (self.validation_panel, self.kinetics_panel)]
         self.steps = []
         self.tabs = widgets.Tab()
         self.tabs.add_class("msmkit-steps")
@@ -237,13 +242,14 @@ class Workbench(widgets.VBox):
         """Step 2: choose a scanned lag (frames); returns the model."""
         return self.lag_panel.select_lag(lag)
 
-    def validate(self, n_sets=None, multiples=None, n_samples=None, *, seed=None):
+    def validate(self, n_sets=None, multiples=None, n_samples=None, *, seed=None, uncertainty=None):
         """Step 4: the Chapman–Kolmogorov test of the chosen model (see :meth:`ValidationPanel.run`).
 
         ``n_sets`` defaults to the field, preset to the model's suggested number of macrostates;
-        ``multiples`` and ``n_samples`` to the fields. Returns the test result (also :attr:`ck`).
+        ``multiples``, ``n_samples`` and ``uncertainty`` to the fields. Returns the test result
+        (also :attr:`ck`).
         """
-        return self.validation_panel.run(n_sets, multiples, n_samples, seed=seed)
+        return self.validation_panel.run(n_sets, multiples, n_samples, seed=seed, uncertainty=uncertainty)
 
     def kinetics(self, n_sets=None, source=None, target=None, **settings):
         """Step 5: macrostates, first-passage times, rates, and the reactive flux from macrostate
@@ -354,10 +360,10 @@ class Workbench(widgets.VBox):
     SESSION_FIELDS = {
         "microstates": ("states_panel", ("features", "use_tica", "tica_lag", "tica_dim", "n_states", "method",
                                          "stride", "seed", "scale")),
-        "lags": ("lag_panel", ("lags", "n_processes", "n_samples", "seed", "reversible")),
+        "lags": ("lag_panel", ("lags", "n_processes", "n_samples", "seed", "reversible", "uncertainty")),
         "populations": ("populations_panel", ("temperature", "sort_by", "ascending", "max_rows")),
         "validation": ("validation_panel", ("n_sets", "multiples", "n_samples", "seed")),
-        "kinetics": ("kinetics_panel", ("n_sets", "fraction", "max_paths")),
+        "kinetics": ("kinetics_panel", ("n_sets", "fraction", "max_paths", "n_samples")),
     }
 
     def _field(self, step, name):
