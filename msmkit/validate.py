@@ -1149,7 +1149,7 @@ class CrossValidation:
 
 
 def cross_validate(trajs, n_states=None, lags=1, *, n_folds=5, k=None, reversible=True, cluster=None,
-                   stride=1, seed=None, dt=None, unit=None, progress=False) -> CrossValidation:
+                   stride=1, seed=None, dt=None, unit=None, progress=False, cancel=None) -> CrossValidation:
     """Cross-validate numbers of microstates (and lags) by the VAMP-2 score on held-out runs.
 
     The runs are split into ``n_folds`` groups of whole runs. For each fold and each candidate,
@@ -1189,6 +1189,9 @@ def cross_validate(trajs, n_states=None, lags=1, *, n_folds=5, k=None, reversibl
         Time between frames and the unit (default: from ``trajs`` when it carries them, else
         1 "step").
     progress : bool
+    cancel : object with ``is_set()``, optional
+        Asked after every fitted candidate (one fold, one number of microstates, one lag); once
+        set, :class:`~msmkit.errors.Cancelled` is raised.
 
     Returns
     -------
@@ -1234,7 +1237,7 @@ def cross_validate(trajs, n_states=None, lags=1, *, n_folds=5, k=None, reversibl
     n_rows = 1 if candidates is None else len(candidates)
     scores = np.full((n_rows, len(lag_list), n_folds), np.nan)
     seen = []
-    bar = progress_bar(n_folds * n_rows * len(lag_list), progress, "cross-validation")
+    bar = progress_bar(n_folds * n_rows * len(lag_list), progress, "cross-validation", cancel)
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", DiagnosticWarning)

@@ -1172,3 +1172,28 @@ def quiet_build(labels, lag, **kw):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DiagnosticWarning)
         return mk.build_model(labels, lag, **kw)
+
+
+def test_microstate_counts_cross_validated_in_the_workbench(trajs):
+    # the comparison in step 1 equals msmkit.cross_validate on the same coordinates and settings
+    # (VAMP-2 of held-out runs; McGibbon & Pande 2015); re-clustering drops it
+    from msmkit.validate import cross_validate
+
+    wb = Workbench(trajs, n_states=8, lags=[1], n_samples=0, progress=False)
+    panel = wb.states_panel
+    with pytest.raises(InputError, match="Cluster first"):
+        panel.compare_states([4, 8])
+    wb.make_states()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DiagnosticWarning)
+        got = panel.compare_states([4, 8, 16], lag=2, n_folds=3)
+        want = cross_validate(panel.coordinates, [4, 8, 16], 2, n_folds=3, seed=0,
+                              cluster=lambda n: Microstates(n, stride=1, seed=0, progress=False))
+    np.testing.assert_allclose(got.scores, want.scores, rtol=1e-12)
+    assert f"{got.best[2]} microstates" in panel.compare_note.value
+    assert "cross-validation" in panel.figure_names
+    panel.compare_button.click()  # the button reuses the fields
+    panel.wait(120)
+    assert "Cross-validated 3 numbers" in status_text(panel.status), status_text(panel.status)
+    wb.make_states(n_states=6)
+    assert panel.compared is None and panel.compare_note.value == "" and "cross-validation" not in panel.figure_names

@@ -8,12 +8,13 @@ from .._checks import as_float_trajectories, check_int, feature_names_of
 from ..cli import SPREAD_RATIO_CAUTION
 from ..errors import InputError
 from ..io import TrajectorySet, default_feature_names
-from ..plots import plot_state_map
+from ..plots import plot_cross_validation, plot_state_map
 from ..reduce import TICA
 from ..session import trajectories_fingerprint
 from ..states import Microstates
+from ..validate import cross_validate
 from . import _render
-from ._base import DESCRIPTION_WIDTH, Step, button, field, set_value, row, widgets
+from ._base import DESCRIPTION_WIDTH, Step, button, field, parse_int_list, set_value, row, widgets
 
 __all__ = ["StatesPanel"]
 
@@ -67,6 +68,8 @@ class StatesPanel(Step):
     feature_names : tuple of str
     n_frames : list of int
         Frames per run.
+    compared : CrossValidation or None
+        The last :meth:`compare_states` of the current coordinates.
     """
 
     labels = traitlets.Any(None)
@@ -126,6 +129,23 @@ class StatesPanel(Step):
         self.variance_plot.add_class("msmkit-kinetic-variance-plot")
         self.variance_plot.add_class("msmkit-plot")
 
+        self.compare_counts = field(widgets.Text, "", "microstate counts",
+                                    "Numbers of microstates to compare, e.g. 20, 50, 100, 200", width="420px")
+        self.compare_counts.add_class("msmkit-compare-counts")
+        self.compare_lag = field(widgets.IntText, int(tica_lag), "score lag (frames)",
+                                 "Lag of the models whose held-out score is compared (the same for every count)")
+        self.compare_folds = field(widgets.IntText, min(5, max(len(self._runs), 2)), "folds of whole runs",
+                                   "The runs are split into this many groups; each is held out once")
+        self.compare_button = button("Cross-validate", "msmkit-compare-button",
+                                     "Score each number of microstates on held-out runs (VAMP-2)", icon="balance-scale")
+        self._on_click(self.compare_button, self.compare_states)
+        self.compare_note = widgets.HTML()
+        self.compare_note.add_class("msmkit-compare-note")
+        self.compare_plot = widgets.Output(layout=widgets.Layout(width="100%", max_width="640px", overflow="auto"))
+        self.compare_plot.add_class("msmkit-compare-plot")
+        self.compare_plot.add_class("msmkit-plot")
+        self.compared = None
+
         intro = widgets.HTML(_render.message_html(
             f"{len(self._runs)} runs, {sum(self.n_frames)} frames, {len(self.feature_names)} features. Choose "
             f"the features, reduce them to slow coordinates (optional), and cluster the frames into "
@@ -135,9 +155,19 @@ class StatesPanel(Step):
             widgets.VBox([self.n_states, self.method, self.stride, self.seed,
                           widgets.HBox([self.cluster_button, self.cancel_button, self.progress_bar])]),
         ])
-        self._plots = [self.map, self.variance_plot]
-        self.children = [intro, settings, self.status, self.map, self.variance_note, self.variance_plot,
-                         self._figure_row(["microstate map", "kinetic variance"])]
+        compare = widgets.VBox([
+            widgets.HTML("<b>How many microstates?</b>"),
+            widgets.HTML(_render.message_html(
+                "Cross-validation: for each count, microstates and a model are fitted on some runs and the "
+                "model's slow processes are scored (VAMP-2) on the runs held out. Too few states miss slow "
+                "processes, too many fit noise: the held-out score peaks in between. Uses the coordinates "
+                "of the last Cluster.")),
+            row([widgets.VBox([self.compare_counts, self.compare_lag]),
+                 widgets.VBox([self.compare_folds, self.compare_button])]),
+            self.compare_note, self.compare_plot])
+        self._plots = [self.map, self.variance_plot, self.compare_plot]
+        self.children = [intro, settings, self.status, self.map, self.variance_note, self.variance_plot, compare,
+                         self._figure_row(["microstate map", "kinetic variance", "cross-validation"])]
 
     def _known_features(self, features) -> tuple:
         features = [features] if isinstance(features, str) else list(features)
@@ -211,6 +241,56 @@ class StatesPanel(Step):
         self._finish(micro, tica, coords, scaling, settings, caught + extra,
                      f"{micro.centers_.shape[0]} microstates from {how}. Next: scan lag times (step 2).")
         return micro
+
+    def compare_states(self, n_states=None, lag=None, n_folds=None):
+        """Cross-validated VAMP-2 scores of several numbers of microstates
+        (:func:`msmkit.cross_validate`) in the coordinates of the last :meth:`make_states`, clustered
+        with the panel's method, stride and seed; given arguments replace the fields first.
+
+        Returns
+        -------
+        CrossValidation
+            Also in :attr:`compared`.
+        """
+        with self._action("Cross-validating numbers of microstates", total=3) as caught:
+            if n_states is not None:
+                self.compare_counts.value = ", ".join(str(x) for x in parse_int_list(n_states, "n_states"))
+            for name, value in (("compare_lag", lag), ("compare_folds", n_folds)):
+                if value is not None:
+                    set_value(getattr(self, name), check_int(value, name), name)
+            if self.coordinates is None:
+                raise InputError("there are no coordinates yet: Cluster first (the comparison uses the same "
+                                 "features, scaling and TICA)")
+            if not self.compare_counts.value.strip():
+                made = int(self.microstates.centers_.shape[0])
+                self.compare_counts.value = ", ".join(str(x) for x in sorted({max(2, made // 4), max(2, made // 2),
+                                                                                made, 2 * made}))
+            counts = parse_int_list(self.compare_counts.value, "microstate counts")
+            folds = check_int(self.compare_folds.value, "folds of whole runs", minimum=2)
+            method, stride, seed = self.method.value, int(self.stride.value), int(self.seed.value)
+            units = folds * len(counts)
+            self._stage(0, 1, f"{len(counts)} counts x {folds} folds")
+            result = cross_validate(self.coordinates, counts, check_int(self.compare_lag.value, "score lag", minimum=1),
+                                    n_folds=folds, seed=seed,
+                                    cluster=lambda n: Microstates(n, method=method, stride=stride, seed=seed,
+                                                                  progress=False),
+                                    cancel=self._cancel_point(units + 1, what="cross-validation"))
+            self._stage(units, units + 1, "drawing")
+            self._show_figure(self.compare_plot, plot_cross_validation(result), "cross-validation")
+        self.compared = result
+        best = result.best[int(result.lags[0])]
+        spread = result.spread[:, 0]
+        top = int(np.nanargmax(result.mean[:, 0]))
+        close = [int(n) for n, m in zip(result.n_states, result.mean[:, 0])
+                 if m >= result.mean[top, 0] - spread[top]]
+        self.compare_note.value = _render.message_html(
+            [f"Highest mean held-out score: {best} microstates (lag {int(result.lags[0])} frames, {result.n_folds} "
+             f"folds). Counts within one standard deviation of it: {', '.join(map(str, close))}; the smallest of "
+             f"those is the economical choice."] + list(result.notes)
+            + ["TICA was fitted on all runs, so the held-out runs are not wholly unseen; the comparison between "
+               "counts is still fair."] * (self.tica is not None))
+        self._report(f"Cross-validated {len(counts)} numbers of microstates over {folds} folds of whole runs.", caught)
+        return result
 
     def restore(self, microstates, tica=None, feature_scaling=None, settings=None):
         """Show microstates made before (e.g. read from a session file) of these trajectories,
@@ -290,6 +370,8 @@ class StatesPanel(Step):
         self.variance_note.value = "" if tica is None else _render.message_html(kinetic_variance_text(tica))
         self.tica, self.microstates, self.coordinates = tica, micro, coords
         self.feature_scaling = scaling
+        self.compared, self.compare_note.value = None, ""  # scores of other coordinates no longer apply
+        _render.clear(self.compare_plot)
         self.settings = settings
         low = int((micro.counts_ < 10).sum())
         extra = [f"{low} states hold fewer than 10 frames: their transitions are poorly sampled."] if low else []

@@ -359,7 +359,8 @@ class Workbench(widgets.VBox):
     #: the fields of each step kept in a session, by step
     SESSION_FIELDS = {
         "microstates": ("states_panel", ("features", "use_tica", "tica_lag", "tica_dim", "n_states", "method",
-                                         "stride", "seed", "scale")),
+                                         "stride", "seed", "scale", "compare_counts", "compare_lag",
+                                         "compare_folds")),
         "lags": ("lag_panel", ("lags", "n_processes", "n_samples", "seed", "reversible", "uncertainty")),
         "populations": ("populations_panel", ("temperature", "sort_by", "ascending", "max_rows")),
         "validation": ("validation_panel", ("n_sets", "multiples", "n_samples", "seed")),
