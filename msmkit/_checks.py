@@ -402,7 +402,7 @@ def as_float_trajectories(trajs, name: str = "trajs", *, feature_names=None) -> 
 
 def zip_member_problem(info) -> str | None:
     """Why numpy cannot read the zip member ``info`` (a ``zipfile.ZipInfo``) as it stands, in
-    words that follow its name, or None: encrypted members and compression methods other than
+    words that follow the member's name, or None: encrypted members and compression methods other than
     none (0) and deflate (8), the two that numpy.savez / savez_compressed write."""
     import zipfile
 

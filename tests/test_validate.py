@@ -245,7 +245,7 @@ def test_ck_verdict_holds_the_family_wise_error_with_holm():
 
 
 def four_set_chain(n=20):
-    """A chain of n states in 4 metastable sets of n/4, detailed balance by construction
+    """A chain of n states in 4 long-lived blocks of n/4 states, detailed balance by construction
     (symmetric flows)."""
     rng = np.random.default_rng(0)
     same = np.arange(n)[:, None] // (n // 4) == np.arange(n)[None, :] // (n // 4)
