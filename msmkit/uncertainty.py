@@ -398,8 +398,8 @@ def sample_models(model, labels=None, *, uncertainty: str = "bootstrap", n_sampl
         (:func:`msmkit.posterior.sample_reversible_posterior`). It acts on every counted pair,
         so with many states and few transitions per pair a prior of -0.5 pulls the slow
         processes far off: on a 49-state lattice walk (lag 2, 10 runs) 95 % intervals of the
-        slowest timescale covered 0.45 of 200 replicates with -0.5 and 0.965 with -0.99, passage
-        times and rates 0.77-0.83 against 0.915-0.955; on a 4-state chain both gave 0.90-0.97
+        slowest timescale covered 0.45 of 200 replicates with -0.5 and 0.955 with -1, passage
+        times and rates 0.77-0.83 against 0.935-0.965; on a 4-state chain -1 gave 0.905-0.956
         (``bench/bench_coverage.py --study kinetics``).
     progress : bool
         Show a progress bar.
