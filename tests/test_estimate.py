@@ -60,9 +60,26 @@ def likelihood_gradient(C, T, pi):
 
 
 def ref_stationary(T):
-    w, vl = la.eig(T, left=True, right=False)
-    p = np.real(vl[:, np.argmin(np.abs(w - 1))])
-    return p / p.sum()
+    """The stationary vector of the floating-point matrix T in exact rational arithmetic: the
+    Grassmann-Taksar-Heyman state reduction (Grassmann, Taksar & Heyman, Oper. Res. 33, 1107
+    (1985)) on fractions.Fraction, rounded once at the end. scipy.linalg.eig's left vector was the
+    reference before; on metastable counts its small entries are off by up to ~1e-7 relative."""
+    from fractions import Fraction
+
+    n = T.shape[0]
+    A = [[Fraction(float(v)) for v in row] for row in T]
+    for k in range(n - 1, 0, -1):
+        out = sum(A[k][:k])
+        for i in range(k):
+            A[i][k] /= out
+        for i in range(k):
+            for j in range(k):
+                A[i][j] += A[i][k] * A[k][j]
+    x = [Fraction(1)]
+    for k in range(1, n):
+        x.append(sum(x[i] * A[i][k] for i in range(k)))
+    total = sum(x)
+    return np.array([float(v / total) for v in x])
 
 
 # --------------------------------------------------------------------------- strategies
@@ -99,8 +116,8 @@ def test_reversible_mle_properties(C):
     # detailed balance pi_i T_ij = pi_j T_ji, ~1e-12 relative to the largest flow
     X = pi[:, None] * T
     assert np.max(np.abs(X - X.T)) <= 1e-12 * X.max()
-    # the reported pi is the stationary vector of T (scipy.linalg.eig)
-    np.testing.assert_allclose(pi, ref_stationary(T), rtol=1e-7, atol=1e-14)
+    # the reported pi is the stationary vector of T (exact rational arithmetic)
+    np.testing.assert_allclose(pi, ref_stationary(T), rtol=1e-9, atol=1e-15)
     # eigenvalue 1 present (stochastic matrix, Perron-Frobenius)
     assert np.min(np.abs(la.eigvals(T) - 1)) < 1e-10
     # no probability where neither c_ij nor c_ji was observed

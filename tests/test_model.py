@@ -393,7 +393,7 @@ def test_populations_table_and_free_energies(sample_chain, reversible_chain):
     df300 = model.populations(temperature=300)
     assert list(df300.columns) == ["state", "population", "free_energy_kT", "free_energy_kJ_per_mol",
                                    "transitions_out"]
-    kT = R_J_PER_MOL_K * 300 / 1000  # kJ/mol; 2.494 kJ/mol at 300 K (REFERENCES.md)
+    kT = R_J_PER_MOL_K * 300 / 1000  # kJ/mol; 2.494 kJ/mol at 300 K (CODATA gas constant 8.314462618 J/(mol K))
     assert kT == pytest.approx(2.494, abs=5e-4)
     np.testing.assert_allclose(df300["free_energy_kJ_per_mol"], df300["free_energy_kT"] * kT, rtol=1e-12)
     # a model without counts has no transitions_out column

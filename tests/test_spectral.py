@@ -49,7 +49,7 @@ def ref_stationary(T):
 @pytest.mark.parametrize("a, b", [(0.1, 0.3), (0.01, 0.002), (0.6, 0.7), (0.5, 0.5)])
 def test_two_state_closed_form(a, b):
     # T = [[1-a, a], [b, 1-b]]: eigenvalues 1 and 1-a-b, stationary (b, a)/(a+b),
-    # implied timescale -tau/ln|1-a-b| (linear algebra, common practice; see REFERENCES.md)
+    # implied timescale -tau/ln|1-a-b| (linear algebra, common practice)
     T = np.array([[1 - a, a], [b, 1 - b]])
     np.testing.assert_allclose(equilibrium_distribution(T), [b / (a + b), a / (a + b)], rtol=1e-12)
     w = eigen_decomposition(T)
