@@ -14,7 +14,6 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.linalg as la
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from scipy.linalg import lapack
@@ -517,11 +516,10 @@ class CountPattern:
             sym = -pi[self._jac_i] * data / ratio[self._jac_j]
             ab = np.zeros((b + 1, m))
             ab.flat[self._upper_pos] = sym[self._upper]
-            try:
-                factor = la.cholesky_banded(ab, lower=False, check_finite=False)
+            # LAPACK directly: scipy.linalg's checking wrapper costs as much as the factorization here
+            factor, info = lapack.dpbtrf(ab, lower=0, overwrite_ab=1)
+            if info == 0:
                 return factor, pi[self._free], ratio[self._free]
-            except la.LinAlgError:
-                pass
             ab = np.zeros((3 * b + 1, m))
             ab.flat[self._band_pos] = data
             lu, piv, info = lapack.dgbtrf(ab, b, b)
@@ -542,8 +540,7 @@ class CountPattern:
         dy = np.empty(m)
         if isinstance(lu, tuple) and len(lu) == 3:  # -M z = pi F with z = r dy
             factor, pi_free, ratio_free = lu
-            dy[self._perm] = la.cho_solve_banded((factor, False), (pi_free * F[self._free])[self._perm],
-                                                 check_finite=False)
+            dy[self._perm] = lapack.dpbtrs(factor, (pi_free * F[self._free])[self._perm], lower=0, overwrite_b=1)[0]
             return dy / ratio_free
         rhs = -F[self._free][self._perm]
         if isinstance(lu, tuple):
