@@ -183,14 +183,17 @@ class _SymmetricCounts:
         keys_c = Cc.row.astype(np.int64) * self.n + Cc.col
         self.c_pos = order[np.searchsorted(keys_s, keys_c, sorter=order)]
         self.c_row, self.c_data = Cc.row, Cc.data
+        self._upper = _upper_half(self.i, self.j)
 
     @classmethod
-    def of_arrays(cls, i, j, s, c, c_pos, c_row, c_data):
+    def of_arrays(cls, i, j, s, c, c_pos, c_row, c_data, upper):
         """The same from arrays already on a symmetric pattern (no sorting): entries (i, j) with
-        values s of C + C^T, row sums c, and each count c_data at position c_pos of that pattern."""
+        values s of C + C^T, row sums c, each count c_data at position c_pos of that pattern, and
+        ``upper`` = ``_upper_half(i, j)``."""
         self = cls.__new__(cls)
         self.i, self.j, self.s, self.c, self.n = i, j, s, c, c.size
         self.c_pos, self.c_row, self.c_data = c_pos, c_row, c_data
+        self._upper = upper
         return self
 
     def flows(self, pi: np.ndarray) -> np.ndarray:
@@ -212,6 +215,14 @@ class _SymmetricCounts:
         """F (see :meth:`residual`) and the off-diagonal Jacobian entries g_ij on the pattern
         (meaningless where i == j; the diagonal of the Jacobian is -sum_j g_ij over j != i)."""
         ratio = self.c / pi
+        if not jacobian:
+            # x_ij is symmetric: evaluated on the upper half of the pattern (half the work) and
+            # summed into both rows
+            up, iu, ju, strict = self._upper
+            x = self.s[up] / (ratio[iu] + ratio[ju])
+            x_i = np.bincount(iu, weights=x, minlength=self.n) + np.bincount(ju[strict], weights=x[strict],
+                                                                           minlength=self.n)
+            return x_i / pi - 1.0, None
         den = ratio[self.i] + ratio[self.j]
         w = self.s / den / pi[self.i]  # x_ij / pi_i
         F = np.bincount(self.i, weights=w, minlength=self.n) - 1.0
@@ -221,6 +232,14 @@ class _SymmetricCounts:
     def step(self, pi: np.ndarray) -> np.ndarray:
         new = np.bincount(self.i, weights=self.flows(pi), minlength=self.n)
         return new / new.sum()
+
+
+def _upper_half(i, j):
+    """(positions of the entries with i <= j, their i, their j, which of them have i < j) of a
+    symmetric pattern."""
+    up = np.flatnonzero(i <= j)
+    iu, ju = i[up], j[up]
+    return up, iu, ju, np.flatnonzero(iu < ju)
 
 
 def _reversible_mle(C, row, *, tol, max_iter, accelerate, initial):
@@ -369,6 +388,7 @@ class CountPattern:
         self._fwd, self._bwd = where[:p], where[p:]
         self.sym_indptr = np.searchsorted(self.sym_i, np.arange(n + 1)).astype(np.int32)
         self.sym_indices = self.sym_j.astype(np.int32)
+        self._sym_upper = _upper_half(self.sym_i, self.sym_j)
         # Jacobian without the anchor's row and column: off-diagonal entries g_e, then the diagonal;
         # states renumbered by reverse Cuthill-McKee, so that the LU without column reordering
         # (the cheapest choice measured: the fill stays inside the narrowed band)
@@ -431,7 +451,7 @@ class CountPattern:
         s = np.bincount(self._fwd, weights=values, minlength=m) + np.bincount(self._bwd, weights=values, minlength=m)
         nz = np.flatnonzero(values)
         return _SymmetricCounts.of_arrays(self.sym_i, self.sym_j, s, self.row_sums(values), self._fwd[nz],
-                                          self.rows[nz], values[nz])
+                                          self.rows[nz], values[nz], self._sym_upper)
 
     def reversible_fit(self, values, initial, *, tol: float = 1e-12, max_steps: int = 100) -> PatternFit:
         """Reversible maximum-likelihood estimate of one matrix on the pattern.
