@@ -153,7 +153,8 @@ class SampleTimescales:
     maximum-likelihood estimate, warm-started from the model's stationary vector, with sparse
     Newton steps -- and the eigenvalues come from :class:`msmkit.spectral.FlowSpectrum`,
     shift-inverted about a point just above 1 chosen from the model's spectrum and started from
-    the model's slow modes. A non-reversible estimate, or a fit that did not converge in
+    the model's slow modes, to the relative accuracy :data:`EIGEN_TOL` (timescales to about
+    1e-10 relative). A non-reversible estimate, or a fit that did not converge in
     ``max_steps``, takes the general route: :func:`fit_sample`
     (:func:`~msmkit.estimate.estimate_transition_matrix`) and a dense eigen-solve. Both give the
     same maximum-likelihood estimate to the tolerance of the fit
