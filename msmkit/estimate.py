@@ -21,7 +21,7 @@ from scipy.sparse import csgraph
 
 from ._checks import check_bool, check_int, check_tolerance
 from .errors import DiagnosticWarning, InputError
-from .spectral import BAND_SHARE
+from .spectral import BAND_SHARE, banded_cholesky, banded_cholesky_solve
 
 #: a factorization of the Jacobian is reused while each step shrinks the residual at least this much
 REUSE = 0.05
@@ -536,9 +536,9 @@ class CountPattern:
             sym = -pi[self._jac_i] * data / ratio[self._jac_j]
             ab = np.zeros((b + 1, m))
             ab.flat[self._upper_pos] = sym[self._upper]
-            # LAPACK directly: scipy.linalg's checking wrapper costs as much as the factorization here
-            factor, info = lapack.dpbtrf(ab, lower=0, overwrite_ab=1)
-            if info == 0:
+            # LAPACK directly, without the interpreter lock (msmkit.spectral.banded_cholesky)
+            factor = banded_cholesky(ab)
+            if factor is not None:
                 return factor, pi[self._free], ratio[self._free]
             ab = np.zeros((3 * b + 1, m))
             ab.flat[self._band_pos] = data
@@ -560,7 +560,7 @@ class CountPattern:
         dy = np.empty(m)
         if isinstance(lu, tuple) and len(lu) == 3:  # -M z = pi F with z = r dy
             factor, pi_free, ratio_free = lu
-            dy[self._perm] = lapack.dpbtrs(factor, (pi_free * F[self._free])[self._perm], lower=0, overwrite_b=1)[0]
+            dy[self._perm] = banded_cholesky_solve(factor, (pi_free * F[self._free])[self._perm])
             return dy / ratio_free
         rhs = -F[self._free][self._perm]
         if isinstance(lu, tuple):

@@ -263,6 +263,56 @@ def flow_eigenvalues(flows, k: int, *, shift: float | None = None, start=None) -
     return FlowSpectrum(C.row, C.col, X.shape[0]).eigenvalues(C.data, k, shift=shift, start=start)
 
 
+def _lapack_routine(name: str, n_args: int):
+    """A LAPACK routine of scipy (``scipy.linalg.cython_lapack``, the public C interface) as a
+    ctypes function, which releases the interpreter lock during the call: the f2py wrappers of
+    ``scipy.linalg.lapack`` keep it, so threads running banded factorizations did not overlap
+    (measured: two threads 1.15x faster than one at 3000 states, band 200; 1.46x by this route)."""
+    import ctypes
+    import scipy.linalg.cython_lapack as cython_lapack
+    api = ctypes.pythonapi
+    api.PyCapsule_GetName.restype = ctypes.c_char_p
+    api.PyCapsule_GetName.argtypes = [ctypes.py_object]
+    api.PyCapsule_GetPointer.restype = ctypes.c_void_p
+    api.PyCapsule_GetPointer.argtypes = [ctypes.py_object, ctypes.c_char_p]
+    capsule = cython_lapack.__pyx_capi__[name]
+    pointer = api.PyCapsule_GetPointer(capsule, api.PyCapsule_GetName(capsule))
+    return ctypes.CFUNCTYPE(None, *([ctypes.c_void_p] * n_args))(pointer)
+
+
+_BANDED = {}
+
+
+def _banded_routines():
+    if not _BANDED:
+        _BANDED.update(dpbtrf=_lapack_routine("dpbtrf", 6), dpbtrs=_lapack_routine("dpbtrs", 9))
+    return _BANDED
+
+
+def banded_cholesky(ab: np.ndarray):
+    """Cholesky factor of a symmetric positive definite band matrix in LAPACK's upper band
+    storage (``ab[band + i - j, j] = M[i, j]`` for i <= j), by dpbtrf without the interpreter
+    lock; None when the matrix is not positive definite."""
+    import ctypes
+    factor = np.array(ab, dtype=np.float64, order="F")
+    rows, n = factor.shape
+    ints = [ctypes.c_int(v) for v in (n, rows - 1, rows, 0)]
+    N, KD, LD, INFO = (ctypes.byref(v) for v in ints)
+    _banded_routines()["dpbtrf"](ctypes.c_char_p(b"U"), N, KD, factor.ctypes.data, LD, INFO)
+    return factor if ints[3].value == 0 else None
+
+
+def banded_cholesky_solve(factor: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """x with M x = b from :func:`banded_cholesky` (dpbtrs without the interpreter lock)."""
+    import ctypes
+    x = np.array(b, dtype=np.float64)
+    rows, n = factor.shape
+    ints = [ctypes.c_int(v) for v in (n, rows - 1, 1, rows, n, 0)]
+    N, KD, NRHS, LD, LDB, INFO = (ctypes.byref(v) for v in ints)
+    _banded_routines()["dpbtrs"](ctypes.c_char_p(b"U"), N, KD, NRHS, factor.ctypes.data, LD, x.ctypes.data, LDB, INFO)
+    return x
+
+
 class FlowSpectrum:
     """Leading eigenvalues of many reversible matrices given by symmetric flows on one pattern.
 
@@ -320,21 +370,16 @@ class FlowSpectrum:
         """x = (alpha I + beta A)^-1 b from a Cholesky factorization, None when that matrix is
         not positive definite."""
         if self.banded:
-            from scipy.linalg import lapack
             ab = np.zeros((self.band + 1, self.n))
             ab.flat[self.upper_pos] = beta * a[self.upper]
             ab[self.band] = alpha + beta * diag[self.order]
-            # LAPACK directly (dpbtrf / dpbtrs): the checking wrappers of scipy.linalg cost more
-            # than the banded solve itself at a few hundred states, and it is called per iteration
-            factor, info = lapack.dpbtrf(ab, lower=0, overwrite_ab=1)
-            if info != 0:
+            # LAPACK directly: the checking wrappers of scipy.linalg cost more than the banded
+            # solve itself at a few hundred states, and they keep the interpreter lock
+            factor = banded_cholesky(ab)
+            if factor is None:
                 return None
             order, rank = self.order, self.rank
-
-            def solve(b):
-                x, info = lapack.dpbtrs(factor, b[order], lower=0, overwrite_b=1)
-                return x[rank]
-            return solve
+            return lambda b: banded_cholesky_solve(factor, b[order])[rank]
         import scipy.sparse as sp
         import scipy.sparse.linalg as sla
         B = sp.csr_matrix((beta * a, self.indices, self.indptr), shape=(self.n, self.n)) \
