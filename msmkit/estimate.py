@@ -14,7 +14,6 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.linalg as la
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from scipy.linalg import lapack
@@ -22,7 +21,7 @@ from scipy.sparse import csgraph
 
 from ._checks import check_bool, check_int, check_tolerance
 from .errors import DiagnosticWarning, InputError
-from .spectral import BAND_SHARE
+from .spectral import BAND_SHARE, banded_cholesky, banded_cholesky_solve
 
 #: a factorization of the Jacobian is reused while each step shrinks the residual at least this much
 REUSE = 0.05
@@ -184,14 +183,17 @@ class _SymmetricCounts:
         keys_c = Cc.row.astype(np.int64) * self.n + Cc.col
         self.c_pos = order[np.searchsorted(keys_s, keys_c, sorter=order)]
         self.c_row, self.c_data = Cc.row, Cc.data
+        self._upper = _upper_half(self.i, self.j)
 
     @classmethod
-    def of_arrays(cls, i, j, s, c, c_pos, c_row, c_data):
+    def of_arrays(cls, i, j, s, c, c_pos, c_row, c_data, upper):
         """The same from arrays already on a symmetric pattern (no sorting): entries (i, j) with
-        values s of C + C^T, row sums c, and each count c_data at position c_pos of that pattern."""
+        values s of C + C^T, row sums c, each count c_data at position c_pos of that pattern, and
+        ``upper`` = ``_upper_half(i, j)``."""
         self = cls.__new__(cls)
         self.i, self.j, self.s, self.c, self.n = i, j, s, c, c.size
         self.c_pos, self.c_row, self.c_data = c_pos, c_row, c_data
+        self._upper = upper
         return self
 
     def flows(self, pi: np.ndarray) -> np.ndarray:
@@ -213,6 +215,14 @@ class _SymmetricCounts:
         """F (see :meth:`residual`) and the off-diagonal Jacobian entries g_ij on the pattern
         (meaningless where i == j; the diagonal of the Jacobian is -sum_j g_ij over j != i)."""
         ratio = self.c / pi
+        if not jacobian:
+            # x_ij is symmetric: evaluated on the upper half of the pattern (half the work) and
+            # summed into both rows
+            up, iu, ju, strict = self._upper
+            x = self.s[up] / (ratio[iu] + ratio[ju])
+            x_i = np.bincount(iu, weights=x, minlength=self.n) + np.bincount(ju[strict], weights=x[strict],
+                                                                           minlength=self.n)
+            return x_i / pi - 1.0, None
         den = ratio[self.i] + ratio[self.j]
         w = self.s / den / pi[self.i]  # x_ij / pi_i
         F = np.bincount(self.i, weights=w, minlength=self.n) - 1.0
@@ -222,6 +232,14 @@ class _SymmetricCounts:
     def step(self, pi: np.ndarray) -> np.ndarray:
         new = np.bincount(self.i, weights=self.flows(pi), minlength=self.n)
         return new / new.sum()
+
+
+def _upper_half(i, j):
+    """(positions of the entries with i <= j, their i, their j, which of them have i < j) of a
+    symmetric pattern."""
+    up = np.flatnonzero(i <= j)
+    iu, ju = i[up], j[up]
+    return up, iu, ju, np.flatnonzero(iu < ju)
 
 
 def _reversible_mle(C, row, *, tol, max_iter, accelerate, initial):
@@ -370,6 +388,7 @@ class CountPattern:
         self._fwd, self._bwd = where[:p], where[p:]
         self.sym_indptr = np.searchsorted(self.sym_i, np.arange(n + 1)).astype(np.int32)
         self.sym_indices = self.sym_j.astype(np.int32)
+        self._sym_upper = _upper_half(self.sym_i, self.sym_j)
         # Jacobian without the anchor's row and column: off-diagonal entries g_e, then the diagonal;
         # states renumbered by reverse Cuthill-McKee, so that the LU without column reordering
         # (the cheapest choice measured: the fill stays inside the narrowed band)
@@ -432,7 +451,7 @@ class CountPattern:
         s = np.bincount(self._fwd, weights=values, minlength=m) + np.bincount(self._bwd, weights=values, minlength=m)
         nz = np.flatnonzero(values)
         return _SymmetricCounts.of_arrays(self.sym_i, self.sym_j, s, self.row_sums(values), self._fwd[nz],
-                                          self.rows[nz], values[nz])
+                                          self.rows[nz], values[nz], self._sym_upper)
 
     def reversible_fit(self, values, initial, *, tol: float = 1e-12, max_steps: int = 100) -> PatternFit:
         """Reversible maximum-likelihood estimate of one matrix on the pattern.
@@ -517,11 +536,10 @@ class CountPattern:
             sym = -pi[self._jac_i] * data / ratio[self._jac_j]
             ab = np.zeros((b + 1, m))
             ab.flat[self._upper_pos] = sym[self._upper]
-            try:
-                factor = la.cholesky_banded(ab, lower=False, check_finite=False)
+            # LAPACK directly, without the interpreter lock (msmkit.spectral.banded_cholesky)
+            factor = banded_cholesky(ab)
+            if factor is not None:
                 return factor, pi[self._free], ratio[self._free]
-            except la.LinAlgError:
-                pass
             ab = np.zeros((3 * b + 1, m))
             ab.flat[self._band_pos] = data
             lu, piv, info = lapack.dgbtrf(ab, b, b)
@@ -542,8 +560,7 @@ class CountPattern:
         dy = np.empty(m)
         if isinstance(lu, tuple) and len(lu) == 3:  # -M z = pi F with z = r dy
             factor, pi_free, ratio_free = lu
-            dy[self._perm] = la.cho_solve_banded((factor, False), (pi_free * F[self._free])[self._perm],
-                                                 check_finite=False)
+            dy[self._perm] = banded_cholesky_solve(factor, (pi_free * F[self._free])[self._perm])
             return dy / ratio_free
         rhs = -F[self._free][self._perm]
         if isinstance(lu, tuple):
