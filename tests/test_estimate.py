@@ -63,7 +63,8 @@ def ref_stationary(T):
     """The stationary vector of the floating-point matrix T in exact rational arithmetic: the
     Grassmann-Taksar-Heyman state reduction (Grassmann, Taksar & Heyman, Oper. Res. 33, 1107
     (1985)) on fractions.Fraction, rounded once at the end. scipy.linalg.eig's left vector was the
-    reference before; on metastable counts its small entries are off by up to ~1e-7 relative."""
+    reference before; on metastable counts the small entries of that vector are off by up to ~1e-7
+    relative."""
     from fractions import Fraction
 
     n = T.shape[0]
