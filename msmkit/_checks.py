@@ -412,3 +412,16 @@ def zip_member_problem(info) -> str | None:
         return (f"uses zip compression method {info.compress_type}; numpy writes deflate (8) "
                 f"or none (0)")
     return None
+
+
+def read_npy_header(fh, max_header_size: int):
+    """``(shape, fortran_order, dtype)`` from the .npy header at the position of ``fh`` (format
+    1.0 or 2.0), parsed by numpy's header reader, never run or unpickled. Raises what numpy's
+    parser raises (ValueError, SyntaxError, ...) or ValueError for another format version; the
+    caller words the error for the kind of file it reads."""
+    fmt = np.lib.format
+    version = fmt.read_magic(fh)
+    read = {(1, 0): fmt.read_array_header_1_0, (2, 0): fmt.read_array_header_2_0}.get(version)
+    if read is None:
+        raise ValueError(f"unsupported .npy format version {version[0]}.{version[1]}")
+    return read(fh, max_header_size=max_header_size)

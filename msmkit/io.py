@@ -56,6 +56,7 @@ from pathlib import Path
 import numpy as np
 
 from ._checks import (
+    read_npy_header,
     zip_member_problem,
     as_float_run,
     brief,
@@ -562,15 +563,8 @@ MAX_NPY_HEADER = 10_000
 def _npy_header(fh, where: str):
     """``(shape, fortran_order, dtype)`` from the header at the position of ``fh``, checked to
     describe a plain numeric 2-D array; the header text is parsed, never run or unpickled."""
-    fmt = np.lib.format
     try:
-        version = fmt.read_magic(fh)
-        if version == (1, 0):
-            shape, fortran, dtype = fmt.read_array_header_1_0(fh, max_header_size=MAX_NPY_HEADER)
-        elif version == (2, 0):
-            shape, fortran, dtype = fmt.read_array_header_2_0(fh, max_header_size=MAX_NPY_HEADER)
-        else:
-            raise ValueError(f"unsupported .npy format version {version[0]}.{version[1]}")
+        shape, fortran, dtype = read_npy_header(fh, MAX_NPY_HEADER)
     except (OSError, zipfile.BadZipFile, zlib.error):
         raise  # reading failed (an .npz member): reported by the caller
     except Exception as err:  # numpy's header parser raises ValueError, SyntaxError, TokenError, ...

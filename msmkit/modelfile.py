@@ -44,7 +44,7 @@ from pathlib import Path
 import numpy as np
 import scipy.sparse as sp
 
-from ._checks import zip_member_problem
+from ._checks import read_npy_header, zip_member_problem
 from .errors import InputError, ModelFileError
 
 __all__ = ["FORMAT", "FORMAT_VERSION", "model_fields", "read_model_file", "save_model"]
@@ -423,13 +423,7 @@ def _member_header(zf, info, key, path):
     """(shape, fortran_order, dtype, header_bytes) of one member, read from the first bytes."""
     with zf.open(info) as fh:
         try:
-            version = np.lib.format.read_magic(fh)
-            if version == (1, 0):
-                shape, fortran, dtype = np.lib.format.read_array_header_1_0(fh, max_header_size=MAX_HEADER_BYTES)
-            elif version == (2, 0):
-                shape, fortran, dtype = np.lib.format.read_array_header_2_0(fh, max_header_size=MAX_HEADER_BYTES)
-            else:
-                raise ValueError(f"npy format version {version} is not supported")
+            shape, fortran, dtype = read_npy_header(fh, MAX_HEADER_BYTES)
         except (ValueError, SyntaxError, TypeError) as exc:
             raise ModelFileError(f"{path}: key '{key}' is not a valid .npy array ({exc})") from None
         offset = fh.tell()

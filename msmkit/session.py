@@ -39,7 +39,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ._checks import check_bool, zip_member_problem
+from ._checks import check_bool, read_npy_header, zip_member_problem
 from .errors import InputError, ModelFileError
 from .lagscan import LagScan
 from .macro import Macrostates
@@ -336,11 +336,7 @@ def _header(zf, info, key, where):
     disagree with the archive."""
     with zf.open(info) as fh:
         try:
-            version = np.lib.format.read_magic(fh)
-            read = {(1, 0): np.lib.format.read_array_header_1_0, (2, 0): np.lib.format.read_array_header_2_0}
-            if version not in read:
-                raise ValueError(f"npy format version {version} is not supported")
-            shape, _, dtype = read[version](fh, max_header_size=MAX_HEADER_BYTES)
+            shape, _, dtype = read_npy_header(fh, MAX_HEADER_BYTES)
         except (ValueError, SyntaxError, TypeError) as exc:
             raise InputError(f"{where}: member '{key}' is not a valid .npy array ({exc})") from None
         offset = fh.tell()

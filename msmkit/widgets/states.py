@@ -283,12 +283,13 @@ class StatesPanel(Step):
         top = int(np.nanargmax(result.mean[:, 0]))
         close = [int(n) for n, m in zip(result.n_states, result.mean[:, 0])
                  if m >= result.mean[top, 0] - spread[top]]
-        self.compare_note.value = _render.message_html(
-            [f"Highest mean held-out score: {best} microstates (lag {int(result.lags[0])} frames, {result.n_folds} "
-             f"folds). Counts within one standard deviation of it: {', '.join(map(str, close))}; the smallest of "
-             f"those is the economical choice."] + list(result.notes)
-            + ["TICA was fitted on all runs, so the held-out runs are not wholly unseen; the comparison between "
-               "counts is still fair."] * (self.tica is not None))
+        lines = [f"Highest mean held-out score: {best} microstates (lag {int(result.lags[0])} frames, "
+                 f"{result.n_folds} folds). Counts within one standard deviation of it: {', '.join(map(str, close))}; "
+                 f"the smallest of those is the economical choice.", *result.notes]
+        if self.tica is not None:
+            lines.append("TICA was fitted on all runs, so the held-out runs are not wholly unseen; the comparison "
+                         "between counts is still fair.")
+        self.compare_note.value = _render.message_html(lines)
         self._report(f"Cross-validated {len(counts)} numbers of microstates over {folds} folds of whole runs.", caught)
         return result
 
