@@ -237,3 +237,29 @@ def test_leading_eigenvalues_of_a_large_chain_match_the_dense_solver():
     ref = np.sort(la.eigvalsh(s[:, None] * T / s[None, :]))[::-1][:5]
     np.testing.assert_allclose(w, ref, rtol=0, atol=1e-10)
     np.testing.assert_allclose(T @ v, v * w, atol=1e-8)   # right eigenvectors
+
+
+def test_conjugate_gradients_solve_like_a_direct_sparse_solve():
+    # An SPD system shaped like a Newton system of the reversible estimate (a weighted graph
+    # Laplacian of random links plus a positive diagonal, badly scaled rows) against
+    # scipy.sparse.linalg.spsolve (a reference library); a failure is None, never a wrong x.
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as spla
+    from msmkit.spectral import conjugate_gradients
+    rng = np.random.default_rng(11)
+    n = 1500
+    i, j = rng.integers(0, n, 6 * n), rng.integers(0, n, 6 * n)
+    W = sp.coo_matrix((rng.uniform(0.1, 10, i.size), (i, j)), shape=(n, n)).tocsr()
+    W = W + W.T
+    W.setdiag(0)
+    W.eliminate_zeros()
+    L = sp.diags(np.asarray(W.sum(axis=1)).ravel()) - W + sp.diags(rng.uniform(1e-3, 1e-2, n))
+    scale = sp.diags(np.exp(rng.uniform(-5, 5, n)))
+    M = (scale @ L @ scale).tocsr()
+    b = rng.normal(size=n)
+    x = conjugate_gradients(M, b, rtol=1e-12)
+    ref = spla.spsolve(M.tocsc(), b)
+    np.testing.assert_allclose(x, ref, rtol=1e-8, atol=1e-12 * np.abs(ref).max())
+    assert conjugate_gradients(M, b, rtol=1e-12, max_iter=2) is None  # not reached: None
+    assert conjugate_gradients(-M, b) is None  # negative diagonal: not positive definite
+    np.testing.assert_array_equal(conjugate_gradients(M, np.zeros(n)), np.zeros(n))
