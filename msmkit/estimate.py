@@ -21,10 +21,25 @@ from scipy.sparse import csgraph
 
 from ._checks import check_bool, check_int, check_tolerance
 from .errors import DiagnosticWarning, InputError
-from .spectral import BAND_SHARE, banded_cholesky, banded_cholesky_solve
+from .spectral import BAND_SHARE, banded_cholesky, banded_cholesky_solve, conjugate_gradients, narrow_band
 
 #: a factorization of the Jacobian is reused while each step shrinks the residual at least this much
 REUSE = 0.05
+#: from this many free states on, Newton systems whose factorization would fill in (no narrow
+#: band) are solved by conjugate gradients first: at 3000 microstates of the demo the sparse LU
+#: took 0.3-2 s per step, 20-50 gradient iterations about 10 ms
+ITERATIVE_STATES = 1000
+
+
+@dataclass(frozen=True)
+class _IterativeSystem:
+    """A Newton system in symmetric form for conjugate gradients (see CountPattern._factorise):
+    M z = pi F on the free states, renumbered, with z = (c / pi) dy, and the Jacobian entries
+    for the direct fallback."""
+    matrix: sp.csr_matrix
+    pi_free: np.ndarray
+    ratio_free: np.ndarray
+    jacobian: np.ndarray
 
 __all__ = ["EstimationInfo", "estimate_transition_matrix", "log_likelihood"]
 
@@ -255,6 +270,7 @@ def _reversible_mle(C, row, *, tol, max_iter, accelerate, initial):
     evaluations = 0
     converged = False
     anchor = int(np.argmax(row))  # log pi of this state is held fixed in Newton steps
+    iterative = accelerate and n - 1 >= ITERATIVE_STATES and not narrow_band(S.i, S.j, n)
     ll = _loglik_from_pi(S, pi)
     while evaluations < max_iter:
         residual, jac = S.residual(pi, jacobian=accelerate)
@@ -263,7 +279,7 @@ def _reversible_mle(C, row, *, tol, max_iter, accelerate, initial):
             break
         evaluations += 1
         if accelerate:
-            new, ll_new = _newton_step(S, pi, ll, residual, jac, anchor)
+            new, ll_new = _newton_step(S, pi, ll, residual, jac, anchor, iterative)
             if new is not None:
                 pi, ll = new, ll_new
                 continue
@@ -274,8 +290,9 @@ def _reversible_mle(C, row, *, tol, max_iter, accelerate, initial):
     return T, info
 
 
-def _newton_step(S, pi, ll, residual, jac, anchor):
-    """One Newton step on the stationarity equations in log pi, with a likelihood line search.
+def _newton_step(S, pi, ll, residual, jac, anchor, iterative=False):
+    """One Newton step on the stationarity equations in log pi, with a likelihood line search;
+    ``iterative``: the direction by conjugate gradients first (thousands of states, wide band).
 
     Returns (new pi, the log-likelihood there), or (None, None) when no step length improves the
     likelihood (the caller then takes a plain fixed-point step).
@@ -283,6 +300,14 @@ def _newton_step(S, pi, ll, residual, jac, anchor):
     n = S.n
     free = np.arange(n) != anchor
     J = jac[free][:, free]
+    if iterative:
+        # conjugate gradients on the symmetric form -diag(pi) J diag(c / pi)^-1 z = pi F, z = (c / pi) dy
+        # (see CountPattern._factorise); the direct solve below if they fail
+        ratio = S.c[free] / pi[free]
+        M = (sp.diags(-pi[free]) @ J @ sp.diags(1.0 / ratio)).tocsr()
+        z = conjugate_gradients(M, pi[free] * residual[free])
+        if z is not None:
+            return _line_search(S, pi, ll, z / ratio, free)
     try:
         if J.nnz > 0.05 * n * n:
             dy = np.linalg.solve(J.toarray(), -residual[free])
@@ -409,6 +434,9 @@ class CountPattern:
         self._jac_indices = c[order].astype(np.int32)
         self._jac_indptr = np.searchsorted(r[order], np.arange(m + 1)).astype(np.int32)
         self._free = np.arange(n) != anchor
+        # the states of each entry, for the symmetric form (see _factorise)
+        self._jac_i = np.concatenate([self.sym_i[off], diag])[order]
+        self._jac_j = np.concatenate([self.sym_j[off], diag])[order]
         # LAPACK's banded LU when the band is narrow (3-6x faster than the sparse LU measured at
         # 500-3000 states): entry (r, c) sits at row 2 band + r - c of the band storage of dgbtrf
         self._band = int(np.max(np.abs(r - c))) if r.size else 0
@@ -417,9 +445,7 @@ class CountPattern:
         else:
             ro, co = r[order], c[order]
             self._band_pos = (2 * self._band + ro - co) * m + co
-            # the same entries for the symmetric form (see _factorise): upper band storage
-            self._jac_i = np.concatenate([self.sym_i[off], diag])[order]
-            self._jac_j = np.concatenate([self.sym_j[off], diag])[order]
+            # upper band storage of the symmetric form
             self._upper = np.flatnonzero(ro <= co)
             self._upper_pos = (self._band + ro[self._upper] - co[self._upper]) * m + co[self._upper]
 
@@ -530,9 +556,15 @@ class CountPattern:
         diag = -np.bincount(self.sym_i, weights=g, minlength=self.n)
         data = np.concatenate([g, diag])[self._jac_src]
         m = self.n - 1
+        ratio = c / pi
+        if self._band is None and m >= ITERATIVE_STATES:
+            # thousands of states in a wide band: conjugate gradients on the symmetric form,
+            # the sparse LU only if they fail (see _solve)
+            sym = -pi[self._jac_i] * data / ratio[self._jac_j]
+            return _IterativeSystem(sp.csr_matrix((sym, self._jac_indices, self._jac_indptr), shape=(m, m)),
+                                    pi[self._free], ratio[self._free], data)
         if self._band is not None:
             b = self._band
-            ratio = c / pi
             sym = -pi[self._jac_i] * data / ratio[self._jac_j]
             ab = np.zeros((b + 1, m))
             ab.flat[self._upper_pos] = sym[self._upper]
@@ -544,6 +576,11 @@ class CountPattern:
             ab.flat[self._band_pos] = data
             lu, piv, info = lapack.dgbtrf(ab, b, b)
             return None if info != 0 else (lu, piv)
+        return self._sparse_lu(data)
+
+    def _sparse_lu(self, data):
+        """Sparse LU of the Jacobian with entries ``data`` (see _factorise); None when singular."""
+        m = self.n - 1
         # the CSR arrays of J read as CSC are J^T: factorise J^T and solve with the transpose
         Jt = sp.csc_matrix((data, self._jac_indices, self._jac_indptr), shape=(m, m))
         try:
@@ -555,6 +592,13 @@ class CountPattern:
     def _solve(self, lu, F):
         """The Newton direction: J dy = -F on the free states (NaN without a factorization)."""
         m = self.n - 1
+        if isinstance(lu, _IterativeSystem):
+            z = conjugate_gradients(lu.matrix, (lu.pi_free * F[self._free])[self._perm])
+            if z is not None:
+                dy = np.empty(m)
+                dy[self._perm] = z
+                return dy / lu.ratio_free
+            lu = self._sparse_lu(lu.jacobian)
         if lu is None:
             return np.full(m, np.nan)
         dy = np.empty(m)

@@ -276,3 +276,26 @@ def test_no_warning_when_converged():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         estimate_transition_matrix(np.array([[5, 1, 1], [1, 5, 1], [1, 1, 5]]))
+
+
+def test_thousands_of_states_take_conjugate_gradients_and_reach_the_same_optimum(monkeypatch):
+    # From ITERATIVE_STATES on, Newton directions in a wide band come from conjugate gradients
+    # (msmkit.spectral.conjugate_gradients); the estimate must satisfy the optimality conditions
+    # of the likelihood (Bowman et al. 2009, see likelihood_gradient) and equal the direct route.
+    import msmkit.estimate as estimate
+    import msmkit.spectral as spectral
+    n = estimate.ITERATIVE_STATES + 300
+    rng = np.random.default_rng(4)
+    i = np.concatenate([np.arange(n), np.arange(n), rng.integers(0, n, 2 * n)])
+    j = np.concatenate([(np.arange(n) + 1) % n, np.arange(n), rng.integers(0, n, 2 * n)])
+    C = sp.coo_matrix((rng.poisson(30, i.size) + 1, (i, j)), shape=(n, n)).tocsr()
+    calls = []
+    monkeypatch.setattr(estimate, "conjugate_gradients",
+                        lambda *a, **kw: calls.append(1) or spectral.conjugate_gradients(*a, **kw))
+    T, info = estimate_transition_matrix(C, return_info=True, initial=rng.uniform(0.5, 1.5, n))
+    assert calls and info.converged
+    assert np.max(np.abs(likelihood_gradient(C.toarray(), T, info.equilibrium))) < 1e-8
+    monkeypatch.setattr(estimate, "ITERATIVE_STATES", 10 ** 9)
+    T_direct, info_direct = estimate_transition_matrix(C, return_info=True, initial=rng.uniform(0.5, 1.5, n))
+    np.testing.assert_allclose(T, T_direct, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(info.equilibrium, info_direct.equilibrium, rtol=1e-9)

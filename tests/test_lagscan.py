@@ -425,24 +425,35 @@ def _reference_timescales(C, lag, k):
 
 
 @pytest.mark.parametrize("n, extra, lazy, seed", [(400, 200, 20.0, 0), (150, 0, 5.0, 1), (400, 200, 0.0, 2),
-                                                   (101, 0, 0.0, 3)])
-def test_pattern_fit_equals_the_estimator(n, extra, lazy, seed):
+                                                   (101, 0, 0.0, 3), (1200, 900, 5.0, 4), (1200, 900, 0.0, 6)])
+def test_pattern_fit_equals_the_estimator(n, extra, lazy, seed, monkeypatch):
     # CountPattern.reversible_fit and flow_eigenvalues against estimate_transition_matrix and
     # scipy.linalg.eig on random sparse counts (above DENSE_FLOW_STATES: the sparse paths; a
     # plain ring (extra=0) is banded, random links are not: both factorizations are used);
     # lazy=0 leaves no staying counts on most states, so eigenvalues near -1 compete in
-    # magnitude (the Gershgorin bound cannot exclude them).
-    from msmkit.estimate import CountPattern
+    # magnitude (the Gershgorin bound cannot exclude them). From ITERATIVE_STATES on, a wide
+    # band takes conjugate gradients in the Newton steps and plain Lanczos for the eigenvalues:
+    # the reference estimate is then made by the direct sparse LU route.
+    import msmkit.estimate as estimate
+    import msmkit.spectral as spectral
+    from msmkit.estimate import ITERATIVE_STATES, CountPattern
     from msmkit.spectral import DENSE_FLOW_STATES, FlowSpectrum, flow_eigenvalues
     assert n > DENSE_FLOW_STATES
+    iterative = n - 1 >= ITERATIVE_STATES
     rng = np.random.default_rng(seed)
     C = _random_walk_counts(rng, n, extra, lazy)
     Cc = C.tocoo()
     pattern = CountPattern(Cc.row, Cc.col, n, anchor=int(np.argmax(np.asarray(C.sum(axis=1)))))
+    solves = []
+    monkeypatch.setattr(estimate, "conjugate_gradients",
+                        lambda *a, **kw: solves.append(1) or spectral.conjugate_gradients(*a, **kw))
     start = rng.uniform(0.5, 1.5, n)  # a poor warm start: the fit must still reach the MLE
     fit = pattern.reversible_fit(Cc.data.astype(float), start / start.sum())
     assert fit.converged
-    T_ref, info = estimate_transition_matrix(C, reversible=True, tol=1e-13, return_info=True)
+    assert bool(solves) == (iterative and pattern._band is None)
+    with monkeypatch.context() as direct:
+        direct.setattr(estimate, "ITERATIVE_STATES", 10 ** 9)
+        T_ref, info = estimate_transition_matrix(C, reversible=True, tol=1e-13, return_info=True)
     X = pattern.flow_matrix(fit.flows).toarray()
     np.testing.assert_allclose(X, X.T, rtol=0, atol=0)
     np.testing.assert_allclose(X / X.sum(axis=1, keepdims=True), T_ref, rtol=0, atol=1e-11)
@@ -466,6 +477,11 @@ def test_pattern_fit_equals_the_estimator(n, extra, lazy, seed):
     np.testing.assert_allclose(1.01 * solve(b) - A @ solve(b), b, atol=1e-10)
     if lazy == 0.0:
         assert np.any(np.real(w_ref[1:]) < 0)  # the case meant: a negative one among the leading
+    if not spectrum.banded:
+        # plain Lanczos that runs out of restarts hands over to shift-invert: the same values
+        monkeypatch.setattr(spectral, "PLAIN_LANCZOS_RESTARTS", 1)
+        w_si = spectrum.eigenvalues(fit.flows, 6, shift=shift, start=np.sqrt(fit.equilibrium), tol=1e-10)
+        np.testing.assert_allclose(w_si, np.real(w_ref), rtol=0, atol=1e-10)
 
 
 def test_sample_kernel_equals_the_estimator_on_every_sample():
