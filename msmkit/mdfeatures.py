@@ -490,12 +490,16 @@ def _index_dcd(path: str) -> FileIndex:
         delta = struct.unpack(endian + "f", head[44:48])[0] if charmm else \
             struct.unpack(endian + "d", head[44:52])[0]
         has_cell, four_d = (bool(icntrl[10]), bool(icntrl[11])) if charmm else (False, False)
-        (n_title_bytes,) = struct.unpack(endian + "i", fh.read(4))
-        fh.seek(n_title_bytes + 4, 1)
-        marker = fh.read(12)
-        if len(marker) < 12 or struct.unpack(endian + "3i", marker)[0] != 4:
-            raise _corrupt(path, "the header is incomplete")
-        n_atoms = struct.unpack(endian + "3i", marker)[1]
+        # the title record: its length (4 + 80 per line), the line count, the lines, the length
+        title = fh.read(4)
+        (n_title_bytes,) = struct.unpack(endian + "i", title) if len(title) == 4 else (-1,)
+        if n_title_bytes < 4 or (n_title_bytes - 4) % 80 or 92 + n_title_bytes + 20 > size:
+            raise _corrupt(path, "the title record of the header is broken")
+        fh.seek(n_title_bytes, 1)
+        marker = fh.read(16)
+        closing, opening, n_atoms, ending = struct.unpack(endian + "4i", marker)
+        if closing != n_title_bytes or opening != 4 or ending != 4 or n_atoms <= 0:
+            raise _corrupt(path, "the header is incomplete or its atom count is broken")
         header = fh.tell()
     if n_fixed:
         raise InputError(f"{path}: DCD files with fixed atoms are not supported; write all atoms")

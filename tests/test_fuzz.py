@@ -1172,6 +1172,29 @@ def test_md_readers_on_damaged_files(tmp_path, md_files, suffix, mode, where, ju
         assert np.array_equal(run, full[suffix][:len(run)]), f"{suffix} cut at byte {at}"
 
 
+
+def test_dcd_header_damage_byte_by_byte(tmp_path, md_files):
+    """Every byte of a DCD header (the 84-byte control record, the title record, the atom
+    count record) flipped in turn: features of every frame, or InputError naming the file.
+    A damaged title length once reached ``seek`` with a negative offset (OSError). With 12
+    atoms a coordinate record (4 x 12 bytes) has the length of a unit-cell record, so a flipped
+    4D flag reads as fewer, valid-looking frames: then the frame count of the header must
+    be reported as contradicted."""
+    topology, raw, full = md_files
+    header = 4 + 84 + 4 + 4 + 80 * 2 + 4 + 12  # two title lines, as mdtraj writes them
+    for at in range(header):
+        for xor in (0x01, 0x80, 0xff):
+            blob = bytearray(raw[".dcd"])
+            blob[at] ^= xor
+            path = fresh(tmp_path, ".dcd")
+            path.write_bytes(bytes(blob))
+            with warnings.catch_warnings(record=True) as seen:
+                warnings.simplefilter("always")
+                runs = load_or_clean_failure(path, topology=topology, atom_pairs=MD_PAIRS)
+            if runs is not None and runs[0].shape != full[".dcd"].shape:
+                assert any("claims 20 frames" in str(w.message) for w in seen), f"byte {at} ^ {xor:#x}"
+
+
 # ----------------------------------------------------------------------------- readers: the command
 
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
