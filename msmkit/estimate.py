@@ -21,13 +21,14 @@ from scipy.sparse import csgraph
 
 from ._checks import check_bool, check_int, check_tolerance
 from .errors import DiagnosticWarning, InputError
-from .spectral import BAND_SHARE, banded_cholesky, banded_cholesky_solve, conjugate_gradients, narrow_band
+from .spectral import BAND_SHARE, banded_cholesky, banded_cholesky_solve, conjugate_gradients
 
 #: a factorization of the Jacobian is reused while each step shrinks the residual at least this much
 REUSE = 0.05
-#: from this many free states on, Newton systems whose factorization would fill in (no narrow
-#: band) are solved by conjugate gradients first: at 3000 microstates of the demo the sparse LU
-#: took 0.3-2 s per step, 20-50 gradient iterations about 10 ms
+#: from this many free states on, Newton systems are solved by conjugate gradients first (in
+#: CountPattern only those whose factorization would fill in, i.e. no narrow band): at 3000
+#: microstates of the demo the sparse LU took 0.3-2 s per step, 20-50 gradient iterations
+#: about 10 ms
 ITERATIVE_STATES = 1000
 
 
@@ -270,7 +271,9 @@ def _reversible_mle(C, row, *, tol, max_iter, accelerate, initial):
     evaluations = 0
     converged = False
     anchor = int(np.argmax(row))  # log pi of this state is held fixed in Newton steps
-    iterative = accelerate and n - 1 >= ITERATIVE_STATES and not narrow_band(S.i, S.j, n)
+    # narrow band or wide: at 3000 states of the demo (lags 1-5) the gradients took 0.5-0.8 s
+    # per estimate, the sparse LU 3-6 s
+    iterative = accelerate and n - 1 >= ITERATIVE_STATES
     ll = _loglik_from_pi(S, pi)
     while evaluations < max_iter:
         residual, jac = S.residual(pi, jacobian=accelerate)

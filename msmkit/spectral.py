@@ -316,20 +316,6 @@ def banded_cholesky_solve(factor: np.ndarray, b: np.ndarray) -> np.ndarray:
     return x
 
 
-def narrow_band(rows, cols, n: int) -> bool:
-    """Whether the symmetric pattern (rows, cols) of an n x n matrix has, after reverse
-    Cuthill-McKee renumbering, a band whose LAPACK storage holds at most :data:`BAND_SHARE`
-    times its nonzeros (so that banded factorizations beat sparse ones)."""
-    import scipy.sparse as sp
-    from scipy.sparse import csgraph
-    rows, cols = np.asarray(rows, dtype=np.intp), np.asarray(cols, dtype=np.intp)
-    graph = sp.csr_matrix((np.ones(rows.size), (rows, cols)), shape=(n, n))
-    rank = np.empty(n, dtype=np.intp)
-    rank[csgraph.reverse_cuthill_mckee(graph, symmetric_mode=True)] = np.arange(n)
-    band = int(np.max(np.abs(rank[rows] - rank[cols]))) if rows.size else 0
-    return n * (band + 1) <= BAND_SHARE * max(rows.size, n)
-
-
 def conjugate_gradients(M, b: np.ndarray, *, rtol: float = 1e-10, max_iter: int = 2000):
     """x with M x = b for a symmetric positive definite sparse M, by conjugate gradients with the
     diagonal of M as preconditioner (Hestenes & Stiefel, J. Res. Natl. Bur. Stand. 49, 409
@@ -677,9 +663,9 @@ def changes_out(counts, *, lag: int = 1, every_frame: bool = True) -> np.ndarray
     ndarray, shape (n,)
         Number of changes out of each state (a float for sliding windows at lag > 1).
     """
-    C = counts.toarray() if hasattr(counts, "toarray") else np.asarray(counts)
-    C = np.asarray(C, dtype=float)
-    return (C.sum(axis=1) - np.diag(C)) / _windows(C, lag, every_frame)
+    C = _float_counts(counts)
+    out = np.asarray(C.sum(axis=1), dtype=float).ravel() - C.diagonal()
+    return out / _windows(C, lag, every_frame)
 
 
 def slow_crossings(counts, side, *, lag: int = 1, every_frame: bool = True) -> float:
@@ -701,11 +687,21 @@ def slow_crossings(counts, side, *, lag: int = 1, every_frame: bool = True) -> f
     -------
     float
     """
-    C = counts.toarray() if hasattr(counts, "toarray") else np.asarray(counts)
-    C = np.asarray(C, dtype=float)
-    side = np.asarray(side, dtype=bool)
-    across = C[np.ix_(side, ~side)].sum() + C[np.ix_(~side, side)].sum()
+    C = _float_counts(counts)
+    side = np.asarray(side, dtype=float)
+    # counts from one side to the other: s^T C (1 - s) + (1 - s)^T C s
+    Cs = np.asarray(C @ side, dtype=float).ravel()
+    across = float(Cs.sum() - side @ Cs) + float(np.asarray(side @ C, dtype=float).ravel().sum() - side @ Cs)
     return float(across / _windows(C, lag, every_frame))
+
+
+def _float_counts(counts):
+    """Counts as a float sparse CSR matrix or a float ndarray (sparse input stays sparse: at
+    thousands of states a dense copy cost 0.1 s per call)."""
+    import scipy.sparse as sp
+    if sp.issparse(counts):
+        return sp.csr_matrix(counts, dtype=float)
+    return np.asarray(counts, dtype=float)
 
 
 def _fmt(z) -> str:

@@ -278,16 +278,17 @@ def test_no_warning_when_converged():
         estimate_transition_matrix(np.array([[5, 1, 1], [1, 5, 1], [1, 1, 5]]))
 
 
-def test_thousands_of_states_take_conjugate_gradients_and_reach_the_same_optimum(monkeypatch):
-    # From ITERATIVE_STATES on, Newton directions in a wide band come from conjugate gradients
+@pytest.mark.parametrize("extra", [2, 0])  # random long-range entries (wide band), or a plain ring (narrow)
+def test_thousands_of_states_take_conjugate_gradients_and_reach_the_same_optimum(monkeypatch, extra):
+    # From ITERATIVE_STATES on, Newton directions come from conjugate gradients
     # (msmkit.spectral.conjugate_gradients); the estimate must satisfy the optimality conditions
     # of the likelihood (Bowman et al. 2009, see likelihood_gradient) and equal the direct route.
     import msmkit.estimate as estimate
     import msmkit.spectral as spectral
     n = estimate.ITERATIVE_STATES + 300
     rng = np.random.default_rng(4)
-    i = np.concatenate([np.arange(n), np.arange(n), rng.integers(0, n, 2 * n)])
-    j = np.concatenate([(np.arange(n) + 1) % n, np.arange(n), rng.integers(0, n, 2 * n)])
+    i = np.concatenate([np.arange(n), np.arange(n), rng.integers(0, n, extra * n)])
+    j = np.concatenate([(np.arange(n) + 1) % n, np.arange(n), rng.integers(0, n, extra * n)])
     C = sp.coo_matrix((rng.poisson(30, i.size) + 1, (i, j)), shape=(n, n)).tocsr()
     calls = []
     monkeypatch.setattr(estimate, "conjugate_gradients",

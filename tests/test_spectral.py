@@ -9,6 +9,7 @@ practice); implied timescales t = -tau / ln|lambda| (Swope, Pitera & Suits, J. P
 import numpy as np
 import pytest
 import scipy.linalg as la
+import scipy.sparse as sp
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -263,3 +264,21 @@ def test_conjugate_gradients_solve_like_a_direct_sparse_solve():
     assert conjugate_gradients(M, b, rtol=1e-12, max_iter=2) is None  # not reached: None
     assert conjugate_gradients(-M, b) is None  # negative diagonal: not positive definite
     np.testing.assert_array_equal(conjugate_gradients(M, np.zeros(n)), np.zeros(n))
+
+
+@pytest.mark.parametrize("lag, every_frame", [(1, True), (4, True), (4, False)])
+def test_state_changes_and_crossings_on_sparse_and_dense_counts(lag, every_frame):
+    """Changes out of each state (row sum without the diagonal) and crossings between two sides
+    (counts from one side to the other, both directions), divided by the lag for sliding
+    windows: by explicit sums over the dense matrix (definition; common practice), for dense
+    and scipy.sparse input alike."""
+    from msmkit.spectral import changes_out, slow_crossings
+    rng = np.random.default_rng(3)
+    C = rng.poisson(0.7, (9, 9)).astype(float) * (rng.random((9, 9)) < 0.5)
+    side = rng.random(9) < 0.4
+    div = lag if every_frame else 1
+    want_out = np.array([sum(C[i, j] for j in range(9) if j != i) for i in range(9)]) / div
+    want_cross = sum(C[i, j] for i in range(9) for j in range(9) if side[i] != side[j]) / div
+    for counts in (C, sp.csr_matrix(C), sp.coo_matrix(C).astype(np.int64)):
+        np.testing.assert_allclose(changes_out(counts, lag=lag, every_frame=every_frame), want_out, rtol=1e-12)
+        assert slow_crossings(counts, side, lag=lag, every_frame=every_frame) == pytest.approx(want_cross, rel=1e-12)
