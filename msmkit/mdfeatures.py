@@ -499,7 +499,7 @@ def _index_dcd(path: str) -> FileIndex:
         marker = fh.read(16)
         closing, opening, n_atoms, ending = struct.unpack(endian + "4i", marker)
         if closing != n_title_bytes or opening != 4 or ending != 4 or n_atoms <= 0:
-            raise _corrupt(path, "the header is incomplete or its atom count is broken")
+            raise _corrupt(path, "the header is incomplete or the atom count record is broken")
         header = fh.tell()
     if n_fixed:
         raise InputError(f"{path}: DCD files with fixed atoms are not supported; write all atoms")
