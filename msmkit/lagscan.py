@@ -16,7 +16,7 @@ import numpy as np
 
 from ._bootstrap import BLOCK_UNITS, MIN_RUNS_FOR_RUN_BOOTSTRAP  # noqa: F401  (re-exported constants)
 from ._bootstrap import SampleTimescales, StateCounts, bootstrap_interval, check_interval, resampling_plan
-from ._bootstrap import percentile_interval, sample_timescales_batch, warn_few_samples
+from ._bootstrap import FEW_CROSSINGS, few_crossings_note, percentile_interval, sample_timescales_batch, warn_few_samples
 from ._bootstrap import progress_bar as _progress
 from ._bootstrap import unflatten as _unflatten
 from ._checks import (as_label_trajectories, check_bool, check_dt, check_int, check_probability, check_seed,
@@ -156,10 +156,13 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
         counts divided by the lag, as independent transitions), and equal-tailed credible
         intervals from their timescales (no widening; prior count -1, see
         :data:`msmkit.posterior.INTERVAL_PRIOR_COUNT`). Needs ``reversible=True``. Measured with
-        10 runs (bench/bench_posterior_coverage.py, nominal 95 %): slowest timescale 0.95 on
-        three chains (33-160 crossings), where the bootstrap covered 0.92-0.94; the second
-        timescale of a 49-state lattice walk at lag 2 only 0.875 (the posterior sits slightly
-        above the truth). The posterior
+        10 runs (nominal 95 %): slowest timescale 0.95 on three chains (33-160 crossings, 120
+        replicates each, bench/bench_posterior_coverage.py), where the bootstrap covered
+        0.92-0.94; on a 4-state chain with about 54 crossings and 400 replicates (s.e. 0.011,
+        bench/bench_coverage.py --study kinetics) 0.915 for both; the second timescale of a
+        49-state lattice walk at lag 2 only 0.875 (the posterior sits slightly above the
+        truth). Below :data:`msmkit._bootstrap.FEW_CROSSINGS` crossings a note says so for
+        either method. The posterior
         treats transitions as independent given the states; the bootstrap over runs also sees
         correlations between runs' starts and the lack of equilibrium.
     progress : bool
@@ -267,8 +270,12 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     suggested, reason = suggest_lag(lags_arr, ts, lower, upper, dt=dt, unit=unit, n_slow=n_slow, rtol=rtol,
                                     confidence=confidence, **support)
     notes += _scan_findings(lags_arr, ts, models, dt, unit, lower, upper)
-    if n_samples and not bayes:
-        notes += _few_crossings_note(lags_arr, support["crossings"], confidence)
+    if n_samples:
+        few = [(int(lag), c) for lag, c in zip(lags_arr, support["crossings"]) if c < FEW_CROSSINGS]
+        if few:
+            notes += few_crossings_note(f"At lag(s) {[lag for lag, _ in few]} frames (the fewest shown)",
+                                        min(c for _, c in few),
+                                        confidence, "bayes" if bayes else "bootstrap")
     return LagScan(lags_arr, ts, lower, upper, samples, dt, unit, confidence, n_samples, suggested, reason,
                    notes, models, "bayes" if bayes else "bootstrap")
 
@@ -488,23 +495,6 @@ def _data_support(models, lags, runs, dt) -> dict:
     :func:`suggest_lag` weighs against the timescales."""
     return {"crossings": np.array([models[int(lag)].state_changes()[1] for lag in lags]),
             "run_time": max(r.size for r in runs) * dt}
-
-
-#: below this many crossings of the slowest process the bootstrap intervals were measured to cover
-#: less than stated (bench/bench_posterior_coverage.py)
-BOOTSTRAP_CROSSINGS = 100
-
-
-def _few_crossings_note(lags, crossings, confidence) -> list[str]:
-    """The caution that bootstrap intervals over runs that cross the slowest process only a few
-    times each cover less than stated."""
-    few = [int(lag) for lag, c in zip(lags, crossings) if c < BOOTSTRAP_CROSSINGS]
-    if not few:
-        return []
-    return [f"At lag(s) {few} frames the data cross the slowest process fewer than {BOOTSTRAP_CROSSINGS} times: "
-            f"bootstrap intervals over so few crossings cover less than the stated {100 * confidence:g}% (measured "
-            f"with 10 runs: 0.92 at 33-54 crossings for the slowest timescale, 0.94 at about 160); "
-            f"uncertainty='bayes' covered 0.95 at 33-54 crossings (bench/bench_posterior_coverage.py)."]
 
 
 def _estimate_outside(ts, lower, upper) -> np.ndarray:

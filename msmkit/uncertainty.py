@@ -31,8 +31,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ._bootstrap import (StateCounts, bootstrap_interval, fit_sample, percentile_interval, progress_bar,
-                         resampling_plan, samples_needed)
+from ._bootstrap import (StateCounts, bootstrap_interval, few_crossings_note, fit_sample, percentile_interval,
+                         progress_bar, resampling_plan, samples_needed)
 from ._checks import as_label_trajectories, check_bool, check_int, check_probability, check_seed
 from .counts import run_count_rows
 from .defaults import BOOTSTRAP_SAMPLES, PROCESSES, UNCERTAINTIES
@@ -434,11 +434,16 @@ def sample_models(model, labels=None, *, uncertainty: str = "bootstrap", n_sampl
         raise InputError("model holds no transition counts (it was built from a matrix), so there is nothing to "
                          "sample from; build it from label trajectories with build_model")
     if uncertainty == "bayes":
-        return _posterior_samples(model, n_samples, seed, prior_count, progress, cancel)
-    if labels is None:
+        draw = _posterior_samples(model, n_samples, seed, prior_count, progress, cancel)
+    elif labels is None:
         raise InputError("uncertainty='bootstrap' needs labels= (the label trajectories the model was built from) "
                          "to resample; or use uncertainty='bayes', which samples from the model's counts")
-    return _bootstrap_samples(model, as_label_trajectories(labels), n_samples, seed, progress, cancel)
+    else:
+        draw = _bootstrap_samples(model, as_label_trajectories(labels), n_samples, seed, progress, cancel)
+    crossings = model.state_changes()[1] if model.n_states > 1 else None
+    if crossings is not None:
+        draw.notes += few_crossings_note(f"At lag {model.lag} frames", crossings, 0.95, uncertainty)
+    return draw
 
 
 def _every_frame(model) -> bool:

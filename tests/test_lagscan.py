@@ -594,3 +594,19 @@ def test_bayes_refuses_non_reversible_and_unknown_methods(sample_chain):
         lag_scan(runs, [1], n_samples=10, reversible=False, uncertainty="bayes")
     with pytest.raises(InputError, match=r"uncertainty must be one of 'bootstrap', 'bayes', but got 'jackknife'"):
         lag_scan(runs, [1], uncertainty="jackknife")
+
+
+@pytest.mark.parametrize("uncertainty", ["bootstrap", "bayes"])
+def test_scan_notes_few_crossings_for_either_method(sample_chain, uncertainty):
+    """Fewer than 100 crossings of the slowest process at a scanned lag: a note says that the
+    intervals cover less than stated (measured, bench/bench_coverage.py), for the bootstrap and
+    the posterior alike; at lag 1 on two states a crossing is a change of state (numpy count)."""
+    T = np.array([[0.97, 0.03], [0.05, 0.95]])
+    runs = sample_chain(T, 100, n_runs=10, seed=8)
+    changes = sum(int(np.count_nonzero(np.diff(r))) for r in runs)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DiagnosticWarning)
+        scan = lag_scan(runs, [1, 2], n_samples=20, seed=0, uncertainty=uncertainty)
+    (note,) = [n for n in scan.notes if "cross the slowest process" in n]
+    assert note.startswith("At lag(s) [1, 2] frames") and uncertainty in note
+    assert f"only {min(changes, scan.model(2).state_changes()[1]):.3g} times" in note

@@ -282,3 +282,23 @@ def test_an_estimate_outside_its_interval_is_flagged(two_state):
                               pis / pis.sum(axis=1, keepdims=True), "bayes")
     with pytest.warns(mk.DiagnosticWarning, match="2 of 2 estimate.* lie outside their 95% interval"):
         shifted.populations()
+
+
+@pytest.mark.parametrize("uncertainty", ["bootstrap", "bayes"])
+def test_few_crossings_of_the_slowest_process_are_noted(sample_chain, two_state, uncertainty):
+    """Intervals over fewer than 100 crossings of the slowest process were measured to cover less
+    than stated (bench/bench_coverage.py --study kinetics); the samples say so, naming the
+    crossings. On two states at lag 1 a crossing is a frame at which a run changes state,
+    counted here with numpy (definition)."""
+    runs = sample_chain(TWO, 100, n_runs=10, seed=8)
+    changes = sum(int(np.count_nonzero(np.diff(r))) for r in runs)
+    assert 0 < changes < 100
+    model = quiet(mk.build_model, runs, 1)
+    draw = quiet(mk.sample_models, model, runs, uncertainty=uncertainty, n_samples=20, seed=0)
+    (note,) = [n for n in draw.notes if "cross the slowest process" in n]
+    assert f"only {changes} times" in note and uncertainty in note
+    assert note in quiet(draw.populations).attrs["notes"]
+    runs, model = two_state  # 10 runs x 400 steps: about 150 crossings
+    assert sum(int(np.count_nonzero(np.diff(r))) for r in runs) >= 100
+    draw = quiet(mk.sample_models, model, runs, uncertainty=uncertainty, n_samples=20, seed=0)
+    assert not [n for n in draw.notes if "cross the slowest process" in n]
