@@ -295,7 +295,7 @@ def _reversible_mle(C, row, *, tol, max_iter, accelerate, initial):
 
 def _newton_step(S, pi, ll, residual, jac, anchor, iterative=False):
     """One Newton step on the stationarity equations in log pi, with a likelihood line search;
-    ``iterative``: the direction by conjugate gradients first (thousands of states, wide band).
+    ``iterative``: the direction by conjugate gradients first (thousands of states).
 
     Returns (new pi, the log-likelihood there), or (None, None) when no step length improves the
     likelihood (the caller then takes a plain fixed-point step).

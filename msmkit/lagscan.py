@@ -270,12 +270,11 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     suggested, reason = suggest_lag(lags_arr, ts, lower, upper, dt=dt, unit=unit, n_slow=n_slow, rtol=rtol,
                                     confidence=confidence, **support)
     notes += _scan_findings(lags_arr, ts, models, dt, unit, lower, upper)
+    crossings = support["crossings"]
     if n_samples:
-        few = [(int(lag), c) for lag, c in zip(lags_arr, support["crossings"]) if c < FEW_CROSSINGS]
-        if few:
-            notes += few_crossings_note(f"At lag(s) {[lag for lag, _ in few]} frames (the fewest shown)",
-                                        min(c for _, c in few),
-                                        confidence, "bayes" if bayes else "bootstrap")
+        few = lags_arr[crossings < FEW_CROSSINGS].tolist()
+        notes += few_crossings_note(f"At lag(s) {few} frames (the fewest shown)", float(crossings.min()),
+                                    confidence, "bayes" if bayes else "bootstrap")
     return LagScan(lags_arr, ts, lower, upper, samples, dt, unit, confidence, n_samples, suggested, reason,
                    notes, models, "bayes" if bayes else "bootstrap")
 

@@ -688,11 +688,11 @@ def slow_crossings(counts, side, *, lag: int = 1, every_frame: bool = True) -> f
     float
     """
     C = _float_counts(counts)
-    side = np.asarray(side, dtype=float)
-    # counts from one side to the other: s^T C (1 - s) + (1 - s)^T C s
-    Cs = np.asarray(C @ side, dtype=float).ravel()
-    across = float(Cs.sum() - side @ Cs) + float(np.asarray(side @ C, dtype=float).ravel().sum() - side @ Cs)
-    return float(across / _windows(C, lag, every_frame))
+    s = np.asarray(side, dtype=float)
+    # counts from one side to the other: s^T C (1 - s) + (1 - s)^T C s = sum(s^T C) + sum(C s) - 2 s^T C s
+    Cs = np.asarray(C @ s, dtype=float).ravel()
+    across = float(np.sum(s @ C)) + float(Cs.sum()) - 2.0 * float(s @ Cs)
+    return across / _windows(C, lag, every_frame)
 
 
 def _float_counts(counts):
