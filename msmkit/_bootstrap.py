@@ -318,7 +318,8 @@ def bootstrap_interval(samples: np.ndarray, estimate, confidence: float, *, meth
         The full-data value, shaped like ``samples`` without ``axis``.
     confidence : float
     method : {"percentile", "bc", "bca"}
-        ``percentile``: the sample quantiles at (1 -+ confidence) / 2; ``bc``: those levels
+        ``percentile``: the sample quantiles at (1 -+ confidence) / 2 (the (m + 1) p rule of
+        :func:`_quantiles`); ``bc``: those levels
         shifted by the median bias z0 = Phi^-1(share of samples below the estimate); ``bca``:
         also corrected for skewness with the acceleration from ``jackknife`` (Efron, J. Am.
         Stat. Assoc. 82, 171 (1987); Efron & Tibshirani, An Introduction to the Bootstrap
@@ -369,14 +370,23 @@ def bootstrap_interval(samples: np.ndarray, estimate, confidence: float, *, meth
 
 
 def _quantiles(x: np.ndarray, levels: np.ndarray):
-    """Linear-interpolation quantiles (as numpy's default) of the finite values of each row of
-    ``x`` (samples on the last axis) at that row's two ``levels``."""
+    """Quantiles of the finite values of each row of ``x`` (samples on the last axis) at that
+    row's two ``levels``, by the (m + 1) p rule: the p-quantile of m samples is their (m + 1) p-th
+    smallest, interpolated linearly between order statistics and held at the extremes (numpy's
+    ``method="weibull"``).
+
+    Of m draws from a continuous law, the k-th smallest lies below a fresh draw with probability
+    k / (m + 1), so the levels (m + 1) p and (m + 1)(1 - p) hold 1 - 2p of the law on average; the
+    default rule (m - 1) p + 1 puts the ends about one sample inside that (Davison & Hinkley,
+    Bootstrap Methods and their Application (1997), sec. 5.2, from memory): with 200 samples a
+    95 % interval holds 94 %.
+    """
     xs = np.sort(np.where(np.isfinite(x), x, np.inf), axis=-1)
     m = np.isfinite(xs).sum(axis=-1)
     out = []
     for j in range(2):
         with np.errstate(invalid="ignore"):
-            h = np.clip(levels[..., j], 0.0, 1.0) * (m - 1)
+            h = np.clip(np.clip(levels[..., j], 0.0, 1.0) * (m + 1) - 1, 0, np.maximum(m - 1, 0))
         h = np.where(np.isfinite(h), h, 0.0)
         f = np.floor(h).astype(np.intp)
         c = np.minimum(f + 1, np.maximum(m - 1, 0))
@@ -389,11 +399,11 @@ def _quantiles(x: np.ndarray, levels: np.ndarray):
 
 
 def percentile_interval(samples: np.ndarray, confidence: float, axis: int = 0):
-    """Percentile bootstrap interval at ``confidence``, ignoring NaN samples (all-NaN -> NaN)."""
-    lo, hi = 100 * (1 - confidence) / 2, 100 * (1 + confidence) / 2
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN slices -> NaN
-        return np.nanpercentile(samples, lo, axis=axis), np.nanpercentile(samples, hi, axis=axis)
+    """Equal-tailed interval of ``samples`` at ``confidence`` by the (m + 1) p rule of
+    :func:`_quantiles`, ignoring NaN samples (all-NaN -> NaN)."""
+    x = np.moveaxis(np.asarray(samples, dtype=float), axis, -1)
+    levels = np.broadcast_to(np.array([(1 - confidence) / 2, (1 + confidence) / 2]), x.shape[:-1] + (2,))
+    return _quantiles(x, levels)
 
 
 def progress_bar(total: int, enabled: bool, desc: str, cancel=None):

@@ -93,11 +93,12 @@ def _numpy_mfpt(T, pi, src, tgt):
 
 
 def _bc_interval(values, estimate, confidence, n_units):
-    """Bias-corrected percentile interval, expanded for few units (Efron 1987; Hesterberg 2015)."""
+    """Bias-corrected percentile interval, expanded for few units (Efron 1987; Hesterberg 2015), with
+    quantiles by the (m + 1) p rule (numpy's weibull method)."""
     x = values[np.isfinite(values)]
     z0 = stats.norm.ppf((np.sum(x < estimate) + 0.5 * np.sum(x == estimate)) / x.size)
     z = np.sqrt(n_units / (n_units - 1)) * stats.t.ppf((1 + confidence) / 2, n_units - 1)
-    return np.quantile(x, stats.norm.cdf([2 * z0 - z, 2 * z0 + z]))
+    return np.quantile(x, stats.norm.cdf([2 * z0 - z, 2 * z0 + z]), method="weibull")
 
 
 def test_bootstrap_passage_times_use_every_sample_and_the_bias_corrected_interval(sample_chain):
