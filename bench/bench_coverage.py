@@ -237,6 +237,8 @@ def main():
                          "sample_models (bootstrap and posterior) with passage times and rates")
     ap.add_argument("--methods", nargs="+", choices=["bootstrap", "bayes"], default=["bootstrap", "bayes"],
                     help="kinetics study: the ways of sampling to check")
+    ap.add_argument("--seed", type=int, default=0, help="added to each chain's fixed seed (0: the figures of the "
+                                                        "README); another value gives fresh replicates to pool")
     ap.add_argument("--prior-count", type=float, default=None, help="kinetics study, bayes: prior count "
                                                                    "(default: that of sample_models)")
     a = ap.parse_args()
@@ -246,22 +248,22 @@ def main():
         extra = dict(methods=tuple(a.methods), options={} if a.prior_count is None else {"prior_count": a.prior_count})
         if a.chain in ("four", "both"):
             kinetics_study("4-state chain", four_state_chain(), np.array([0, 1]), np.array([2, 3]), n_runs=a.runs,
-                           n_steps=1000, lag=1, n_reps=a.reps, n_samples=samples, confidence=a.confidence, seed=11,
+                           n_steps=1000, lag=1, n_reps=a.reps, n_samples=samples, confidence=a.confidence, seed=11 + a.seed,
                            **extra)
         if a.chain in ("lattice", "both"):
             side = 7
             x = np.arange(side * side) // side
             kinetics_study("7 x 7 lattice walk", lattice_chain(side), np.flatnonzero(x <= 1), np.flatnonzero(x >= side - 2),
                            n_runs=a.runs, n_steps=2000, lag=2, n_reps=a.reps, n_samples=samples,
-                           confidence=a.confidence, seed=12, **extra)
+                           confidence=a.confidence, seed=12 + a.seed, **extra)
         if a.study == "kinetics":
             return
     if a.chain in ("four", "both"):
         study("4-state chain", four_state_chain(), n_runs=a.runs, n_steps=1000, lag=1, k=2, n_reps=a.reps,
-              n_samples=max(a.samples), sizes=a.samples, confidence=a.confidence, seed=1)
+              n_samples=max(a.samples), sizes=a.samples, confidence=a.confidence, seed=1 + a.seed)
     if a.chain in ("lattice", "both"):
         study("7 x 7 lattice walk", lattice_chain(), n_runs=a.runs, n_steps=2000, lag=2, k=2, n_reps=a.reps,
-              n_samples=max(a.samples), sizes=a.samples, confidence=a.confidence, seed=2)
+              n_samples=max(a.samples), sizes=a.samples, confidence=a.confidence, seed=2 + a.seed)
 
 
 if __name__ == "__main__":
