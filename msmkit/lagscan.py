@@ -274,7 +274,7 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
     if n_samples:
         few = lags_arr[crossings < FEW_CROSSINGS].tolist()
         notes += few_crossings_note(f"At lag(s) {few} frames (the fewest shown)", float(crossings.min()),
-                                    confidence, "bayes" if bayes else "bootstrap")
+                                    "bayes" if bayes else "bootstrap")
     return LagScan(lags_arr, ts, lower, upper, samples, dt, unit, confidence, n_samples, suggested, reason,
                    notes, models, "bayes" if bayes else "bootstrap")
 

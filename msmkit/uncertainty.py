@@ -442,7 +442,7 @@ def sample_models(model, labels=None, *, uncertainty: str = "bootstrap", n_sampl
         draw = _bootstrap_samples(model, as_label_trajectories(labels), n_samples, seed, progress, cancel)
     crossings = model.state_changes()[1] if model.n_states > 1 else None
     if crossings is not None:
-        draw.notes += few_crossings_note(f"At lag {model.lag} frames", crossings, 0.95, uncertainty)
+        draw.notes += few_crossings_note(f"At lag {model.lag} frames", crossings, uncertainty)
     return draw
 
 
