@@ -11,8 +11,8 @@ CK_MULTIPLES = 4
 #: Reactive routes are listed until they carry this share of the total reactive flux.
 ROUTE_SHARE = 0.9
 #: Bootstrap samples behind an interval (lag scans, populations): fewer give 95 % intervals that
-#: cover the truth clearly less often (measured in bench/bench_coverage.py: 0.83 at 20 samples,
-#: 0.92-0.95 at 200, with 10 runs).
+#: cover the truth clearly less often (measured in bench/bench_coverage.py with 10 runs: 0.83 at 20
+#: samples; 0.93-0.96 at 200; 0.95-0.97 at 1000, five times the cost).
 BOOTSTRAP_SAMPLES = 200
 #: Bootstrap samples of the Chapman–Kolmogorov test: its family-wise limit uses Student's t with
 #: (samples - 1) degrees of freedom, so fewer samples widen the limit instead of raising false alarms.

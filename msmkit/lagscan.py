@@ -146,9 +146,10 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
         bias-corrected percentiles; bias-corrected and accelerated (the acceleration from
         leave-one-run-out fits: one extra fit per resampled unit and lag); or plain percentiles.
         In every case the levels are widened for the narrowness of a bootstrap over few runs.
-        Measured by ``bench/bench_coverage.py`` (10 runs, 200 samples, nominal 95 %): plain
-        percentiles without widening cover 0.88-0.93, the default 0.93-0.95. Not used with
-        ``uncertainty="bayes"``.
+        Measured by ``bench/bench_coverage.py --study intervals`` (10 runs, 200 samples, nominal
+        95 %, 200 replicates of a 4-state chain): plain percentiles without widening cover
+        0.90-0.91, the default 0.94-0.95 (on a 49-state lattice walk 0.89-0.92 and 0.94-0.97). Not
+        used with ``uncertainty="bayes"``.
     uncertainty : {"bootstrap", "bayes"}, default "bootstrap"
         Where the samples come from. "bootstrap": resampled runs (above). "bayes": at each lag,
         ``n_samples`` draws from the Bayesian posterior of reversible transition matrices given
@@ -156,12 +157,12 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
         counts divided by the lag, as independent transitions), and equal-tailed credible
         intervals from their timescales (no widening; prior count -1, see
         :data:`msmkit.posterior.INTERVAL_PRIOR_COUNT`). Needs ``reversible=True``. Measured with
-        10 runs (nominal 95 %): slowest timescale 0.95 on three chains (33-160 crossings, 120
-        replicates each, bench/bench_posterior_coverage.py), where the bootstrap covered
-        0.92-0.94; on a 4-state chain with about 54 crossings and 400 replicates (s.e. 0.011,
-        bench/bench_coverage.py --study kinetics) 0.915 for both; the second timescale of a
-        49-state lattice walk at lag 2 only 0.875 (the posterior sits slightly above the
-        truth). Below :data:`msmkit._bootstrap.FEW_CROSSINGS` crossings a note says so for
+        10 runs (nominal 95 %, 200 samples): slowest timescale 0.970 at 33 crossings (200
+        replicates, bench/bench_posterior_coverage.py; bootstrap 0.960), 0.927 at 54 crossings
+        (400 replicates, bench/bench_coverage.py --study kinetics; bootstrap 0.945), 0.958 on a
+        49-state lattice walk at 157 crossings (bootstrap 0.963); earlier, with the linear
+        quantile rule, the lattice's second timescale only 0.875 (the posterior slightly above
+        the truth). Below :data:`msmkit._bootstrap.FEW_CROSSINGS` crossings a note says so for
         either method. The posterior
         treats transitions as independent given the states; the bootstrap over runs also sees
         correlations between runs' starts and the lack of equilibrium.

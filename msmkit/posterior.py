@@ -363,8 +363,9 @@ def sample_reversible_posterior(counts, n_samples, *, seed=None, burn_in=100, th
         chain with about 33 crossings of the slow process, 200 replicates
         (bench/bench_posterior_coverage.py): 95 % intervals of the slowest timescale covered
         0.905 with -0.5 (truth above the interval 8.5 %, below 1 %), 0.92 with -0.95 (3.5 % /
-        4.5 %); populations 0.89-0.92 with any of them. So few crossings leave the intervals too
-        narrow whatever the prior; with about 130 crossings coverage was 0.94-0.95.
+        4.5 %); populations 0.89-0.92 with any of them (interval ends then by the linear quantile
+        rule; with the (m + 1) p ends now used and -1: timescale 0.970, populations 0.949). With
+        about 130 crossings coverage was 0.94-0.95.
     initial : ndarray, shape (n, n), optional
         Reversible transition matrix to start from, positive on every counted pair; default: the
         reversible maximum-likelihood estimate.
