@@ -373,7 +373,9 @@ def _stretches(piece: np.ndarray, d: int, n_states: int):
     begins[0] = True
     np.bitwise_or(changed[:m - 1], changed[d:d + m - 1], out=begins[1:])
     starts = np.flatnonzero(begins)
-    lengths = np.diff(starts, append=m)
+    lengths = np.empty_like(starts)  # np.diff(starts, append=m) without its temporaries
+    np.subtract(starts[1:], starts[:-1], out=lengths[:-1])
+    lengths[-1] = m - starts[-1]
     first, second = piece[starts], piece[d:][starts]
     codes = np.multiply(first, n_states, dtype=np.intp)
     codes += second
