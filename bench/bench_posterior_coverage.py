@@ -96,7 +96,8 @@ def study(name, T, *, n_runs, n_frames, lag, n_reps, n_samples, seed):
             h, lo, w = (np.asarray(x[m])[:, cols] for x in (inside, below, width))
             c = h.mean()
             se = np.sqrt(c * (1 - c) / h.size)
-            row += f"{c:>14.3f} +-{se:.3f}{lo.mean():>7.3f}{1 - c - lo.mean():>7.3f}{np.median(w):>7.3f}"
+            above = max(1 - c - lo.mean(), 0.0)  # no "-0.000" from rounding
+            row += f"{c:>14.3f} +-{se:.3f}{lo.mean():>7.3f}{above:>7.3f}{np.median(w):>7.3f}"
         print(row)
 
 
