@@ -160,9 +160,9 @@ def lag_scan(labels, lags, *, dt: float = 1.0, unit: str = "step", n_processes: 
         10 runs (nominal 95 %, 200 samples): slowest timescale 0.970 at 33 crossings (200
         replicates, bench/bench_posterior_coverage.py; bootstrap 0.960), 0.927 at 54 crossings
         (400 replicates, bench/bench_coverage.py --study kinetics; bootstrap 0.945), 0.958 on a
-        49-state lattice walk at 157 crossings (bootstrap 0.963); earlier, with the linear
-        quantile rule, the lattice's second timescale only 0.875 (the posterior slightly above
-        the truth). Below :data:`msmkit._bootstrap.FEW_CROSSINGS` crossings a note says so for
+        49-state lattice walk at 157 crossings (bootstrap 0.963); but the lattice's second
+        timescale only 0.858 (120 replicates, bench/bench_posterior_coverage.py; bootstrap 0.933:
+        the posterior sits above the truth there). Below :data:`msmkit._bootstrap.FEW_CROSSINGS` crossings a note says so for
         either method. The posterior
         treats transitions as independent given the states; the bootstrap over runs also sees
         correlations between runs' starts and the lack of equilibrium.
