@@ -234,7 +234,7 @@ class _SymmetricCounts:
         if not jacobian:
             # x_ij is symmetric: evaluated on the upper half of the pattern (half the work) and
             # summed into both rows
-            up, iu, ju, strict = self._upper
+            up, iu, ju, strict = self._upper[:4]
             x = self.s[up] / (ratio[iu] + ratio[ju])
             x_i = np.bincount(iu, weights=x, minlength=self.n) + np.bincount(ju[strict], weights=x[strict],
                                                                            minlength=self.n)
@@ -245,17 +245,31 @@ class _SymmetricCounts:
         # d(x_ij/pi_i)/d(log pi_j) = w_ij * (c_j/pi_j) / (c_i/pi_i + c_j/pi_j) = -d/d(log pi_i)
         return F, (w * ratio[self.j] / den if jacobian else None)
 
+    def symmetric_jacobian(self, pi: np.ndarray):
+        """The symmetric positive definite form M = diag(pi) (-J) diag(r)^-1 of the Jacobian J
+        of :meth:`residual` (r = c / pi; see :meth:`CountPattern._factorise`) from the upper
+        half of the pattern alone: (M_ij = -s_ij / (r_i + r_j)^2 on the entries i < j of
+        ``_upper_half``, in its order; the diagonal M_ii = sum_{j != i} s_ij r_j / (r_i (r_i + r_j)^2))."""
+        ratio = self.c / pi
+        _, _, _, _, pos, i, j = self._upper
+        den = ratio[i] + ratio[j]
+        q = self.s[pos] / den / den  # not den ** 2: that overflows where some pi is tiny
+        diag = np.bincount(i, weights=q * ratio[j], minlength=self.n)
+        diag += np.bincount(j, weights=q * ratio[i], minlength=self.n)
+        return -q, diag / ratio
+
     def step(self, pi: np.ndarray) -> np.ndarray:
         new = np.bincount(self.i, weights=self.flows(pi), minlength=self.n)
         return new / new.sum()
 
 
 def _upper_half(i, j):
-    """(positions of the entries with i <= j, their i, their j, which of them have i < j) of a
-    symmetric pattern."""
+    """(positions of the entries with i <= j, their i, their j, which of them have i < j, and
+    for the entries with i < j alone: their positions, i and j) of a symmetric pattern."""
     up = np.flatnonzero(i <= j)
     iu, ju = i[up], j[up]
-    return up, iu, ju, np.flatnonzero(iu < ju)
+    strict = np.flatnonzero(iu < ju)
+    return up, iu, ju, strict, up[strict], iu[strict], ju[strict]
 
 
 def _reversible_mle(C, row, *, tol, max_iter, accelerate, initial):
@@ -448,9 +462,14 @@ class CountPattern:
         else:
             ro, co = r[order], c[order]
             self._band_pos = (2 * self._band + ro - co) * m + co
-            # upper band storage of the symmetric form
-            self._upper = np.flatnonzero(ro <= co)
-            self._upper_pos = (self._band + ro[self._upper] - co[self._upper]) * m + co[self._upper]
+            # upper band storage ab[band + r - c, c] (r <= c) of the symmetric form, filled from
+            # the entries i < j of the pattern's upper half (_SymmetricCounts.symmetric_jacobian)
+            si, sj = self._sym_upper[5:]
+            self._band_off = np.flatnonzero((si != anchor) & (sj != anchor))
+            ri, rj = rank[shift(si[self._band_off])], rank[shift(sj[self._band_off])]
+            lo, hi = np.minimum(ri, rj), np.maximum(ri, rj)
+            self._band_off_pos = (self._band + lo - hi) * m + hi
+            self._band_diag_pos = self._band * m + rank[shift(diag)]
 
     def row_sums(self, values) -> np.ndarray:
         """Row sums c_i of a matrix given by the values."""
@@ -514,7 +533,7 @@ class CountPattern:
             # fourfold per step (near the solution the Jacobian hardly changes); else refactorised
             fresh = lu is None or not size < REUSE * last
             if fresh:
-                lu = self._factorise(S.residual_terms(pi)[1], pi, S.c)
+                lu = self._factorise(S, pi)
             last = size
             new = self._full_step(pi, lu, F)
             F_new = S.residual_terms(new, jacobian=False)[0] if new is not None else None
@@ -522,7 +541,7 @@ class CountPattern:
                 # no plain progress: the likelihood line search of the general estimator, from a
                 # fresh Jacobian, and the self-consistent step as the last resort
                 if not fresh:
-                    lu = self._factorise(S.residual_terms(pi)[1], pi, S.c)
+                    lu = self._factorise(S, pi)
                 new = _line_search(S, pi, _loglik_from_pi(S, pi), self._solve(lu, F), self._free)[0]
                 if new is None:
                     new, lu = S.step(pi), None
@@ -545,9 +564,9 @@ class CountPattern:
         new /= new.sum()
         return new if np.all(new > 1e-300) else None
 
-    def _factorise(self, g, pi, c):
-        """Factorization of J, the Jacobian (without the anchor, states renumbered) with
-        off-diagonal entries g at ``pi`` (row sums of the counts ``c``); None when singular.
+    def _factorise(self, S: _SymmetricCounts, pi):
+        """Factorization of J, the Jacobian of the counts ``S`` at ``pi`` (without the anchor,
+        states renumbered); None when singular.
 
         With r = c / pi, -M = -diag(pi) J diag(r)^-1 is symmetric (off-diagonal entries
         -s_ij / (r_i + r_j)^2) and a nonsingular M-matrix (positive diagonal scalings of -J,
@@ -555,11 +574,20 @@ class CountPattern:
         positive definite (Horn & Johnson, Topics in Matrix Analysis, Thm. 2.5.3): in a narrow
         band it is factorised by Cholesky, a quarter of the work of the banded LU kept as the
         fallback."""
-        g = np.where(self.sym_i != self.sym_j, g, 0.0)
-        diag = -np.bincount(self.sym_i, weights=g, minlength=self.n)
-        data = np.concatenate([g, diag])[self._jac_src]
         m = self.n - 1
-        ratio = c / pi
+        ratio = S.c / pi
+        if self._band is not None:
+            # the symmetric form straight from the upper half of the pattern (half the work of J)
+            off, diag = S.symmetric_jacobian(pi)
+            ab = np.zeros((self._band + 1, m))
+            ab.flat[self._band_off_pos] = off[self._band_off]
+            ab.flat[self._band_diag_pos] = diag[self._free]
+            # LAPACK directly, without the interpreter lock (msmkit.spectral.banded_cholesky)
+            factor = banded_cholesky(ab)
+            if factor is not None:
+                return factor, pi[self._free], ratio[self._free]
+        g = np.where(self.sym_i != self.sym_j, S.residual_terms(pi)[1], 0.0)
+        data = np.concatenate([g, -np.bincount(self.sym_i, weights=g, minlength=self.n)])[self._jac_src]
         if self._band is None and m >= ITERATIVE_STATES:
             # thousands of states in a wide band: conjugate gradients on the symmetric form,
             # the sparse LU only if they fail (see _solve)
@@ -568,13 +596,6 @@ class CountPattern:
                                     pi[self._free], ratio[self._free], data)
         if self._band is not None:
             b = self._band
-            sym = -pi[self._jac_i] * data / ratio[self._jac_j]
-            ab = np.zeros((b + 1, m))
-            ab.flat[self._upper_pos] = sym[self._upper]
-            # LAPACK directly, without the interpreter lock (msmkit.spectral.banded_cholesky)
-            factor = banded_cholesky(ab)
-            if factor is not None:
-                return factor, pi[self._free], ratio[self._free]
             ab = np.zeros((3 * b + 1, m))
             ab.flat[self._band_pos] = data
             lu, piv, info = lapack.dgbtrf(ab, b, b)

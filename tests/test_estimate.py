@@ -300,3 +300,33 @@ def test_thousands_of_states_take_conjugate_gradients_and_reach_the_same_optimum
     T_direct, info_direct = estimate_transition_matrix(C, return_info=True, initial=rng.uniform(0.5, 1.5, n))
     np.testing.assert_allclose(T, T_direct, rtol=0, atol=1e-12)
     np.testing.assert_allclose(info.equilibrium, info_direct.equilibrium, rtol=1e-9)
+
+
+def test_symmetric_jacobian_from_the_upper_half_matches_finite_differences():
+    # The banded Newton route factorises M = diag(pi) (-J) diag(c / pi)^-1 assembled from the
+    # upper half of the pattern alone; J is checked here as the central finite difference of the
+    # stationarity residual in log pi (common practice), and M must be symmetric.
+    from msmkit.estimate import _SymmetricCounts
+    rng = np.random.default_rng(3)
+    n = 9
+    C = sp.random(n, n, density=0.4, random_state=4, data_rvs=lambda k: rng.integers(1, 20, k)).tocsr()
+    C = (C + sp.diags(rng.integers(5, 30, n))).tocsr()
+    row = np.asarray(C.sum(axis=1)).ravel()
+    S = _SymmetricCounts(C, row)
+    pi = rng.uniform(0.5, 1.5, n)
+    h = 1e-6
+    J = np.empty((n, n))
+    for k in range(n):
+        up, down = np.log(pi), np.log(pi)
+        up[k] += h
+        down[k] -= h
+        J[:, k] = (S.residual(np.exp(up))[0] - S.residual(np.exp(down))[0]) / (2 * h)
+    ratio = row / pi
+    M_reference = -pi[:, None] * J / ratio[None, :]
+    off, diag = S.symmetric_jacobian(pi)
+    i, j = S._upper[5], S._upper[6]
+    M = np.diag(diag)
+    M[i, j] = off
+    M[j, i] = off
+    np.testing.assert_allclose(M, M_reference, rtol=1e-6, atol=1e-8)
+    np.testing.assert_allclose(M_reference, M_reference.T, rtol=1e-6, atol=1e-8)
