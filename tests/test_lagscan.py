@@ -26,6 +26,7 @@ from scipy import stats
 
 from msmkit.errors import DiagnosticWarning, InputError
 from msmkit.estimate import estimate_transition_matrix
+import msmkit.lagscan as lagscan_module
 from msmkit.lagscan import LagScan, lag_scan, suggest_lag
 from msmkit.model import build_model
 
@@ -254,13 +255,16 @@ def test_lags_sorted_and_unique(sample_chain):
     assert lag_scan(runs, 3, n_processes=1).lags.tolist() == [3]
 
 
-def test_bootstrap_on_threads_leaves_warning_filters_alone(sample_chain, reversible_chain):
-    # Samples are fitted on worker threads; the process-wide warning filters must come out of a
-    # scan exactly as they went in (warnings.catch_warnings is not thread-safe; common practice).
+def test_bootstrap_on_threads_leaves_warning_filters_alone(sample_chain, reversible_chain, monkeypatch):
+    # Samples are fitted on worker threads (here at every pattern size); the process-wide warning
+    # filters must come out of a scan exactly as they went in (warnings.catch_warnings is not
+    # thread-safe; common practice).
     runs = sample_chain(reversible_chain, 400, n_runs=8, seed=2)
     before = list(warnings.filters)
+    monkeypatch.setattr(lagscan_module, "THREADED_PATTERN", 0)
     a = lag_scan(runs, [1, 2], n_samples=12, seed=5)
     assert warnings.filters == before
+    monkeypatch.setattr(lagscan_module, "THREADED_PATTERN", np.inf)
     b = lag_scan(runs, [1, 2], n_samples=12, seed=5)  # threads do not change the answer
     np.testing.assert_array_equal(a.samples, b.samples)
 
