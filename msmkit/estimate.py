@@ -248,8 +248,8 @@ class _SymmetricCounts:
     def symmetric_jacobian(self, pi: np.ndarray):
         """The symmetric positive definite form M = diag(pi) (-J) diag(r)^-1 of the Jacobian J
         of :meth:`residual` (r = c / pi; see :meth:`CountPattern._factorise`) from the upper
-        half of the pattern alone: (M_ij = -s_ij / (r_i + r_j)^2 on the entries i < j of
-        ``_upper_half``, in its order; the diagonal M_ii = sum_{j != i} s_ij r_j / (r_i (r_i + r_j)^2))."""
+        half of the pattern alone: (M_ij = -s_ij / (r_i + r_j)^2 on the entries i < j, in the
+        order of ``_upper_half``; the diagonal M_ii = sum_{j != i} s_ij r_j / (r_i (r_i + r_j)^2))."""
         ratio = self.c / pi
         _, _, _, _, pos, i, j = self._upper
         den = ratio[i] + ratio[j]
