@@ -114,7 +114,8 @@ class LagScan:
 
 #: bootstrap samples of a lag run on two threads from this many entries of the count pattern on:
 #: measured per sample on two cores, two threads took 1.6x the time of one at 500 states and
-#: lag 1 (1500 entries), 1.2x at 14 500 entries, 0.9x at 29 000 and 0.55x at 3000 states (97 000)
+#: lag 1 (1500 entries), 1.2x at 14 500 entries, 0.9x at 29 000 and 0.55x at 3000 states (97 000);
+#: at 1500 states 1.28x at 4500 entries, 1.02x at 18 000, 0.99x at 24 000
 THREADED_PATTERN = 25_000
 
 
