@@ -488,6 +488,31 @@ def test_pattern_fit_equals_the_estimator(n, extra, lazy, seed, monkeypatch):
         np.testing.assert_allclose(w_si, np.real(w_ref), rtol=0, atol=1e-10)
 
 
+def test_pattern_fit_falls_back_to_the_banded_lu_when_cholesky_fails(monkeypatch):
+    # A banded pattern's Newton matrix is factorised by Cholesky; should LAPACK report it not
+    # positive definite (rounding), the banded LU of the Jacobian takes over and must reach the
+    # same maximum-likelihood estimate (against estimate_transition_matrix).
+    import msmkit.estimate as estimate
+    from msmkit.estimate import CountPattern
+    rng = np.random.default_rng(7)
+    n = 150
+    C = _random_walk_counts(rng, n, 0, 5.0)
+    Cc = C.tocoo()
+    pattern = CountPattern(Cc.row, Cc.col, n, anchor=int(np.argmax(np.asarray(C.sum(axis=1)))))
+    assert pattern._band is not None
+    calls, lu = [], []
+    monkeypatch.setattr(estimate, "banded_cholesky", lambda ab: calls.append(1) and None)
+    dgbtrf = estimate.lapack.dgbtrf
+    monkeypatch.setattr(estimate.lapack, "dgbtrf", lambda *a: lu.append(1) or dgbtrf(*a))
+    start = rng.uniform(0.5, 1.5, n)
+    fit = pattern.reversible_fit(Cc.data.astype(float), start / start.sum())
+    assert calls and len(lu) == len(calls) and fit.converged
+    T_ref, info = estimate_transition_matrix(C, reversible=True, tol=1e-13, return_info=True)
+    X = pattern.flow_matrix(fit.flows).toarray()
+    np.testing.assert_allclose(X / X.sum(axis=1, keepdims=True), T_ref, rtol=0, atol=1e-11)
+    np.testing.assert_allclose(fit.equilibrium, info.equilibrium, rtol=1e-9)
+
+
 def test_sample_kernel_equals_the_estimator_on_every_sample():
     # SampleTimescales (the lag scan's per-sample kernel, fast route and general route) against
     # the estimator + scipy.linalg.eig on the same resampled counts, units of a random walk
