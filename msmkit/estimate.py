@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 import scipy.sparse as sp
@@ -234,7 +235,8 @@ class _SymmetricCounts:
         if not jacobian:
             # x_ij is symmetric: evaluated on the upper half of the pattern (half the work) and
             # summed into both rows
-            up, iu, ju, strict = self._upper[:4]
+            u = self._upper
+            up, iu, ju, strict = u.up, u.iu, u.ju, u.strict
             x = self.s[up] / (ratio[iu] + ratio[ju])
             x_i = np.bincount(iu, weights=x, minlength=self.n) + np.bincount(ju[strict], weights=x[strict],
                                                                            minlength=self.n)
@@ -251,7 +253,7 @@ class _SymmetricCounts:
         half of the pattern alone: (M_ij = -s_ij / (r_i + r_j)^2 on the entries i < j, in the
         order of ``_upper_half``; the diagonal M_ii = sum_{j != i} s_ij r_j / (r_i (r_i + r_j)^2))."""
         ratio = self.c / pi
-        _, _, _, _, pos, i, j = self._upper
+        pos, i, j = self._upper.off_pos, self._upper.off_i, self._upper.off_j
         den = ratio[i] + ratio[j]
         q = self.s[pos] / den / den  # not den ** 2: that overflows where some pi is tiny
         diag = np.bincount(i, weights=q * ratio[j], minlength=self.n)
@@ -263,13 +265,25 @@ class _SymmetricCounts:
         return new / new.sum()
 
 
-def _upper_half(i, j):
-    """(positions of the entries with i <= j, their i, their j, which of them have i < j, and
-    for the entries with i < j alone: their positions, i and j) of a symmetric pattern."""
+class _UpperHalf(NamedTuple):
+    """The entries with i <= j of a symmetric pattern: their positions ``up``, rows ``iu`` and
+    columns ``ju``, which of them have i < j (``strict``), and for those alone their positions,
+    rows and columns (``off_pos``, ``off_i``, ``off_j``)."""
+    up: np.ndarray
+    iu: np.ndarray
+    ju: np.ndarray
+    strict: np.ndarray
+    off_pos: np.ndarray
+    off_i: np.ndarray
+    off_j: np.ndarray
+
+
+def _upper_half(i, j) -> _UpperHalf:
+    """:class:`_UpperHalf` of a symmetric pattern with entries (i, j)."""
     up = np.flatnonzero(i <= j)
     iu, ju = i[up], j[up]
     strict = np.flatnonzero(iu < ju)
-    return up, iu, ju, strict, up[strict], iu[strict], ju[strict]
+    return _UpperHalf(up, iu, ju, strict, up[strict], iu[strict], ju[strict])
 
 
 def _reversible_mle(C, row, *, tol, max_iter, accelerate, initial):
@@ -464,7 +478,7 @@ class CountPattern:
             self._band_pos = (2 * self._band + ro - co) * m + co
             # upper band storage ab[band + r - c, c] (r <= c) of the symmetric form, filled from
             # the entries i < j of the pattern's upper half (_SymmetricCounts.symmetric_jacobian)
-            si, sj = self._sym_upper[5:]
+            si, sj = self._sym_upper.off_i, self._sym_upper.off_j
             self._band_off = np.flatnonzero((si != anchor) & (sj != anchor))
             ri, rj = rank[shift(si[self._band_off])], rank[shift(sj[self._band_off])]
             lo, hi = np.minimum(ri, rj), np.maximum(ri, rj)

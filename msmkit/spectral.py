@@ -292,24 +292,6 @@ def _banded_routines():
     return _BANDED
 
 
-def _int_args(*values):
-    """(C ints holding ``values``, their addresses): read-only arguments of the LAPACK routines,
-    made once per distinct tuple (building ctypes arguments cost a sixth of a banded solve at
-    500 states); the caller holds the first while the addresses are in use."""
-    got = _INT_ARGS.get(values)
-    if got is None:
-        import ctypes
-        if len(_INT_ARGS) > 256:
-            _INT_ARGS.clear()
-        cells = (ctypes.c_int * len(values))(*values)
-        got = _INT_ARGS[values] = (cells, [ctypes.addressof(cells) + ctypes.sizeof(ctypes.c_int) * k
-                                           for k in range(len(values))])
-    return got
-
-
-_INT_ARGS = {}
-
-
 def banded_cholesky(ab: np.ndarray):
     """Cholesky factor of a symmetric positive definite band matrix in LAPACK's upper band
     storage (``ab[band + i - j, j] = M[i, j]`` for i <= j), by dpbtrf without the interpreter
@@ -317,10 +299,10 @@ def banded_cholesky(ab: np.ndarray):
     import ctypes
     factor = np.array(ab, dtype=np.float64, order="F")
     rows, n = factor.shape
-    info = ctypes.c_int(0)
-    cells, (N, KD, LD) = _int_args(n, rows - 1, rows)  # cells: alive while the addresses are used
-    _banded_routines()["dpbtrf"](_UPPER, N, KD, factor.ctypes.data, LD, ctypes.addressof(info))
-    return factor if info.value == 0 else None
+    ints = [ctypes.c_int(v) for v in (n, rows - 1, rows, 0)]
+    N, KD, LD, INFO = (ctypes.byref(v) for v in ints)
+    _banded_routines()["dpbtrf"](ctypes.c_char_p(b"U"), N, KD, factor.ctypes.data, LD, INFO)
+    return factor if ints[3].value == 0 else None
 
 
 def banded_cholesky_solve(factor: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -328,13 +310,10 @@ def banded_cholesky_solve(factor: np.ndarray, b: np.ndarray) -> np.ndarray:
     import ctypes
     x = np.array(b, dtype=np.float64)
     rows, n = factor.shape
-    info = ctypes.c_int(0)
-    cells, (N, KD, NRHS, LD) = _int_args(n, rows - 1, 1, rows)  # cells: alive while the addresses are used
-    _banded_routines()["dpbtrs"](_UPPER, N, KD, NRHS, factor.ctypes.data, LD, x.ctypes.data, N, ctypes.addressof(info))
+    ints = [ctypes.c_int(v) for v in (n, rows - 1, 1, rows, n, 0)]
+    N, KD, NRHS, LD, LDB, INFO = (ctypes.byref(v) for v in ints)
+    _banded_routines()["dpbtrs"](ctypes.c_char_p(b"U"), N, KD, NRHS, factor.ctypes.data, LD, x.ctypes.data, LDB, INFO)
     return x
-
-
-_UPPER = b"U"
 
 
 def conjugate_gradients(M, b: np.ndarray, *, rtol: float = 1e-10, max_iter: int = 2000):

@@ -324,7 +324,7 @@ def test_symmetric_jacobian_from_the_upper_half_matches_finite_differences():
     ratio = row / pi
     M_reference = -pi[:, None] * J / ratio[None, :]
     off, diag = S.symmetric_jacobian(pi)
-    i, j = S._upper[5], S._upper[6]
+    i, j = S._upper.off_i, S._upper.off_j
     M = np.diag(diag)
     M[i, j] = off
     M[j, i] = off
